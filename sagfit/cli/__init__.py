@@ -1,0 +1,89 @@
+"""The ``sagfit`` command line: a thin client of the library.
+
+Each command lives in its own module and registers itself on ``app``; this module
+turns every failure into one ``error:`` line on stderr and an exit status.
+
+Exit status: 0 success; 1 something failed a check (``accept``: a unit failed;
+``trend``: a DUT flagged); 2 bad input or usage; 3 finished, but some DUTs could not be
+decided or fitted; 130 interrupted.
+"""
+
+from __future__ import annotations
+
+import sys
+
+import typer
+
+try:  # typer >= 0.20 vendors its own copy of click
+    from typer._click import exceptions as _cx
+except ImportError:  # pragma: no cover - older typer with the click package
+    from click import exceptions as _cx
+
+app = typer.Typer(
+    name="sagfit",
+    help="Thevenin/Norton equivalents of DC sources from bench readings, with honest "
+         "uncertainty.",
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+    rich_markup_mode=None,
+)
+
+
+
+@app.callback()
+def _root() -> None:
+    """Thevenin/Norton equivalents of DC sources from bench readings, with honest uncertainty.
+
+    Exit status: 0 success; 1 a check failed (accept: a unit failed; trend: a DUT
+    flagged); 2 bad input or usage; 3 done, but some DUTs could not be fitted or decided.
+    """
+
+
+from . import fit_cmd  # noqa: E402,F401  (registers `fit`)
+
+for _mod in ("predict_cmd", "accept_cmd", "history_cmd", "plan_cmd"):
+    try:
+        __import__(f"{__name__}.{_mod}")
+    except ModuleNotFoundError as _exc:  # a command module not written yet
+        if _exc.name != f"{__name__}.{_mod}":
+            raise
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Console-script entry point."""
+    from ..errors import SagfitError
+
+    try:
+        code = app(args=argv, prog_name="sagfit", standalone_mode=False)
+    except typer.Exit as exc:
+        code = exc.exit_code
+    except _cx.NoArgsIsHelpError as exc:
+        ctx = getattr(exc, "ctx", None)
+        sys.stdout.write((ctx.get_help() if ctx is not None else str(exc)) + "\n")
+        code = 0
+    except _cx.UsageError as exc:
+        hint = ""
+        if exc.ctx is not None:
+            hint = f" (see '{exc.ctx.command_path} --help')"
+        sys.stderr.write(f"error: {_one_line(exc.format_message())}{hint}\n")
+        code = 2
+    except typer.Abort:
+        sys.stderr.write("error: interrupted\n")
+        code = 130
+    except KeyboardInterrupt:
+        sys.stderr.write("error: interrupted\n")
+        code = 130
+    except SagfitError as exc:
+        sys.stderr.write(f"error: {_one_line(exc)}\n")
+        code = 2
+    except _cx.ClickException as exc:
+        sys.stderr.write(f"error: {_one_line(exc.format_message())}\n")
+        code = exc.exit_code
+    except BrokenPipeError:
+        code = 0
+    sys.exit(code or 0)

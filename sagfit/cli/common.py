@@ -1,0 +1,157 @@
+"""Helpers shared by the commands: option parsing, loading, errors, output."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import sys
+from typing import Annotated, Iterator, Optional
+
+import typer
+
+from ..errors import InputError, OptionError, SagfitError
+
+# Options shared by every command that fits readings (declared once, used by each).
+DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only this DUT (comma-separated "
+                                                             "list allowed).")]
+ConfidenceOpt = Annotated[Optional[float], typer.Option(
+    "--confidence", help="Confidence level of the intervals [default: 0.95].")]
+VoltageAccOpt = Annotated[Optional[str], typer.Option(
+    "--voltage-accuracy", help="Voltmeter spec ±(%% of reading + offset), e.g. '0.05%+2mV' "
+                               "(a rectangular half-width).")]
+CurrentAccOpt = Annotated[Optional[str], typer.Option(
+    "--current-accuracy", help="Ammeter spec, e.g. '0.2%+1mA'.")]
+LoadTolOpt = Annotated[Optional[str], typer.Option(
+    "--load-tolerance", help="Load resistor tolerance, e.g. '1%'.")]
+BenchOpt = Annotated[Optional[str], typer.Option(
+    "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document to stdout.")]
+VerboseOpt = Annotated[bool, typer.Option("--verbose", "-v", help="Also list ignored columns "
+                                                                  "and the settings used.")]
+
+
+def error_line(message: str) -> None:
+    sys.stderr.write("error: " + " ".join(str(message).split()) + "\n")
+
+
+@contextlib.contextmanager
+def guarded(source: str = "") -> Iterator[None]:
+    """Map every failure to one ``error:`` line and exit status 2 (130 on Ctrl-C)."""
+    try:
+        yield
+    except typer.Exit:
+        raise
+    except SagfitError as exc:
+        error_line(str(exc))
+        raise typer.Exit(2) from None
+    except KeyboardInterrupt:
+        error_line("interrupted; no partial output was left")
+        raise typer.Exit(130) from None
+    except MemoryError:
+        error_line(f"{source}: not enough memory for this file".lstrip(": "))
+        raise typer.Exit(2) from None
+    except OSError as exc:
+        error_line(f"{source}: {exc.strerror or exc}".lstrip(": "))
+        raise typer.Exit(2) from None
+    except Exception as exc:  # never a traceback for users; say what broke
+        error_line(f"{source}: internal error ({type(exc).__name__}: {exc}); please report it "
+                   "with the input file".lstrip(": "))
+        raise typer.Exit(2) from None
+
+
+def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=None,
+                 bench=None, confidence=None) -> dict:
+    """Merge the command-line options over a bench profile into fit settings."""
+    from ..units import parse_accuracy, parse_percent
+
+    settings: dict = {"voltage_accuracy": None, "current_accuracy": None,
+                      "load_tolerance": None, "confidence": 0.95, "instruments": (),
+                      "bench": None}
+    if bench:
+        from ..io_bench import read_bench
+
+        prof = read_bench(bench)
+        settings.update(voltage_accuracy=prof.voltage_accuracy,
+                        current_accuracy=prof.current_accuracy,
+                        load_tolerance=prof.load_tolerance, instruments=prof.instruments,
+                        bench=bench)
+        if prof.confidence is not None:
+            settings["confidence"] = prof.confidence
+    try:
+        if voltage_accuracy is not None:
+            settings["voltage_accuracy"] = parse_accuracy(voltage_accuracy, "V")
+        if current_accuracy is not None:
+            settings["current_accuracy"] = parse_accuracy(current_accuracy, "A")
+        if load_tolerance is not None:
+            settings["load_tolerance"] = parse_percent(load_tolerance)
+    except InputError as exc:
+        opt = ("--voltage-accuracy" if voltage_accuracy and "V" in str(exc) else
+               "--current-accuracy" if current_accuracy and "A" in str(exc) else
+               "--load-tolerance")
+        raise OptionError(opt, str(exc).split(": ", 1)[-1]) from None
+    if settings["load_tolerance"] is not None and not 0 <= settings["load_tolerance"] < 100:
+        raise OptionError("--load-tolerance", "must be between 0 % and 100 %")
+    if confidence is not None:
+        if not (isinstance(confidence, float) and 0 < confidence < 1 and math.isfinite(confidence)):
+            raise OptionError("--confidence", f"must be between 0 and 1 (got {confidence})")
+        settings["confidence"] = float(confidence)
+    return settings
+
+
+def settings_record(settings: dict) -> dict:
+    """The settings as plain JSON values (for outputs, reports and the history)."""
+    def acc(a):
+        return None if a is None else {"text": a.text, "percent": a.percent, "offset": a.offset,
+                                       "divisor": a.divisor}
+    return {"confidence": settings["confidence"],
+            "voltage_accuracy": acc(settings["voltage_accuracy"]),
+            "current_accuracy": acc(settings["current_accuracy"]),
+            "load_tolerance_pct": settings["load_tolerance"],
+            "bench": settings.get("bench"),
+            "instruments": [i.to_dict() for i in settings.get("instruments", ())]}
+
+
+def load_readings(file: str, settings: dict, dut: str | None = None):
+    """Read a readings file with the settings, optionally keeping some DUTs."""
+    from ..io_csv import read_readings
+
+    readings = read_readings(file, voltage_accuracy=settings["voltage_accuracy"],
+                             current_accuracy=settings["current_accuracy"],
+                             load_tolerance=settings["load_tolerance"])
+    if dut:
+        names = [d.strip() for d in dut.split(",") if d.strip()]
+        readings = readings.only_duts(names)
+    return readings
+
+
+def dumps(doc) -> str:
+    return json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def write_stdout(text: str) -> None:
+    try:
+        sys.stdout.write(text)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        pass
+
+
+def interactive() -> bool:
+    try:
+        return sys.stdout.isatty()
+    except (AttributeError, ValueError):
+        return False
+
+
+@contextlib.contextmanager
+def progress(label: str, enabled: bool):
+    """A spinner/progress line on an interactive terminal; silent otherwise."""
+    if not enabled:
+        yield lambda text: None
+        return
+    from rich.console import Console
+
+    console = Console(stderr=True)
+    with console.status(label) as status:
+        yield lambda text: status.update(text)

@@ -1,0 +1,98 @@
+"""``sagfit fit``: the equivalent of each DUT in a readings file."""
+
+from __future__ import annotations
+
+from typing import Annotated, Optional
+
+import typer
+
+from . import app
+from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
+                     VerboseOpt, VoltageAccOpt, dumps, fit_settings, guarded, interactive,
+                     load_readings, progress, settings_record, write_stdout)
+
+MAX_TABLE_ROWS = 40
+
+
+@app.command("fit")
+def fit_command(
+    file: Annotated[str, typer.Argument(help="Readings CSV (see docs/input-format.md).")],
+    dut: DutOpt = None,
+    confidence: ConfidenceOpt = None,
+    voltage_accuracy: VoltageAccOpt = None,
+    current_accuracy: CurrentAccOpt = None,
+    load_tolerance: LoadTolOpt = None,
+    bench: BenchOpt = None,
+    json_out: JsonOpt = False,
+    out: Annotated[Optional[str], typer.Option(
+        "--out", help="Also write the results to this .csv or .json file.")] = None,
+    verbose: VerboseOpt = False,
+) -> None:
+    """Fit V = Vth − Rth·I for every DUT: open-circuit voltage, internal resistance,
+    short-circuit current and maximum power, with uncertainties."""
+    with guarded(file):
+        from ..analysis import fit
+        from ..outputs import check_output_path
+
+        settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
+                                confidence)
+        if out:
+            check_output_path(out, [file] + ([bench] if bench else []))
+            if not out.lower().endswith((".csv", ".json")):
+                from ..errors import OptionError
+
+                raise OptionError("--out", f"{out}: use a .csv or .json file name")
+        show = interactive() and not json_out
+        with progress("reading " + file, show) as step:
+            readings = load_readings(file, settings, dut)
+            step(f"fitting {readings.n_duts} DUT(s)")
+            fits = fit(readings, confidence=settings["confidence"])
+        doc = fit_document(fits, readings, settings)
+        if all(e is not None for e in fits.error):
+            from ..errors import ReadingsFileError
+
+            first = next(e for e in fits.error)
+            who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
+            raise ReadingsFileError(file, who + first)
+        if out:
+            write_results(out, fits, doc, [file])
+        if json_out:
+            write_stdout(dumps(doc))
+        else:
+            from .render import print_fits
+
+            print_fits(fits, readings, doc, verbose=verbose)
+    raise typer.Exit(3 if any(e is not None for e in fits.error) else 0)
+
+
+def fit_document(fits, readings, settings) -> dict:
+    """The JSON document of ``sagfit fit --json``."""
+    from .. import __version__
+    from ..safety import cautions
+
+    power = readings.voltage * readings.current
+    return {
+        "tool": "sagfit",
+        "version": __version__,
+        "confidence": fits.confidence,
+        "input": {"file": readings.source, "sha256": readings.meta.get("sha256"),
+                  "date": readings.meta.get("date"),
+                  "duts": len(fits), "readings": len(readings)},
+        "settings": settings_record(settings),
+        "results": fits.to_dicts(),
+        "cautions": cautions(vth=fits.vth, isc=fits.isc, reading_power=power,
+                             voltages=readings.voltage),
+    }
+
+
+def write_results(out: str, fits, doc, inputs) -> None:
+    """``--out``: CSV (one row per DUT) or JSON (the same document as --json)."""
+    from ..outputs import atomic_write
+
+    if out.lower().endswith(".json"):
+        atomic_write(out, dumps(doc), inputs=inputs)
+    else:
+        from ..io_csv import fits_table
+
+        atomic_write(out, fits_table(fits).to_csv(index=False, float_format="%.10g"),
+                     inputs=inputs)

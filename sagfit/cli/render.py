@@ -1,0 +1,112 @@
+"""Terminal rendering of results with rich (tables built from ``formatting`` strings)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..formatting import format_estimate, format_interval, format_p, format_value
+
+MAX_TABLE_ROWS = 40
+
+
+def _console():
+    from rich.console import Console
+
+    import sys
+
+    tty = sys.stdout.isatty()
+    return Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
+
+
+def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
+    from rich.table import Table
+
+    console = _console()
+    lvl = f"{fits.confidence * 100:g} %"
+    if len(fits) == 1 and fits.error[0] is None:
+        r = fits[0]
+        t = Table(title=f"{r.dut}: Thevenin/Norton equivalent ({r.n} readings, {r.method})",
+                  title_justify="left", show_edge=False)
+        t.add_column("quantity")
+        t.add_column("value ± u", justify="right")
+        t.add_column(f"{lvl} interval", justify="right")
+        for label, est, unit in (("open-circuit voltage Vth", r.vth, "V"),
+                                 ("internal resistance Rth", r.rth, "Ω"),
+                                 ("short-circuit current Isc", r.isc, "A"),
+                                 ("maximum power Pmax", r.pmax, "W")):
+            t.add_row(label, format_estimate(est.value, est.u, unit),
+                      format_interval(est.ci_low, est.ci_high, unit, est.u))
+        console.print(t)
+        console.print(_quality(r.chi2, r.dof, r.p_value, r.method, r.corr_vth_rth))
+    else:
+        t = Table(show_edge=False)
+        for col, just in (("DUT", "left"), ("n", "right"), ("Vth", "right"), ("Rth", "right"),
+                          ("Isc", "right"), ("Pmax", "right"), ("method", "left"),
+                          ("χ²/ν", "right"), ("p", "right"), ("flags", "left")):
+            t.add_column(col, justify=just)
+        shown = range(min(len(fits), MAX_TABLE_ROWS))
+        for i in shown:
+            if fits.error[i] is not None:
+                t.add_row(fits.duts[i], str(fits.n[i]), "error", "", "", "", "", "", "",
+                          "")
+                continue
+            red = fits.chi2[i] / fits.dof[i] if fits.dof[i] > 0 else np.nan
+            t.add_row(fits.duts[i], str(fits.n[i]),
+                      format_estimate(fits.vth[i], fits.u_vth[i], "V"),
+                      format_estimate(fits.rth[i], fits.u_rth[i], "Ω"),
+                      format_estimate(fits.isc[i], fits.u_isc[i], "A"),
+                      format_estimate(fits.pmax[i], fits.u_pmax[i], "W"),
+                      str(fits.method[i]), f"{red:.2f}" if np.isfinite(red) else "",
+                      format_p(fits.p_value[i]) if np.isfinite(fits.p_value[i]) else "",
+                      ",".join(f.code for f in fits.flags[i] if f.severity == "warning"))
+        console.print(t)
+        if len(fits) > MAX_TABLE_ROWS:
+            ok = fits.ok
+            console.print(f"… {len(fits) - MAX_TABLE_ROWS} more DUTs not shown "
+                          f"(write them all with --out results.csv or --json). Across "
+                          f"{int(ok.sum())} fitted: median Vth "
+                          f"{format_value(float(np.median(fits.vth[ok])), 'V', 5)}, median Rth "
+                          f"{format_value(float(np.median(fits.rth[ok])), 'Ω', 4)}.")
+        console.print(f"Uncertainties are standard uncertainties; intervals at {lvl} are in "
+                      "--json and --out.")
+    _print_flags(console, fits, verbose)
+    errors = [(d, e) for d, e in zip(fits.duts, fits.error) if e is not None]
+    for d, e in errors[:MAX_TABLE_ROWS]:
+        console.print(f"[bold]error[/bold] {d}: {e}", markup=True)
+    if len(errors) > MAX_TABLE_ROWS:
+        console.print(f"… and {len(errors) - MAX_TABLE_ROWS} more DUTs could not be fitted")
+    if verbose:
+        ign = readings.meta.get("ignored_columns") or []
+        console.print(f"input: {readings.source} (sha256 {readings.meta.get('sha256', '')[:16]}…), "
+                      f"{len(readings)} readings, {len(fits)} DUT(s)")
+        console.print("ignored columns: " + (", ".join(ign) if ign else "none"))
+        s = doc["settings"]
+        for k in ("voltage_accuracy", "current_accuracy"):
+            console.print(f"{k.replace('_', ' ')}: {s[k]['text'] if s[k] else 'not stated'}")
+        console.print(f"load tolerance: "
+                      f"{str(s['load_tolerance_pct']) + ' %' if s['load_tolerance_pct'] is not None else 'not stated'}")
+    for c in doc.get("cautions", []):
+        console.print(f"caution: {c}", markup=False)
+
+
+def _quality(chi2, dof, p, method, corr) -> str:
+    if method == "ols":
+        return (f"fit quality: residual SS {chi2:.4g} on {dof} degrees of freedom (no uncertainty "
+                f"stated: Type A, Student t); corr(Vth, Rth) = {corr:.3f}")
+    pv = format_p(p) if p is not None else "n/a"
+    return (f"fit quality: χ² = {chi2:.3g} on {dof} degrees of freedom, p = {pv}; "
+            f"corr(Vth, Rth) = {corr:.3f}")
+
+
+def _print_flags(console, fits, verbose):
+    shown = 0
+    for i in range(len(fits)):
+        for f in fits.flags[i]:
+            if f.severity == "info" and not verbose and len(fits) > 1:
+                continue
+            if shown >= MAX_TABLE_ROWS * 2:
+                console.print("… more flags in --json / --out")
+                return
+            prefix = "warning" if f.severity == "warning" else "note"
+            console.print(f"{prefix} {fits.duts[i]} [{f.code}]: {f.message}", markup=False)
+            shown += 1

@@ -1,0 +1,322 @@
+"""Straight-line fits of V = Vth − Rth·I for many DUTs at once.
+
+One kernel serves all three methods. With per-reading variances u²(I), u²(V) and
+covariance u(I, V), it is the York et al. (2004) iteration; with u(I) = 0 the same
+iteration reduces to weighted least squares after one step; with no uncertainty stated,
+unit weights give ordinary least squares and the scatter sets the covariance (Type A).
+
+All sums run over DUTs with ``np.bincount``; the York iteration updates every DUT
+together and stops updating each DUT once its slope has converged.
+
+References
+----------
+- D. York, N. M. Evensen, M. López Martínez, J. De Basabe Delgado, "Unified equations
+  for the slope, intercept, and standard errors of the best straight line",
+  Am. J. Phys. 72(3), 367–375 (2004), eqs. (13a)–(13d) in variance form.
+- Weighted least squares closed form: N. R. Draper, H. Smith, *Applied Regression
+  Analysis*, 3rd ed. (1998), ch. 9.
+- Scale factor S = √(χ²/ν), applied only when S > 1: Particle Data Group, *Review of
+  Particle Physics*, Introduction, "Averages and fits" (e.g. S. Navas et al.,
+  Phys. Rev. D 110, 030001 (2024); citation details from memory).
+- Delta method for Isc = Vth/Rth and Pmax = Vth²/(4·Rth): JCGM 100:2008 (GUM) 5.2.2.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import special
+
+from .errors import InputError
+from .readings import Readings
+from .results import Fits, Flag
+
+__all__ = ["fit_lines", "york_line", "coverage_factors"]
+
+_MAXITER = 200
+
+
+def _groupsum(g, w, m):
+    return np.bincount(g, weights=w, minlength=m)
+
+
+def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
+    """Iterate York's slope for all groups; return (b, iterations, converged)."""
+    b = b0.astype(np.float64).copy()
+    iters = np.zeros(m, dtype=np.int64)
+    done = np.zeros(m, dtype=bool)
+    rows = slice(None)
+    gg, xx, yy, a_sxx, a_syy, a_sxy = g, x, y, sxx, syy, sxy
+    for _ in range(_MAXITER):
+        bb = b[gg]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = 1.0 / (a_syy + bb * bb * a_sxx - 2.0 * bb * a_sxy)
+            sw = _groupsum(gg, w, m)
+            xbar = _groupsum(gg, w * xx, m) / sw
+            ybar = _groupsum(gg, w * yy, m) / sw
+            u = xx - xbar[gg]
+            v = yy - ybar[gg]
+            beta = w * (u * a_syy + bb * v * a_sxx - (bb * u + v) * a_sxy)
+            b_new = _groupsum(gg, w * beta * v, m) / _groupsum(gg, w * beta * u, m)
+            sb = 1.0 / np.sqrt(_groupsum(gg, w * u * u, m))
+        step = np.abs(b_new - b)
+        active = ~done
+        upd = active & np.isfinite(b_new)
+        b[upd] = b_new[upd]
+        iters[active] += 1
+        # converged: the change is below a billionth of the slope's standard error,
+        # or at the level of float64 round-off of the slope itself
+        conv = active & ((step <= 1e-9 * sb) | (step <= 4e-16 * np.abs(b_new)) | ~np.isfinite(b_new))
+        done |= conv
+        if done.all():
+            break
+        if conv.any():
+            keep = ~done[gg]
+            gg, xx, yy = gg[keep], xx[keep], yy[keep]
+            a_sxx, a_syy, a_sxy = a_sxx[keep], a_syy[keep], a_sxy[keep]
+    del rows
+    return b, iters, done
+
+
+def york_line(x, y, sx, sy, r=None, *, group=None):
+    """York et al. (2004) best straight line y = a + b·x for one or many groups.
+
+    Parameters
+    ----------
+    x, y : array_like
+        Coordinates.
+    sx, sy : array_like
+        Standard uncertainties of x and y (either may be 0 but not both at one point).
+    r : array_like, optional
+        Correlation coefficients of the x and y errors (default 0).
+    group : array_like of int, optional
+        Group index of each point (non-negative); one group when omitted.
+
+    Returns
+    -------
+    dict
+        Arrays (one per group) ``a``, ``b``, ``var_a``, ``var_b``, ``cov_ab`` (a priori,
+        from the stated uncertainties only), ``chi2``, ``n``, ``iterations``,
+        ``converged``, and ``xbar_adj`` (York's weighted mean of the adjusted x).
+    """
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    sx = np.broadcast_to(np.asarray(sx, float), x.shape)
+    sy = np.broadcast_to(np.asarray(sy, float), x.shape)
+    r = np.zeros_like(x) if r is None else np.broadcast_to(np.asarray(r, float), x.shape)
+    g = np.zeros(x.size, np.int64) if group is None else np.asarray(group, np.int64)
+    return _line(g, x, y, sx * sx, sy * sy, r * sx * sy, int(g.max()) + 1 if g.size else 0)
+
+
+def _line(g, x, y, sxx, syy, sxy, m):
+    """Shared kernel: York/WLS/OLS sums for groups; variances are a priori."""
+    n = np.bincount(g, minlength=m)
+    # start from the y-weighted least-squares slope
+    w0 = 1.0 / syy if np.all(syy > 0) else 1.0 / np.where(syy > 0, syy, sxx + 1e-300)
+    sw0 = _groupsum(g, w0, m)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xm = _groupsum(g, w0 * x, m) / sw0
+        ym = _groupsum(g, w0 * y, m) / sw0
+        du = x - xm[g]
+        b0 = _groupsum(g, w0 * du * (y - ym[g]), m) / _groupsum(g, w0 * du * du, m)
+    b0 = np.where(np.isfinite(b0), b0, 0.0)
+    b, iters, conv = _york_kernel(g, x, y, sxx, syy, sxy, m, b0)
+    bb = b[g]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
+        sw = _groupsum(g, w, m)
+        xbar = _groupsum(g, w * x, m) / sw
+        ybar = _groupsum(g, w * y, m) / sw
+        u = x - xbar[g]
+        v = y - ybar[g]
+        beta = w * (u * syy + bb * v * sxx - (bb * u + v) * sxy)
+        a = ybar - b * xbar
+        xadj = xbar[g] + beta
+        xbar_adj = _groupsum(g, w * xadj, m) / sw
+        ua = xadj - xbar_adj[g]
+        var_b = 1.0 / _groupsum(g, w * ua * ua, m)
+        var_a = 1.0 / sw + xbar_adj ** 2 * var_b
+        cov_ab = -xbar_adj * var_b
+        res = y - bb * x - a[g]
+        chi2 = _groupsum(g, w * res * res, m)
+    return {"a": a, "b": b, "var_a": var_a, "var_b": var_b, "cov_ab": cov_ab, "chi2": chi2,
+            "n": n, "iterations": iters, "converged": conv, "xbar_adj": xbar_adj,
+            "weights": w, "beta": beta}
+
+
+def coverage_factors(confidence: float, dof: np.ndarray, type_a: np.ndarray) -> np.ndarray:
+    """Coverage factor per DUT: normal quantile, or Student t with ``dof`` for Type A."""
+    p = 0.5 * (1.0 + confidence)
+    z = float(special.ndtri(p))
+    with np.errstate(invalid="ignore"):
+        t = special.stdtrit(np.maximum(dof, 1).astype(float), p)
+    return np.where(type_a, t, z)
+
+
+def _validate(readings: Readings, m: int):
+    """Per-DUT reasons why a DUT cannot be fitted (vectorised; strings only for failures)."""
+    g = readings.group
+    n = np.bincount(g, minlength=m)
+    errors: list[str | None] = [None] * m
+    starts = np.concatenate(([0], np.cumsum(n)[:-1]))
+    nonempty = n > 0
+    i, ui, uv = readings.current, readings.u_current, readings.u_voltage
+    stated_row = (uv > 0) | (ui > 0)
+    stated = np.bincount(g, weights=stated_row, minlength=m) > 0
+    zero_row = ~stated_row & stated[g]
+    zero_in = np.bincount(g, weights=zero_row, minlength=m) > 0
+
+    def red(fn, a, empty):
+        out = np.full(m, empty, dtype=float)
+        if nonempty.any():
+            out[nonempty] = fn.reduceat(a, starts[nonempty])
+        return out
+
+    imin, imax = red(np.minimum, i, np.inf), red(np.maximum, i, -np.inf)
+    iabs = red(np.maximum, np.abs(i), 0.0)
+    uimax = red(np.maximum, ui, 0.0)
+    load = readings.load
+    has_load = bool(np.isfinite(load).any() or np.isinf(load).any()) and not np.isnan(load).any()
+    if has_load:
+        lmin, lmax = red(np.minimum, load, np.inf), red(np.maximum, load, -np.inf)
+        with np.errstate(invalid="ignore"):
+            one_load = ~((lmax > lmin * (1 + 1e-9)) | (np.isinf(lmax) & np.isfinite(lmin)))
+        spread_ok = (imax - imin) > 1e-12 * np.maximum(iabs, 1e-300)
+    else:
+        one_load = np.zeros(m, bool)
+        spread_ok = (imax - imin) > np.maximum(4.0 * uimax, 1e-3 * iabs)
+    few = n < 2
+    few_typea = (~stated) & (n < 3)
+    bad = few | one_load | ~spread_ok | few_typea | zero_in
+    for k in np.flatnonzero(bad):
+        if n[k] == 0:
+            errors[k] = "no readings"
+        elif few[k]:
+            errors[k] = ("only one reading: an equivalent needs readings at two or more loads")
+        elif one_load[k]:
+            errors[k] = (f"all {n[k]} readings are at one load ({load[starts[k]]:.4g} Ω): "
+                         "take readings at two or more different loads")
+        elif not spread_ok[k]:
+            errors[k] = (f"fewer than two distinct currents (the {n[k]} currents differ only "
+                         "by noise): take readings at two or more different loads")
+        elif few_typea[k]:
+            errors[k] = ("two readings and no stated uncertainty: the scatter cannot be "
+                         "estimated; add a third load or state the meter accuracy "
+                         "(--voltage-accuracy, --current-accuracy, --load-tolerance)")
+        else:
+            rows = np.flatnonzero(zero_row[starts[k]:starts[k] + n[k]]) + starts[k]
+            ln = int(readings.line[rows[0]])
+            where = f"line {ln}" if ln else f"reading {rows[0] - starts[k] + 1}"
+            errors[k] = (f"{where} has zero uncertainty in both V and I while other readings "
+                         "have some (an open-circuit reading with only a load tolerance?); "
+                         "state a voltage accuracy (--voltage-accuracy) or u_voltage for it")
+    return errors, bad, stated, n
+
+
+def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
+    """Fit the Thevenin equivalent V = Vth − Rth·I of every DUT in ``readings``.
+
+    Parameters
+    ----------
+    readings : Readings
+        Validated readings (one or many DUTs).
+    confidence : float
+        Level of the confidence intervals, 0 < confidence < 1.
+
+    Returns
+    -------
+    Fits
+        Columnar results; DUTs that cannot be fitted carry an ``error`` message and NaN
+        estimates, the others are fitted regardless.
+
+    Notes
+    -----
+    1. Method per DUT: ``york`` when any reading has an uncertainty in I (stated or
+       propagated from the load), ``wls`` when only V carries uncertainty, ``ols`` when
+       nothing was stated.
+    2. Covariance: a priori from the stated uncertainties, multiplied by S² = χ²/ν when
+       χ²/ν > 1 (never reduced; PDG convention); intervals use the normal quantile.
+       For ``ols`` the covariance is scaled by s² = χ²/ν and intervals use Student t
+       with ν = n − 2 (Type A, GUM 4.2).
+    3. Isc = Vth/Rth and Pmax = Vth²/(4·Rth) by the delta method with the full covariance;
+       NaN when Rth ≤ 0.
+    """
+    if not (0.0 < confidence < 1.0) or not math.isfinite(confidence):
+        raise InputError(f"confidence must be between 0 and 1 (got {confidence!r})")
+    m = readings.n_duts
+    errors, bad, stated, n = _validate(readings, m)
+    g_all = readings.group
+    keep = ~bad[g_all]
+    g = g_all[keep]
+    x = readings.current[keep]
+    y = readings.voltage[keep]
+    st = stated[g]
+    sxx = np.where(st, readings.u_current[keep] ** 2, 0.0)
+    syy = np.where(st, readings.u_voltage[keep] ** 2, 1.0)
+    sxy = np.where(st, readings.cov_iv[keep], 0.0)
+    res = _line(g, x, y, sxx, syy, sxy, m)
+
+    xerr = np.bincount(g, weights=(sxx > 0) | (sxy != 0), minlength=m) > 0
+    method = np.where(~stated, "ols", np.where(xerr, "york", "wls")).astype(object)
+    method[bad] = ""
+    dof = np.maximum(n - 2, 0)
+    chi2 = res["chi2"]
+    type_a = ~stated
+    with np.errstate(divide="ignore", invalid="ignore"):
+        red = np.where(dof > 0, chi2 / np.maximum(dof, 1), np.nan)
+        scale = np.where(type_a, red, np.where(dof > 0, np.maximum(1.0, red), 1.0))
+        p_value = np.where(stated & (dof > 0), special.chdtrc(np.maximum(dof, 1), chi2), np.nan)
+    k = coverage_factors(confidence, dof, type_a)
+
+    vth = res["a"]
+    rth = -res["b"]
+    var_v = res["var_a"] * scale
+    var_r = res["var_b"] * scale
+    cov_vr = -res["cov_ab"] * scale
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        pos = rth > 0
+        isc = np.where(pos, vth / rth, np.nan)
+        d_v, d_r = 1.0 / rth, -vth / rth ** 2
+        u_isc = np.sqrt(np.maximum(d_v ** 2 * var_v + d_r ** 2 * var_r + 2 * d_v * d_r * cov_vr, 0))
+        pmax = np.where(pos, vth ** 2 / (4.0 * rth), np.nan)
+        e_v, e_r = vth / (2.0 * rth), -vth ** 2 / (4.0 * rth ** 2)
+        u_pmax = np.sqrt(np.maximum(e_v ** 2 * var_v + e_r ** 2 * var_r + 2 * e_v * e_r * cov_vr, 0))
+    u_isc = np.where(pos, u_isc, np.nan)
+    u_pmax = np.where(pos, u_pmax, np.nan)
+
+    nan = np.where(bad, np.nan, 1.0)
+    flags = _basic_flags(readings, m, bad, stated, scale, dof, res["converged"])
+    return Fits(
+        duts=readings.duts, n=n, method=method, vth=vth * nan, u_vth=np.sqrt(var_v) * nan,
+        rth=rth * nan, u_rth=np.sqrt(var_r) * nan, cov_vr=cov_vr * nan, chi2=chi2 * nan,
+        dof=dof, p_value=p_value * nan, scale=scale * nan, k=k, isc=isc * nan,
+        u_isc=u_isc * nan, pmax=pmax * nan, u_pmax=u_pmax * nan,
+        converged=res["converged"] & ~bad, error=tuple(errors), flags=flags,
+        confidence=float(confidence),
+        settings={"confidence": float(confidence), "source": readings.source})
+
+
+def _basic_flags(readings: Readings, m, bad, stated, scale, dof, converged):
+    """Flags the fit itself raises: cross-check notes, Type A fallback, scale applied."""
+    flags: list[list[Flag]] = [[] for _ in range(m)]
+    for note in readings.notes:
+        if not bad[note.group]:
+            flags[note.group].append(Flag(note.code, note.severity, note.message))
+    for k in np.flatnonzero(~stated & ~bad):
+        flags[k].append(Flag(
+            "type-a", "info",
+            "no measurement uncertainty stated: the uncertainty comes from the scatter alone "
+            f"(Type A, Student t with {dof[k]} degrees of freedom); state the meter accuracy "
+            "and resistor tolerance for an uncertainty a lab can defend"))
+    inflated = stated & ~bad & (scale > 1.0)
+    for k in np.flatnonzero(inflated):
+        flags[k].append(Flag(
+            "scale-applied", "info",
+            f"scatter exceeds the stated uncertainties (χ²/ν = {scale[k]:.3g}): the covariance "
+            f"was enlarged by S² = {scale[k]:.3g} (PDG convention, never reduced)"))
+    for k in np.flatnonzero(~converged & ~bad):
+        flags[k].append(Flag("not-converged", "warning",
+                             "the errors-in-variables iteration did not converge; treat the "
+                             "result with caution"))
+    return tuple(tuple(f) for f in flags)

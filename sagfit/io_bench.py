@@ -1,0 +1,158 @@
+"""Bench profiles: a small TOML file with the instruments' accuracies and identities.
+
+Edge module (reads one file). Format, in docs/input-format.md::
+
+    [voltage]
+    accuracy = "0.015%+2mV"      # ±(% of reading + offset), a rectangular half-width
+    instrument = "DMM-T2"        # optional: identifier, for the report's traceability list
+    calibration_due = 2027-05-01 # optional: a TOML date
+    [current]
+    accuracy = "0.2%+1mA"
+    [load]
+    tolerance = "1%"
+    [fit]
+    confidence = 0.95
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .errors import InputError, SpecFileError
+from .units import Accuracy, parse_accuracy, parse_percent
+
+__all__ = ["BenchProfile", "Instrument", "read_bench"]
+
+_ALLOWED = {
+    "voltage": {"accuracy", "instrument", "calibration_due", "distribution", "k"},
+    "current": {"accuracy", "instrument", "calibration_due", "distribution", "k"},
+    "load": {"tolerance", "instrument", "calibration_due"},
+    "fit": {"confidence"},
+    "bench": {"name", "operator", "location", "notes"},
+}
+
+
+@dataclass(frozen=True, slots=True)
+class Instrument:
+    role: str
+    identifier: str
+    spec: str
+    calibration_due: _dt.date | None = None
+
+    def to_dict(self) -> dict:
+        return {"role": self.role, "identifier": self.identifier, "spec": self.spec,
+                "calibration_due": self.calibration_due.isoformat()
+                if self.calibration_due else None}
+
+
+@dataclass(frozen=True, slots=True)
+class BenchProfile:
+    voltage_accuracy: Accuracy | None = None
+    current_accuracy: Accuracy | None = None
+    load_tolerance: float | None = None
+    confidence: float | None = None
+    instruments: tuple[Instrument, ...] = ()
+    info: dict = field(default_factory=dict)
+    path: str = ""
+
+
+def read_bench(path: str) -> BenchProfile:
+    """Read and strictly validate a bench profile; ``SpecFileError`` names the key."""
+    p = Path(path)
+    try:
+        raw = p.read_bytes()
+    except FileNotFoundError:
+        raise SpecFileError(path, "no such file") from None
+    except IsADirectoryError:
+        raise SpecFileError(path, "is a folder, not a bench profile") from None
+    except OSError as exc:
+        raise SpecFileError(path, f"cannot read the file ({exc.strerror or exc})") from None
+    if len(raw) > 1 << 20:
+        raise SpecFileError(path, "bench profile larger than 1 MiB; not a bench profile")
+    try:
+        doc = tomllib.loads(raw.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise SpecFileError(path, "not UTF-8 text") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise SpecFileError(path, f"not valid TOML ({exc})") from None
+    for section, body in doc.items():
+        if section not in _ALLOWED:
+            raise SpecFileError(path, f"unknown section (expected one of "
+                                      f"{', '.join(sorted(_ALLOWED))})", key=section)
+        if not isinstance(body, dict):
+            raise SpecFileError(path, "must be a table ([section])", key=section)
+        for key in body:
+            if key not in _ALLOWED[section]:
+                raise SpecFileError(path, f"unknown key (allowed: "
+                                          f"{', '.join(sorted(_ALLOWED[section]))})",
+                                    key=f"{section}.{key}")
+    out: dict = {"path": str(path)}
+    instruments = []
+    for role, dim in (("voltage", "V"), ("current", "A")):
+        sec = doc.get(role, {})
+        if "accuracy" in sec:
+            key = f"{role}.accuracy"
+            if not isinstance(sec["accuracy"], str):
+                raise SpecFileError(path, "write the accuracy as a string, e.g. \"0.05%+2mV\"",
+                                    key=key)
+            try:
+                acc = parse_accuracy(sec["accuracy"], dim, what=key)
+            except InputError as exc:
+                raise SpecFileError(path, str(exc), key=key) from None
+            dist = sec.get("distribution", "rectangular")
+            if dist not in ("rectangular", "normal"):
+                raise SpecFileError(path, "must be 'rectangular' or 'normal'",
+                                    key=f"{role}.distribution")
+            if dist == "normal":
+                k = sec.get("k", 2.0)
+                if not isinstance(k, (int, float)) or isinstance(k, bool) or not k > 0:
+                    raise SpecFileError(path, "coverage factor must be a positive number",
+                                        key=f"{role}.k")
+                acc = Accuracy(acc.percent, acc.offset, float(k), acc.text)
+            elif "k" in sec:
+                raise SpecFileError(path, "k applies only with distribution = 'normal'",
+                                    key=f"{role}.k")
+            out[f"{role}_accuracy"] = acc
+        instruments += _instrument(path, role, sec)
+    sec = doc.get("load", {})
+    if "tolerance" in sec:
+        t = sec["tolerance"]
+        try:
+            out["load_tolerance"] = parse_percent(t, what="load.tolerance") if isinstance(
+                t, str) else _bad_number(path, "load.tolerance")
+        except InputError as exc:
+            raise SpecFileError(path, str(exc), key="load.tolerance") from None
+        if not 0 <= out["load_tolerance"] < 100:
+            raise SpecFileError(path, "tolerance must be between 0 % and 100 %",
+                                key="load.tolerance")
+    instruments += _instrument(path, "load", sec)
+    conf = doc.get("fit", {}).get("confidence")
+    if conf is not None:
+        if not isinstance(conf, (int, float)) or isinstance(conf, bool) or not 0 < conf < 1:
+            raise SpecFileError(path, "must be a number between 0 and 1, e.g. 0.95",
+                                key="fit.confidence")
+        out["confidence"] = float(conf)
+    return BenchProfile(instruments=tuple(instruments), info=dict(doc.get("bench", {})), **out)
+
+
+def _bad_number(path, key):
+    raise SpecFileError(path, "write the tolerance with a per-cent sign, e.g. \"1%\"", key=key)
+
+
+def _instrument(path, role, sec) -> list[Instrument]:
+    if "instrument" not in sec and "calibration_due" not in sec:
+        return []
+    ident = sec.get("instrument", "")
+    if not isinstance(ident, str):
+        raise SpecFileError(path, "must be a string", key=f"{role}.instrument")
+    due = sec.get("calibration_due")
+    if due is not None and not isinstance(due, _dt.date):
+        raise SpecFileError(path, "must be a TOML date such as 2027-05-01 (no quotes)",
+                            key=f"{role}.calibration_due")
+    if isinstance(due, _dt.datetime):
+        due = due.date()
+    spec = str(sec.get("accuracy", sec.get("tolerance", "")))
+    return [Instrument(role, ident, spec, due)]

@@ -1,0 +1,558 @@
+"""CSV readings files → ``Readings``, and ``Fits`` → CSV.
+
+The reader takes what instruments and spreadsheets write: UTF-8 with or without BOM,
+UTF-16 with BOM, Windows-1252, CRLF, ``#`` comment lines (``# date: 2026-11-03``,
+``# temperature_C: 23.5`` become metadata), comma / semicolon / tab / pipe delimiters
+(sniffed from the header), decimal commas in semicolon files, blank lines, unrelated
+columns. Every problem is a ``ReadingsFileError`` naming the file, the line and the column.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import os
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+
+from .errors import ReadingsFileError
+from .readings import Readings
+from .units import Accuracy, parse_header_unit, parse_resistance
+
+__all__ = ["read_readings", "parse_table", "classify_header", "fits_table", "neutralise",
+           "MAX_BYTES", "MAX_LINE", "MAX_COLUMNS"]
+
+MAX_BYTES = int(os.environ.get("SAGFIT_MAX_BYTES", str(2 * 1024 ** 3)))
+MAX_LINE = 1 << 20          # one line longer than 1 MiB is not a readings file
+MAX_COLUMNS = 1000          # nor is a header with more than a thousand columns
+
+# role -> accepted base names (lower case, separators normalised to '_')
+_ROLES: dict[str, tuple[str, ...]] = {
+    "dut": ("dut", "serial", "id", "dut_id", "serial_number", "sn", "device", "uut", "unit_id",
+            "cell", "pack", "board"),
+    "load": ("load", "r_load", "rload", "load_resistance", "resistance", "r", "rl", "r_l",
+             "resistor", "load_r"),
+    "voltage": ("voltage", "v", "u", "terminal_voltage", "v_term", "vout", "v_out", "volts",
+                "v_load", "vload", "output_voltage"),
+    "current": ("current", "i", "i_load", "load_current", "iload", "iout", "i_out", "amps"),
+    "u_voltage": ("u_voltage", "u_v", "sigma_voltage", "sigma_v", "uncertainty_voltage"),
+    "u_current": ("u_current", "u_i", "sigma_current", "sigma_i", "uncertainty_current"),
+    "u_load": ("u_load", "u_r", "u_load_resistance", "sigma_load", "uncertainty_load"),
+    "load_tolerance": ("load_tolerance", "tolerance", "tol", "r_tolerance", "load_tol"),
+    "time": ("time", "t", "timestamp", "datetime", "date_time", "elapsed", "time_s"),
+    "group": ("group", "string", "bank", "batch", "lot"),
+    "temperature": ("temperature", "temp", "ambient", "temperature_c", "ambient_c"),
+}
+_DIMENSION = {"load": "ohm", "voltage": "V", "current": "A", "u_voltage": "V",
+              "u_current": "A", "u_load": "ohm", "load_tolerance": "%", "time": "s",
+              "temperature": "degC"}
+_NAME_TO_ROLE = {name: role for role, names in _ROLES.items() for name in names}
+_BRACKET_RE = re.compile(r"^(.*?)[\s_]*[\[(]\s*([^\])]*?)\s*[\])]\s*$")
+_SEPARATORS_RE = re.compile(r"[\s\-./]+")
+
+
+@dataclass(frozen=True, slots=True)
+class ColumnRole:
+    role: str
+    scale: float
+    header: str
+    index: int
+
+
+def _norm(name: str) -> str:
+    return _SEPARATORS_RE.sub("_", name.strip().lower()).strip("_")
+
+
+def classify_header(header: str) -> tuple[str, float] | None:
+    """Map a header to (role, scale to SI), ``None`` for an unrelated column.
+
+    Units may be a suffix (``voltage_mV``, ``load_kohm``) or in brackets
+    (``Voltage [mV]``, ``Load (kΩ)``). Raises ``ValueError`` for a recognised quantity
+    with a unit sagfit does not know or of the wrong kind.
+    """
+    h = header.strip().strip('"').strip()
+    m = _BRACKET_RE.match(h)
+    unit = None
+    if m:
+        base, unit = m.group(1), m.group(2)
+        role = _NAME_TO_ROLE.get(_norm(base))
+        if role is None:
+            return None
+    else:
+        low = _norm(h)
+        role = _NAME_TO_ROLE.get(low)
+        if role is None:
+            # unit as the last '_'-separated token, case kept (mV vs MV)
+            raw = re.split(r"[\s_]+", h)
+            if len(raw) >= 2:
+                base = _norm(" ".join(raw[:-1]))
+                role = _NAME_TO_ROLE.get(base)
+                if role is not None:
+                    unit = raw[-1]
+            if role is None:
+                return None
+    if unit is None or unit == "":
+        return role, 1.0
+    dim = _DIMENSION.get(role)
+    if dim is None:
+        raise ValueError(f"header {header!r}: a {role} column takes no unit")
+    parsed = parse_header_unit(unit)
+    if role == "time" and unit.lower() in ("iso", "iso8601", "utc", "date"):
+        return role, 1.0
+    if role == "time" and parsed is None:
+        factors = {"min": 60.0, "h": 3600.0, "hr": 3600.0, "ms": 1e-3}
+        if unit.lower() in factors:
+            return role, factors[unit.lower()]
+    if parsed is None:
+        raise ValueError(f"unknown unit {unit!r} in header {header!r} "
+                         f"(use e.g. {_example_unit(dim)})")
+    scale, got = parsed
+    if got != dim:
+        raise ValueError(f"unit {unit!r} in header {header!r} is not a unit of {dim}")
+    return role, scale
+
+
+def _example_unit(dim: str) -> str:
+    return {"V": "V or mV", "A": "A or mA", "ohm": "ohm, kohm or Ω", "%": "%",
+            "s": "s", "degC": "C"}.get(dim, dim)
+
+
+# ------------------------------------------------------------------------- decoding
+def _decode_head(data: bytes, path: str) -> tuple[str, str]:
+    """Pick the text encoding; return (encoding, text)."""
+    if data.startswith(b"\xef\xbb\xbf"):
+        enc = "utf-8-sig"
+    elif data.startswith((b"\xff\xfe", b"\xfe\xff")):
+        enc = "utf-16"
+    else:
+        enc = "utf-8"
+    if enc == "utf-8" and b"\x00" in data[:65536]:
+        raise ReadingsFileError(path, "this is a binary file, not a CSV text file "
+                                      "(NUL bytes found); export the readings as CSV")
+    try:
+        text = data.decode(enc)
+    except UnicodeDecodeError as exc:
+        if enc != "utf-8":
+            raise ReadingsFileError(path, f"cannot decode the file as {enc}: {exc.reason}") from None
+        try:
+            text = data.decode("cp1252")
+            enc = "cp1252"
+        except UnicodeDecodeError:
+            line = data[:exc.start].count(b"\n") + 1
+            raise ReadingsFileError(path, "not a text file in UTF-8 or Windows-1252 "
+                                          "(undecodable bytes)", line=line) from None
+    if enc == "utf-8-sig":
+        text = text[1:] if text.startswith("\ufeff") else text
+    if enc == "utf-16" and text.startswith("\ufeff"):
+        text = text[1:]
+    bad = sum(1 for ch in text[:4096] if ord(ch) < 32 and ch not in "\r\n\t")
+    if bad > 8:
+        raise ReadingsFileError(path, "this looks like a binary file, not a CSV text file "
+                                      "(control characters found)")
+    return enc, text
+
+
+def _sniff_delimiter(header: str, path: str, line: int) -> str:
+    counts = {d: _count_outside_quotes(header, d) for d in (",", ";", "\t", "|")}
+    best = max(counts, key=lambda d: counts[d])
+    if counts[best] == 0:
+        raise ReadingsFileError(
+            path, f"cannot find the column separator in the header {header[:60]!r} "
+                  "(expected ',', ';' or tab between at least two columns)", line=line)
+    return best
+
+
+def _count_outside_quotes(s: str, d: str) -> int:
+    if '"' not in s:
+        return s.count(d)
+    n, inside = 0, False
+    for ch in s:
+        if ch == '"':
+            inside = not inside
+        elif ch == d and not inside:
+            n += 1
+    return n
+
+
+def _split_header(header: str, delim: str) -> list[str]:
+    import csv
+
+    return next(csv.reader([header], delimiter=delim))
+
+
+# -------------------------------------------------------------------------- reading
+def read_readings(
+    path: str | os.PathLike,
+    *,
+    voltage_accuracy: Accuracy | None = None,
+    current_accuracy: Accuracy | None = None,
+    load_tolerance: float | None = None,
+    max_bytes: int | None = None,
+) -> Readings:
+    """Read a readings CSV into validated ``Readings``.
+
+    Parameters
+    ----------
+    path : path-like
+        The CSV file (see docs/input-format.md).
+    voltage_accuracy, current_accuracy : Accuracy, optional
+        Meter specs applied where the file gives no per-reading uncertainty.
+    load_tolerance : float, optional
+        Resistor tolerance in %, where the file gives none.
+    max_bytes : int, optional
+        Refuse larger files (default ``SAGFIT_MAX_BYTES`` or 2 GiB).
+
+    Raises
+    ------
+    ReadingsFileError
+        With the file name, and the line and column of a bad cell.
+    """
+    p = Path(path)
+    name = str(path)
+    limit = MAX_BYTES if max_bytes is None else int(max_bytes)
+    try:
+        if p.is_dir():
+            raise ReadingsFileError(name, "is a folder, not a readings file")
+        size = p.stat().st_size
+    except FileNotFoundError:
+        raise ReadingsFileError(name, "no such file") from None
+    except PermissionError:
+        raise ReadingsFileError(name, "permission denied") from None
+    except OSError as exc:
+        raise ReadingsFileError(name, f"cannot open the file ({exc.strerror or exc})") from None
+    if size > limit:
+        raise ReadingsFileError(name, f"the file is {size / 1e6:.1f} MB, above the limit of "
+                                      f"{limit / 1e6:.1f} MB (set SAGFIT_MAX_BYTES to raise it)")
+    try:
+        with open(p, "rb") as fh:
+            data = fh.read(limit + 1)
+    except PermissionError:
+        raise ReadingsFileError(name, "permission denied") from None
+    except OSError as exc:
+        raise ReadingsFileError(name, f"cannot read the file ({exc.strerror or exc})") from None
+    return parse_table(data, name, stem=p.stem, voltage_accuracy=voltage_accuracy,
+                       current_accuracy=current_accuracy, load_tolerance=load_tolerance)
+
+
+def parse_table(data: bytes, name: str, *, stem: str | None = None,
+                voltage_accuracy: Accuracy | None = None,
+                current_accuracy: Accuracy | None = None,
+                load_tolerance: float | None = None) -> Readings:
+    """Parse the bytes of a readings CSV (see :func:`read_readings`)."""
+    import pandas as pd
+
+    if not data.strip():
+        raise ReadingsFileError(name, "the file is empty")
+    import hashlib
+
+    sha256 = hashlib.sha256(data).hexdigest()
+    enc, text = _decode_head(data, name)
+    if enc != "utf-8":
+        data = text.encode("utf-8")  # one encoding from here on; BOM already dropped
+    elif data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    # ---- comment lines and the header, read by hand from the top of the file
+    meta: dict[str, object] = {}
+    pos = 0
+    lineno = 0
+    header = None
+    while pos < len(data):
+        end = data.find(b"\n", pos)
+        end = len(data) if end < 0 else end
+        if end - pos > MAX_LINE:
+            raise ReadingsFileError(name, f"line longer than {MAX_LINE} bytes; not a readings "
+                                          "table", line=lineno + 1)
+        raw = data[pos:end].rstrip(b"\r").decode("utf-8", errors="replace")
+        lineno += 1
+        pos = end + 1
+        s = raw.strip()
+        if not s:
+            continue
+        if s.startswith("#"):
+            m = re.match(r"#\s*([A-Za-z][\w]*)\s*[:=]\s*(.*)$", s)
+            if m:
+                meta[_norm(m.group(1))] = m.group(2).strip()
+            meta.setdefault("comments", []).append(s.lstrip("#").strip())
+            continue
+        header = raw
+        break
+    if header is None:
+        raise ReadingsFileError(name, "no header line (only comments or blank lines)")
+    header_line = lineno
+    delim = _sniff_delimiter(header, name, header_line)
+    names = _split_header(header, delim)
+    if len(names) > MAX_COLUMNS:
+        raise ReadingsFileError(name, f"{len(names)} columns in the header, more than the "
+                                      f"limit of {MAX_COLUMNS}", line=header_line)
+    roles: dict[str, ColumnRole] = {}
+    ignored = []
+    for col, h in enumerate(names):
+        if not h.strip():
+            continue
+        try:
+            c = classify_header(h)
+        except ValueError as exc:
+            raise ReadingsFileError(name, str(exc), line=header_line, column=h.strip()) from None
+        if c is None:
+            ignored.append(h.strip())
+            continue
+        role, scale = c
+        if role in roles:
+            raise ReadingsFileError(name, f"columns {roles[role].header!r} and {h.strip()!r} "
+                                          f"both look like {role}; rename one", line=header_line,
+                                    column=h.strip())
+        roles[role] = ColumnRole(role, scale, h.strip(), col)
+    meta["ignored_columns"] = ignored
+    meta["sha256"] = sha256
+    meta["delimiter"] = delim
+    meta["encoding"] = enc
+    present = [r for r in ("load", "voltage", "current") if r in roles]
+    if len(present) < 2 or ("voltage" not in roles and "current" not in roles):
+        found = ", ".join(repr(n.strip()) for n in names if n.strip()) or "none"
+        raise ReadingsFileError(
+            name, f"need two of load, voltage and current columns; found headers {found} "
+                  "(name them e.g. load_ohm, voltage_V, current_A)", line=header_line)
+
+    body = data[pos:]
+    lines_of_rows, body = _data_rows(body, header_line, name, delim, len(names))
+    if lines_of_rows.size == 0:
+        raise ReadingsFileError(name, "no readings (the table has a header but no rows)",
+                                line=header_line)
+    decimal = "," if delim == ";" else "."
+    usecols = [roles[r].index for r in roles]
+    text_roles = {"dut", "load", "time", "group"}
+    try:
+        frame = pd.read_csv(
+            io.BytesIO(body), sep=delim, header=None, names=list(range(len(names))),
+            usecols=usecols, decimal=decimal,
+            dtype={roles[r].index: str for r in roles if r in text_roles},
+            skip_blank_lines=False, engine="c", encoding="utf-8", quotechar='"',
+            keep_default_na=True, na_values=[""], low_memory=False)
+    except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise ReadingsFileError(name, f"cannot parse the table ({_short(exc)})") from None
+    if len(frame) != lines_of_rows.size:
+        raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
+                                      "quote character?)")
+    def column(role):
+        return frame[roles[role].index]
+
+    def header_of(role):
+        return roles[role].header
+
+    def numeric(role):
+        s = column(role)
+        if s.dtype.kind in "fiu":
+            a = s.to_numpy(dtype=np.float64)
+        else:
+            conv = pd.to_numeric(s.str.replace(",", ".", regex=False) if decimal == "," else s,
+                                 errors="coerce")
+            bad = conv.isna() & s.notna()
+            if bad.any():
+                k = int(np.flatnonzero(bad.to_numpy())[0])
+                cell = str(s.iloc[k])
+                hint = (" (use '.' as the decimal separator)" if "," in cell and decimal == "."
+                        else "")
+                raise ReadingsFileError(name, f"{cell[:40]!r} is not a number{hint}",
+                                        line=int(lines_of_rows[k]), column=header_of(role))
+            a = conv.to_numpy(dtype=np.float64)
+        return a * roles[role].scale
+
+    def row_error(role, k, msg):
+        raise ReadingsFileError(name, msg, line=int(lines_of_rows[k]), column=header_of(role))
+
+    kwargs: dict[str, object] = {}
+    for role in ("voltage", "current", "u_voltage", "u_current", "u_load"):
+        if role in roles:
+            a = numeric(role)
+            if role.startswith("u_"):
+                a = np.where(np.isnan(a), np.nan, a)
+            kwargs[role] = a
+    if "load_tolerance" in roles:
+        kwargs["load_tolerance_pct"] = numeric("load_tolerance")
+    if "load" in roles:
+        kwargs["load"] = _parse_loads(column("load"), roles["load"].scale, name,
+                                      header_of("load"), lines_of_rows)
+    if "time" in roles:
+        kwargs["time"] = _parse_times(column("time"), roles["time"].scale, name,
+                                      header_of("time"), lines_of_rows)
+    if "dut" in roles:
+        s = column("dut")
+        empty = s.isna().to_numpy()
+        if empty.any():
+            row_error("dut", int(np.flatnonzero(empty)[0]), "empty DUT id")
+        codes, uniques = pd.factorize(s.str.strip(), sort=False)
+        kwargs["group"] = codes.astype(np.int64)
+        kwargs["duts"] = [str(u) for u in uniques]
+    else:
+        kwargs["group"] = np.zeros(lines_of_rows.size, np.int64)
+        kwargs["duts"] = [stem or "DUT"]
+    if "group" in roles:
+        s = column("group").fillna("")
+        meta["group_labels"] = s.to_numpy(dtype=object)
+    if "temperature" in roles:
+        meta["temperature_C"] = numeric("temperature")
+    columns = {r: roles[r].header for r in roles}
+    columns["load_tolerance_pct"] = columns.get("load_tolerance", "load_tolerance_pct")
+    return Readings.from_arrays(
+        voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
+        load_tolerance=load_tolerance, source=name, line=lines_of_rows, columns=columns,
+        meta=meta, **kwargs)
+
+
+def _short(exc: Exception) -> str:
+    s = str(exc).strip().splitlines()
+    return s[-1][:200] if s else type(exc).__name__
+
+
+def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int):
+    """Line numbers of the data rows, and the body with blank and comment lines removed.
+
+    Checks every row's field count against the header (vectorised) when the file has no
+    quote characters; with quotes, pandas' tokenizer checks it.
+    """
+    arr = np.frombuffer(body, dtype=np.uint8)
+    nl = np.flatnonzero(arr == 10)
+    starts = np.concatenate(([0], nl + 1))
+    ends = np.concatenate((nl, [arr.size]))
+    lengths = ends - starts
+    if lengths.size and int(lengths.max()) > MAX_LINE:
+        k = int(np.argmax(lengths))
+        raise ReadingsFileError(name, f"line longer than {MAX_LINE} bytes; not a readings table",
+                                line=header_line + 1 + k)
+    has_cr = np.zeros(lengths.size, bool)
+    nz = lengths > 0
+    has_cr[nz] = arr[ends[nz] - 1] == 13
+    eff = lengths - has_cr
+    first = np.full(lengths.size, 32, np.uint8)
+    ne = eff > 0
+    first[ne] = arr[starts[ne]]
+    blank = eff == 0
+    for k in np.flatnonzero(ne & ((first == 32) | (first == 9))):
+        if not body[starts[k]:starts[k] + eff[k]].strip():
+            blank[k] = True  # spaces and tabs only
+    keep = ~blank & (first != 35)
+    rows = np.flatnonzero(keep)
+    if rows.size and b'"' not in body:
+        dpos = np.flatnonzero(arr == ord(delim))
+        per_line = np.bincount(np.searchsorted(nl, dpos, side="left"), minlength=lengths.size)
+        wrong = keep & (per_line != ncols - 1)
+        if wrong.any():
+            k = int(np.flatnonzero(wrong)[0])
+            got = int(per_line[k]) + 1
+            hint = ""
+            if delim == "," and got > ncols:
+                hint = " (a decimal comma in a comma-separated file? use '.' or ';' as separator)"
+            raise ReadingsFileError(name, f"{got} fields where the header has {ncols}{hint}",
+                                    line=header_line + 1 + k)
+    lines = np.asarray(header_line + 1 + rows, dtype=np.int64)
+    if rows.size == 0:
+        return lines, b""
+    last = int(rows[-1])
+    if keep[: last + 1].all():
+        return lines, body[: ends[last]]
+    return lines, b"\n".join(body[starts[k]:ends[k]] for k in rows)
+
+
+def _parse_loads(s, scale: float, name: str, header: str, lines) -> np.ndarray:
+    import pandas as pd
+
+    empty = s.isna().to_numpy()
+    if empty.any():
+        k = int(np.flatnonzero(empty)[0])
+        raise ReadingsFileError(name, "empty load cell (write a resistance such as 4.7k, or "
+                                      "'open')", line=int(lines[k]), column=header)
+    num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64)
+    out = num * scale
+    todo = np.isnan(num) | np.isinf(num)
+    if todo.any():
+        strs = s.to_numpy(dtype=object)[todo]
+        uniq, inv = np.unique(strs.astype(str), return_inverse=True)
+        vals = np.empty(uniq.size)
+        for j, text in enumerate(uniq):
+            try:
+                vals[j] = parse_resistance(text, scale)
+            except ValueError as exc:
+                k = int(np.flatnonzero(todo)[int(np.flatnonzero(inv == j)[0])])
+                raise ReadingsFileError(name, str(exc), line=int(lines[k]), column=header) from None
+            if text.strip().lower() in ("-inf",) or (math.isnan(vals[j])):
+                k = int(np.flatnonzero(todo)[int(np.flatnonzero(inv == j)[0])])
+                raise ReadingsFileError(name, f"{text!r} is not a load resistance",
+                                        line=int(lines[k]), column=header)
+        out[todo] = vals[inv]
+    return out
+
+
+def _parse_times(s, scale: float, name: str, header: str, lines) -> np.ndarray:
+    import pandas as pd
+
+    empty = s.isna().to_numpy()
+    if empty.all():
+        return np.full(len(s), np.nan)
+    num = pd.to_numeric(s, errors="coerce")
+    if not (num.isna() & s.notna()).any():
+        a = num.to_numpy(dtype=np.float64) * scale
+        bad = np.flatnonzero(np.isinf(a))
+        if bad.size:
+            raise ReadingsFileError(name, "infinite time", line=int(lines[bad[0]]), column=header)
+        return a
+    try:
+        ts = pd.to_datetime(s, errors="coerce", format="ISO8601", utc=True)
+    except (ValueError, TypeError):
+        ts = pd.Series(pd.NaT, index=s.index)
+    bad = ts.isna() & s.notna()
+    if bad.any():
+        k = int(np.flatnonzero(bad.to_numpy())[0])
+        raise ReadingsFileError(name, f"{str(s.iloc[k])[:40]!r} is neither seconds nor an ISO "
+                                      "8601 date-time (e.g. 2026-11-03T14:05:00)",
+                                line=int(lines[k]), column=header)
+    secs = (ts - pd.Timestamp("1970-01-01", tz="UTC")).dt.total_seconds()
+    return secs.to_numpy(dtype=np.float64)
+
+
+# -------------------------------------------------------------------------- writing
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralise(text: str) -> str:
+    """Make a text cell safe for a spreadsheet: a leading ``= + - @`` gets a ``'`` prefix.
+
+    Against CSV formula injection (OWASP, "CSV Injection", common practice).
+    """
+    if text and text.startswith(_FORMULA_START):
+        return "'" + text
+    return text
+
+
+def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
+    """The results as a pandas DataFrame, one row per DUT, SI units, full precision."""
+    import pandas as pd
+
+    k = fits.k
+    cols = {
+        "dut": [neutralise(d) for d in fits.duts],
+        "method": fits.method.astype(str),
+        "n": fits.n,
+        "vth": fits.vth, "vth_u": fits.u_vth,
+        "vth_ci_low": fits.vth - k * fits.u_vth, "vth_ci_high": fits.vth + k * fits.u_vth,
+        "rth": fits.rth, "rth_u": fits.u_rth,
+        "rth_ci_low": fits.rth - k * fits.u_rth, "rth_ci_high": fits.rth + k * fits.u_rth,
+        "isc": fits.isc, "isc_u": fits.u_isc,
+        "pmax": fits.pmax, "pmax_u": fits.u_pmax,
+        "corr_vth_rth": _corr(fits),
+        "chi2": fits.chi2, "dof": fits.dof, "p_value": fits.p_value,
+        "coverage_factor": k, "confidence": np.full(len(fits), fits.confidence),
+        "flags": [neutralise(";".join(f.code for f in fl)) for fl in fits.flags],
+        "error": [neutralise(e) if e else "" for e in fits.error],
+    }
+    if extra_columns:
+        cols.update(extra_columns)
+    return pd.DataFrame(cols)
+
+
+def _corr(fits):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return fits.cov_vr / (fits.u_vth * fits.u_rth)

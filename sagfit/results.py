@@ -1,0 +1,319 @@
+"""Frozen result types.
+
+``Fits`` is columnar: one array per quantity over all DUTs, so a batch of 100 000 DUTs
+costs a few arrays, not 100 000 objects. Indexing it (``fits["U17"]`` or ``fits[0]``)
+builds the per-DUT view ``FitResult`` with ``Estimate`` fields on demand.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+from typing import Iterator, Mapping
+
+import numpy as np
+
+from .formatting import format_estimate
+
+__all__ = ["Flag", "Estimate", "FitResult", "Fits"]
+
+
+def _f(x) -> float | None:
+    """A float for JSON: ``None`` for NaN or ±inf."""
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+@dataclass(frozen=True, slots=True)
+class Flag:
+    """A finding about one DUT: ``code`` (stable, machine-readable), ``severity``
+    (``"info"`` or ``"warning"``) and a plain-words ``message``."""
+
+    code: str
+    severity: str
+    message: str
+
+    def to_dict(self) -> dict:
+        return {"code": self.code, "severity": self.severity, "message": self.message}
+
+
+@dataclass(frozen=True, slots=True)
+class Estimate:
+    """A value with its standard uncertainty ``u`` and a confidence interval.
+
+    ``ci_low``/``ci_high`` are ``value ∓ k·u`` with the coverage factor ``k`` of the fit
+    (normal quantile for stated uncertainties, Student t for a Type A fit) at ``level``.
+    """
+
+    value: float
+    u: float
+    ci_low: float
+    ci_high: float
+    level: float
+    unit: str = ""
+
+    def __repr__(self) -> str:
+        return f"<Estimate {format_estimate(self.value, self.u, self.unit)}>"
+
+    def __str__(self) -> str:
+        return format_estimate(self.value, self.u, self.unit)
+
+    def to_dict(self) -> dict:
+        return {"value": _f(self.value), "u": _f(self.u),
+                "ci": [_f(self.ci_low), _f(self.ci_high)]}
+
+
+@dataclass(frozen=True, slots=True)
+class FitResult:
+    """The Thevenin/Norton equivalent of one DUT.
+
+    Attributes
+    ----------
+    dut : str
+    n : int
+        Number of readings used.
+    method : str
+        ``"york"`` (errors in I and V, York et al. 2004), ``"wls"`` (errors in V only),
+        ``"ols"`` (no uncertainty stated; Type A from the scatter) or ``""`` on error.
+    vth, rth : Estimate
+        Open-circuit voltage (V) and internal resistance (Ω).
+    isc, pmax : Estimate
+        Short-circuit (Norton) current Vth/Rth (A) and maximum power Vth²/(4·Rth) (W),
+        with delta-method uncertainties using the full covariance.
+    corr_vth_rth : float
+        Correlation coefficient of Vth and Rth.
+    cov : ndarray, shape (2, 2)
+        Covariance of (Vth, Rth), after any scale factor.
+    chi2 : float
+        Weighted residual sum of squares (for OLS: the plain residual sum of squares).
+    dof : int
+        n − 2.
+    p_value : float or None
+        P(χ²_dof ≥ chi2); ``None`` when no uncertainty was stated or dof = 0.
+    scale : float
+        Factor S² applied to the covariance: max(1, χ²/ν) for stated uncertainties
+        (PDG convention, never below 1); s² = χ²/ν for OLS.
+    coverage_factor : float
+        k used for the intervals.
+    flags : tuple of Flag
+    diagnostics : dict
+        Test statistics and p-values of the diagnostic checks.
+    error : str or None
+        Why this DUT could not be fitted (then the estimates are NaN).
+    """
+
+    dut: str
+    n: int
+    method: str
+    vth: Estimate
+    rth: Estimate
+    isc: Estimate
+    pmax: Estimate
+    corr_vth_rth: float
+    cov: np.ndarray
+    chi2: float
+    dof: int
+    p_value: float | None
+    scale: float
+    coverage_factor: float
+    converged: bool
+    flags: tuple[Flag, ...] = ()
+    diagnostics: Mapping[str, object] = field(default_factory=dict)
+    extra: Mapping[str, object] = field(default_factory=dict)
+    error: str | None = None
+
+    def __repr__(self) -> str:
+        if self.error:
+            return f"<FitResult {self.dut} error: {self.error}>"
+        v = format_estimate(self.vth.value, self.vth.u, "V").replace(" ± ", "±")
+        r = format_estimate(self.rth.value, self.rth.u, "Ω").replace(" ± ", "±")
+        return f"<FitResult {self.dut} Vth={v} Rth={r} {self.method}>"
+
+    @property
+    def ok(self) -> bool:
+        return self.error is None
+
+    def to_dict(self) -> dict:
+        """Plain JSON-ready dict, SI units (the shape of ``sagfit fit --json``)."""
+        d = {
+            "dut": self.dut, "n": int(self.n), "method": self.method or None,
+            "vth": self.vth.to_dict(), "rth": self.rth.to_dict(),
+            "isc": self.isc.to_dict(), "pmax": self.pmax.to_dict(),
+            "norton": {"current": self.isc.to_dict(), "resistance": self.rth.to_dict()},
+            "corr_vth_rth": _f(self.corr_vth_rth),
+            "chi2": _f(self.chi2), "dof": int(self.dof), "p_value": _f(self.p_value),
+            "scale_factor": _f(math.sqrt(self.scale)) if self.scale > 0 else None,
+            "coverage_factor": _f(self.coverage_factor),
+            "converged": bool(self.converged),
+            "flags": [f.to_dict() for f in self.flags],
+            "diagnostics": _jsonable(self.diagnostics),
+        }
+        for k, v in self.extra.items():
+            d[k] = _jsonable(v)
+        if self.error:
+            d["error"] = self.error
+        return d
+
+    def as_record(self) -> dict:
+        """Flat plain-float record (for SQLite and CSV)."""
+        return {
+            "dut": self.dut, "n": int(self.n), "method": self.method,
+            "vth": _f(self.vth.value), "vth_u": _f(self.vth.u),
+            "rth": _f(self.rth.value), "rth_u": _f(self.rth.u),
+            "cov_vth_rth": _f(self.cov[0, 1]), "chi2": _f(self.chi2), "dof": int(self.dof),
+            "p_value": _f(self.p_value),
+            "flags": ";".join(f.code for f in self.flags), "error": self.error,
+        }
+
+
+def _jsonable(x):
+    if isinstance(x, Mapping):
+        return {str(k): _jsonable(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_jsonable(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return [_jsonable(v) for v in x.tolist()]
+    if isinstance(x, (bool, np.bool_)):
+        return bool(x)
+    if isinstance(x, (int, np.integer)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        return _f(x)
+    if hasattr(x, "to_dict"):
+        return x.to_dict()
+    return x
+
+
+_ARRAY_FIELDS = ("n", "vth", "u_vth", "rth", "u_rth", "cov_vr", "chi2", "dof", "p_value",
+                 "scale", "k", "isc", "u_isc", "pmax", "u_pmax", "converged", "method")
+
+
+@dataclass(frozen=True)
+class Fits:
+    """Fit results for many DUTs, as arrays (one element per DUT).
+
+    Attributes
+    ----------
+    duts : tuple of str
+    n, dof : ndarray of int
+    method : ndarray of str
+    vth, u_vth, rth, u_rth, cov_vr : ndarray
+        Estimates, standard uncertainties and covariance of (Vth, Rth), scale included.
+    chi2, p_value, scale, k : ndarray
+        χ², its p-value (NaN when undefined), covariance scale factor, coverage factor.
+    isc, u_isc, pmax, u_pmax : ndarray
+        Derived Norton current and maximum power with uncertainties.
+    converged : ndarray of bool
+    error : tuple of (str or None)
+    flags : tuple of tuple of Flag
+    diagnostics : mapping of name → mapping of field → ndarray
+        Columnar diagnostics (statistics and p-values per check).
+    extra : mapping of name → sequence
+        Per-DUT extra JSON fields (for example the uncertainty budget).
+    confidence : float
+    settings : mapping
+        The settings used (for reports and the history).
+    """
+
+    duts: tuple[str, ...]
+    n: np.ndarray
+    method: np.ndarray
+    vth: np.ndarray
+    u_vth: np.ndarray
+    rth: np.ndarray
+    u_rth: np.ndarray
+    cov_vr: np.ndarray
+    chi2: np.ndarray
+    dof: np.ndarray
+    p_value: np.ndarray
+    scale: np.ndarray
+    k: np.ndarray
+    isc: np.ndarray
+    u_isc: np.ndarray
+    pmax: np.ndarray
+    u_pmax: np.ndarray
+    converged: np.ndarray
+    error: tuple
+    flags: tuple
+    confidence: float
+    diagnostics: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
+    extra: Mapping[str, object] = field(default_factory=dict)
+    settings: Mapping[str, object] = field(default_factory=dict)
+
+    def __post_init__(self):
+        for name in _ARRAY_FIELDS:
+            a = getattr(self, name)
+            if isinstance(a, np.ndarray) and a.flags.writeable:
+                a = a.copy()
+                a.setflags(write=False)
+                object.__setattr__(self, name, a)
+
+    def __len__(self) -> int:
+        return len(self.duts)
+
+    def __repr__(self) -> str:
+        bad = sum(e is not None for e in self.error)
+        return f"<Fits {len(self)} DUT(s), {len(self) - bad} fitted, {bad} error(s)>"
+
+    @property
+    def ok(self) -> np.ndarray:
+        """Boolean mask of the DUTs that were fitted."""
+        return np.array([e is None for e in self.error], dtype=bool)
+
+    def index(self, key) -> int:
+        if isinstance(key, (int, np.integer)):
+            i = int(key)
+            if not -len(self) <= i < len(self):
+                raise IndexError(i)
+            return i % len(self)
+        try:
+            return self.duts.index(str(key))
+        except ValueError:
+            raise KeyError(key) from None
+
+    def __getitem__(self, key) -> FitResult:
+        i = self.index(key)
+        lvl = self.confidence
+        k = float(self.k[i])
+
+        def est(v, u, unit):
+            v, u = float(v), float(u)
+            return Estimate(v, u, v - k * u, v + k * u, lvl, unit)
+
+        cov = np.array([[self.u_vth[i] ** 2, self.cov_vr[i]],
+                        [self.cov_vr[i], self.u_rth[i] ** 2]])
+        denom = self.u_vth[i] * self.u_rth[i]
+        corr = float(self.cov_vr[i] / denom) if denom > 0 else math.nan
+        p = float(self.p_value[i])
+        diag = {name: {f: (col[i].item() if hasattr(col[i], "item") else col[i])
+                       for f, col in cols.items()}
+                for name, cols in self.diagnostics.items()}
+        extra = {name: col[i] for name, col in self.extra.items() if col[i] is not None}
+        return FitResult(
+            dut=self.duts[i], n=int(self.n[i]), method=str(self.method[i]),
+            vth=est(self.vth[i], self.u_vth[i], "V"), rth=est(self.rth[i], self.u_rth[i], "Ω"),
+            isc=est(self.isc[i], self.u_isc[i], "A"), pmax=est(self.pmax[i], self.u_pmax[i], "W"),
+            corr_vth_rth=corr, cov=cov, chi2=float(self.chi2[i]), dof=int(self.dof[i]),
+            p_value=p if math.isfinite(p) else None, scale=float(self.scale[i]),
+            coverage_factor=k, converged=bool(self.converged[i]), flags=tuple(self.flags[i]),
+            diagnostics=diag, extra=extra, error=self.error[i])
+
+    def __iter__(self) -> Iterator[FitResult]:
+        for i in range(len(self)):
+            yield self[i]
+
+    def replace(self, **changes) -> "Fits":
+        """A new ``Fits`` with some fields replaced (results are never changed in place)."""
+        return dataclasses.replace(self, **changes)
+
+    def add_flags(self, new_flags) -> "Fits":
+        """A new ``Fits`` with ``new_flags[i]`` (a sequence of Flag) appended to DUT i."""
+        merged = tuple(tuple(a) + tuple(b) if b else tuple(a)
+                       for a, b in zip(self.flags, new_flags))
+        return self.replace(flags=merged)
+
+    def to_dicts(self) -> list[dict]:
+        return [r.to_dict() for r in self]

@@ -1,0 +1,57 @@
+"""The usual cautions, raised by what the numbers say.
+
+These are reminders drawn from common practice, not a safety assessment. Thresholds:
+60 V DC as the limit above which a voltage is treated as hazardous (common practice,
+the usual extra-low-voltage boundary for DC); 10 A prospective short-circuit current
+as "high current" and 5 W of resistor dissipation as "hot" (sagfit's own choices,
+deliberately low).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .formatting import format_value
+
+__all__ = ["cautions", "DEFERRAL", "HAZARDOUS_V", "HIGH_CURRENT_A", "HOT_RESISTOR_W"]
+
+HAZARDOUS_V = 60.0
+HIGH_CURRENT_A = 10.0
+HOT_RESISTOR_W = 5.0
+DEFERRAL = ("These reminders are not a safety assessment: follow local electrical codes, "
+            "the manuals of the source and of every instrument, and licensed practice.")
+
+
+def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
+             always: bool = False) -> list[str]:
+    """Cautions for a set of results (arrays; NaN ignored); the deferral line last.
+
+    Returns an empty list when nothing applies, unless ``always``.
+    """
+    out = []
+
+    def mx(a):
+        if a is None:
+            return np.nan
+        a = np.asarray(a, float)
+        a = a[np.isfinite(a)]
+        return float(np.max(np.abs(a))) if a.size else np.nan
+
+    v = np.nanmax([mx(vth), mx(voltages)]) if (vth is not None or voltages is not None) else np.nan
+    if v > HAZARDOUS_V:
+        out.append(f"Hazardous voltage: up to {format_value(v, 'V', 3)} DC (above 60 V DC is "
+                   "treated as hazardous, common practice). Work dead where you can, use rated "
+                   "leads and probes, and keep one hand away from the circuit.")
+    i = mx(isc)
+    if i > HIGH_CURRENT_A:
+        out.append(f"High prospective short-circuit current: about {format_value(i, 'A', 2)}. "
+                   "Compute Isc, never measure it by shorting the terminals; a short on a "
+                   "battery can melt tools and start fires. Fuse the test leads.")
+    p = mx(reading_power)
+    if p > HOT_RESISTOR_W:
+        out.append(f"Hot load resistors: up to {format_value(p, 'W', 2)} dissipated in a load. "
+                   "Use resistors rated (and derated) for it, keep readings short, let them "
+                   "cool, and keep them off the bench top and away from cables.")
+    if out or always:
+        out.append(DEFERRAL)
+    return out

@@ -1,0 +1,215 @@
+"""Physical units, SI prefixes, resistor codes and instrument accuracy specs.
+
+Pure string and number handling: no file access, no heavy imports.
+
+References
+----------
+- SI prefixes: BIPM, *The International System of Units* (SI Brochure, 9th ed., 2019), Table 7.
+- Resistor "RKM" code (``4k7``, ``R47``, ``1M5``): IEC 60062:2016, clause 4 (letter
+  code for resistance values). The letter stands where the decimal point would be.
+- Meter specification ±(p % of reading + offset) read as a rectangular half-width a,
+  standard uncertainty a/√3: JCGM 100:2008 (GUM), 4.3.7.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+
+from .errors import InputError
+
+__all__ = [
+    "PREFIXES",
+    "Accuracy",
+    "parse_accuracy",
+    "parse_quantity",
+    "parse_resistance",
+    "parse_percent",
+    "parse_header_unit",
+    "unit_dimension",
+]
+
+# SI Brochure (2019) Table 7, the prefixes a bench sees. 'u' stands for micro
+# when no Greek letter is at hand (common practice); 'K' is read as kilo because
+# resistor markings and spreadsheets write it so (common practice).
+PREFIXES: dict[str, float] = {
+    "T": 1e12, "G": 1e9, "M": 1e6, "k": 1e3, "K": 1e3, "": 1.0,
+    "m": 1e-3, "u": 1e-6, "µ": 1e-6, "μ": 1e-6, "n": 1e-9, "p": 1e-12,
+}
+
+# unit symbol (case as written) -> dimension
+_UNIT_SYMBOLS: dict[str, str] = {
+    "V": "V", "v": "V", "volt": "V", "volts": "V",
+    "A": "A", "a": "A", "amp": "A", "amps": "A", "ampere": "A",
+    "ohm": "ohm", "ohms": "ohm", "Ohm": "ohm", "Ohms": "ohm", "OHM": "ohm",
+    "Ω": "ohm", "Ω": "ohm", "R": "ohm",
+    "s": "s", "sec": "s", "S": "s",
+    "%": "%", "pct": "%", "percent": "%",
+    "C": "degC", "°C": "degC", "degC": "degC", "celsius": "degC",
+    "W": "W",
+    "h": "h", "min": "min",
+}
+
+_NUMBER = r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"
+_QUANTITY_RE = re.compile(rf"^\s*({_NUMBER})\s*([TGMkKmuµμnp]?)\s*([A-Za-zΩΩ°%]*)\s*$")
+_RKM_RE = re.compile(r"^\s*(\d*)([RKMGTLrkm])(\d*)\s*$")
+# IEC 60062 letters; a lower-case 'm' is read as milli, as in SI (common practice).
+_RKM_SCALE = {"R": 1.0, "r": 1.0, "K": 1e3, "k": 1e3, "M": 1e6, "m": 1e-3, "G": 1e9,
+              "T": 1e12, "L": 1e-3}
+_OPEN_WORDS = {"open", "oc", "o/c", "inf", "+inf", "infinity", "∞", "open circuit", "opencircuit",
+               "none", "nc"}
+_SHORT_WORDS = {"short", "sc", "s/c", "short circuit", "shortcircuit"}
+
+
+def unit_dimension(symbol: str) -> tuple[float, str] | None:
+    """Return (scale to SI, dimension) for a unit such as ``mV``, ``kΩ``, ``mA``, ``%``.
+
+    ``None`` when the symbol is not a unit sagfit knows. Prefixes are case-sensitive
+    (``mV`` is millivolt, ``MV`` megavolt) except ``K``, read as kilo.
+    """
+    s = symbol.strip()
+    if s in _UNIT_SYMBOLS:
+        return 1.0, _UNIT_SYMBOLS[s]
+    if s.lower() in ("ohm", "ohms"):
+        return 1.0, "ohm"
+    if len(s) > 1 and s[0] in PREFIXES:
+        rest = s[1:]
+        dim = _UNIT_SYMBOLS.get(rest) or ("ohm" if rest.lower() in ("ohm", "ohms") else None)
+        if dim in ("V", "A", "ohm", "W") and rest != "R":
+            return PREFIXES[s[0]], dim
+        if dim == "s" and rest == "s":
+            return PREFIXES[s[0]], "s"
+    return None
+
+
+def parse_header_unit(symbol: str) -> tuple[float, str] | None:
+    """Unit in a CSV header (``mV``, ``kohm``, ``Ω``, ``%``); alias of :func:`unit_dimension`."""
+    return unit_dimension(symbol)
+
+
+def parse_quantity(text: str, dimension: str, *, what: str = "value") -> float:
+    """Parse ``'2mV'``, ``'0.5 A'``, ``'4.7k'`` into SI units of ``dimension``.
+
+    A bare number is taken in SI base units. Raises :class:`InputError` on
+    anything else, naming ``what``.
+    """
+    m = _QUANTITY_RE.match(str(text))
+    if not m:
+        raise InputError(f"{what}: cannot read {text!r} as a quantity in {dimension}")
+    num, prefix, unit = m.groups()
+    value = float(num)
+    if unit:
+        u = unit_dimension(prefix + unit) if prefix else unit_dimension(unit)
+        if u is None and prefix == "" and len(unit) > 1 and unit[0] in PREFIXES:
+            u = unit_dimension(unit)
+        if u is None or u[1] != dimension:
+            raise InputError(f"{what}: unit of {text!r} is not a unit of {dimension}")
+        return value * u[0]
+    return value * PREFIXES[prefix]
+
+
+def parse_percent(text: str, *, what: str = "value") -> float:
+    """Parse ``'1%'`` or ``'0.5 %'`` into a percentage number (1.0, 0.5).
+
+    The per-cent sign is required: a bare ``1`` could be a fraction or a percentage.
+    """
+    s = str(text).strip()
+    m = re.match(rf"^({_NUMBER})\s*(%|pct|percent)$", s)
+    if not m:
+        raise InputError(f"{what}: {text!r} needs a per-cent sign, e.g. '1%'")
+    return float(m.group(1))
+
+
+def parse_resistance(text: str, scale: float = 1.0) -> float:
+    """Parse one load cell into ohms; ``inf`` for open circuit, ``0`` for a short.
+
+    Accepts plain numbers (times ``scale``, the column's unit), SI-prefixed values with
+    or without the ohm sign (``4.7k``, ``4.7 kΩ``, ``470R``, ``1M``) and IEC 60062 RKM
+    codes (``4k7``, ``R47``, ``1M5``, ``2L2`` = 2.2 mΩ). A prefix or code in the cell
+    gives ohms directly, whatever the column's unit. Raises ``ValueError``.
+    """
+    s = str(text).strip()
+    low = s.lower()
+    if low in _OPEN_WORDS:
+        return math.inf
+    if low in _SHORT_WORDS:
+        return 0.0
+    try:
+        return float(s) * scale
+    except ValueError:
+        pass
+    m = _RKM_RE.match(s)
+    if m and (m.group(1) or m.group(3)):
+        whole, letter, frac = m.groups()
+        return float(f"{whole or '0'}.{frac or '0'}") * _RKM_SCALE[letter]
+    m = _QUANTITY_RE.match(s)
+    if m:
+        num, prefix, unit = m.groups()
+        if unit in ("", "Ω", "Ω", "ohm", "ohms", "Ohm", "R", "r", "OHM"):
+            return float(num) * PREFIXES[prefix]
+        u = unit_dimension(unit)
+        if u is not None and u[1] == "ohm" and not prefix:
+            return float(num) * u[0]
+    raise ValueError(f"cannot read {text!r} as a resistance (write e.g. 4.7k, 4k7, 470R, open)")
+
+
+@dataclass(frozen=True, slots=True)
+class Accuracy:
+    """An instrument specification ±(``percent`` % of reading + ``offset``).
+
+    ``offset`` is in SI units of the quantity. ``divisor`` turns the half-width into a
+    standard uncertainty: √3 for a rectangular distribution (GUM 4.3.7), or the stated
+    coverage factor k for a normal one.
+    """
+
+    percent: float = 0.0
+    offset: float = 0.0
+    divisor: float = math.sqrt(3.0)
+    text: str = ""
+
+    def standard_uncertainty(self, reading):
+        """Standard uncertainty of each reading (array or float), same unit as the reading."""
+        import numpy as np
+
+        half_width = self.percent / 100.0 * np.abs(reading) + self.offset
+        return half_width / self.divisor
+
+    @property
+    def is_zero(self) -> bool:
+        return self.percent == 0.0 and self.offset == 0.0
+
+
+def parse_accuracy(text: str, dimension: str, *, what: str = "accuracy") -> Accuracy:
+    """Parse ``'0.05%+2mV'``, ``'±(0.2 % + 1 mA)'``, ``'2mV'`` or ``'0.1%'``.
+
+    The result is read as a rectangular half-width (GUM 4.3.7), the usual reading of a
+    meter's accuracy specification when no confidence level is stated (common practice).
+    """
+    s = str(text).strip().replace("±", "").replace("+/-", "")
+    if s.startswith("(") and s.endswith(")"):
+        s = s[1:-1]
+    if not s:
+        raise InputError(f"{what}: empty specification")
+    percent = 0.0
+    offset = 0.0
+    parts = [p for p in re.split(r"\+", s.replace(" ", "")) if p]
+    if not parts or len(parts) > 2:
+        raise InputError(f"{what}: cannot read {text!r}; write it as e.g. '0.05%+2mV'")
+    for part in parts:
+        if part.endswith("%") or part.lower().endswith("pct"):
+            try:
+                percent += parse_percent(part, what=what)
+            except InputError:
+                raise InputError(f"{what}: cannot read {part!r} in {text!r}") from None
+        else:
+            try:
+                offset += parse_quantity(part, dimension, what=what)
+            except InputError:
+                unit = {"V": "mV", "A": "mA", "ohm": "mΩ"}.get(dimension, dimension)
+                raise InputError(
+                    f"{what}: cannot read {part!r} in {text!r} (give the offset with a unit "
+                    f"of {dimension}, e.g. '2{unit}')") from None
+    if percent < 0 or offset < 0 or not math.isfinite(percent) or not math.isfinite(offset):
+        raise InputError(f"{what}: {text!r} must be non-negative and finite")
+    return Accuracy(percent=percent, offset=offset, text=str(text).strip())
