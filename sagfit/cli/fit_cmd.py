@@ -27,6 +27,20 @@ def fit_command(
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the results to this .csv or .json file.")] = None,
     verbose: VerboseOpt = False,
+    level: Annotated[float, typer.Option(
+        "--level", help="Significance level of the non-linearity checks.")] = 0.01,
+    current_range: Annotated[Optional[str], typer.Option(
+        "--current-range", help="Fit only readings with LO ≤ I ≤ HI, e.g. '0:2.5A' or "
+                                "'100mA:2A'.")] = None,
+    below_knee: Annotated[bool, typer.Option(
+        "--below-knee", help="Where a knee is found, refit only the readings below it.")] = False,
+    robust: Annotated[bool, typer.Option(
+        "--robust", help="Refit with a soft-L1 loss that down-weights outliers.")] = False,
+    report: Annotated[Optional[str], typer.Option(
+        "--report", help="Write a self-contained report (HTML, PNG, JSON, CSV) into this "
+                         "folder.")] = None,
+    figures: Annotated[str, typer.Option(
+        "--figures", help="Per-DUT figures in the report: flagged, all or none.")] = "flagged",
 ) -> None:
     """Fit V = Vth − Rth·I for every DUT: open-circuit voltage, internal resistance,
     short-circuit current and maximum power, with uncertainties."""
@@ -46,7 +60,9 @@ def fit_command(
         with progress("reading " + file, show) as step:
             readings = load_readings(file, settings, dut)
             step(f"fitting {readings.n_duts} DUT(s)")
-            fits = fit(readings, confidence=settings["confidence"])
+            fits = fit(readings, confidence=settings["confidence"], level=level,
+                       current_range=parse_current_range(current_range),
+                       below_knee=below_knee, robust=robust)
         doc = fit_document(fits, readings, settings)
         if all(e is not None for e in fits.error):
             from ..errors import ReadingsFileError
@@ -56,6 +72,11 @@ def fit_command(
             raise ReadingsFileError(file, who + first)
         if out:
             write_results(out, fits, doc, [file])
+        if report:
+            from ..report import write_report
+
+            write_report(report, fits, readings, doc, settings, figures=figures,
+                         inputs=[file] + ([bench] if bench else []))
         if json_out:
             write_stdout(dumps(doc))
         else:
@@ -63,6 +84,26 @@ def fit_command(
 
             print_fits(fits, readings, doc, verbose=verbose)
     raise typer.Exit(3 if any(e is not None for e in fits.error) else 0)
+
+
+def parse_current_range(text: str | None):
+    """``'LO:HI'`` with optional units (either end may be empty) → (lo, hi) in A, or None."""
+    if text is None:
+        return None
+    from ..errors import InputError, OptionError
+    from ..units import parse_quantity
+
+    if ":" not in text:
+        raise OptionError("--current-range", f"{text!r}: write LO:HI, e.g. '0:2.5A'")
+    lo_s, hi_s = text.split(":", 1)
+    try:
+        lo = parse_quantity(lo_s, "A") if lo_s.strip() else float("-inf")
+        hi = parse_quantity(hi_s, "A") if hi_s.strip() else float("inf")
+    except InputError as exc:
+        raise OptionError("--current-range", str(exc)) from None
+    if not lo < hi:
+        raise OptionError("--current-range", f"{text!r}: LO must be below HI")
+    return lo, hi
 
 
 def fit_document(fits, readings, settings) -> dict:
