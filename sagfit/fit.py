@@ -122,6 +122,33 @@ def _line(g, x, y, sxx, syy, sxy, m):
         b0 = _groupsum(g, w0 * du * (y - ym[g]), m) / _groupsum(g, w0 * du * du, m)
     b0 = np.where(np.isfinite(b0), b0, 0.0)
     b, iters, conv = _york_kernel(g, x, y, sxx, syy, sxy, m, b0)
+    xerr_rows = (sxx > 0) | (sxy != 0)
+    if xerr_rows.any():
+        # With strongly correlated errors York's equations can have more than one root
+        # (seen on Amen's 2012 set); restart the errors-in-variables groups from the
+        # unweighted slope as well and keep, per group, the root with the smaller χ².
+        xg = np.bincount(g, weights=xerr_rows, minlength=m) > 0
+        rows = xg[g]
+        g2, x2, y2 = g[rows], x[rows], y[rows]
+        n2 = np.maximum(np.bincount(g2, minlength=m), 1)
+        xm2 = np.bincount(g2, weights=x2, minlength=m) / n2
+        ym2 = np.bincount(g2, weights=y2, minlength=m) / n2
+        d2 = x2 - xm2[g2]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            b1 = (np.bincount(g2, weights=d2 * (y2 - ym2[g2]), minlength=m)
+                  / np.bincount(g2, weights=d2 * d2, minlength=m))
+        b1 = np.where(np.isfinite(b1) & xg, b1, b)
+        again = xg & (np.abs(b1 - b) > 1e-12 * np.maximum(np.abs(b), 1e-300))
+        if again.any():
+            sel = again[g]
+            b_alt, it_alt, conv_alt = _york_kernel(g[sel], x[sel], y[sel], sxx[sel], syy[sel],
+                                                   sxy[sel], m, np.where(again, b1, b))
+            s_main = _chi2_at(g, x, y, sxx, syy, sxy, m, b)
+            s_alt = _chi2_at(g, x, y, sxx, syy, sxy, m, b_alt)
+            better = again & conv_alt & (s_alt < s_main * (1 - 1e-12))
+            b = np.where(better, b_alt, b)
+            iters = iters + np.where(again, it_alt, 0)
+            conv = np.where(better, conv_alt, conv)
     bb = b[g]
     with np.errstate(divide="ignore", invalid="ignore"):
         w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
@@ -143,6 +170,17 @@ def _line(g, x, y, sxx, syy, sxy, m):
     return {"a": a, "b": b, "var_a": var_a, "var_b": var_b, "cov_ab": cov_ab, "chi2": chi2,
             "n": n, "iterations": iters, "converged": conv, "xbar_adj": xbar_adj,
             "weights": w, "beta": beta}
+
+
+def _chi2_at(g, x, y, sxx, syy, sxy, m, b):
+    """York's objective S(b) per group, with the intercept that minimises it."""
+    bb = b[g]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
+        sw = _groupsum(g, w, m)
+        a = (_groupsum(g, w * y, m) - b * _groupsum(g, w * x, m)) / sw
+        res = y - bb * x - a[g]
+        return _groupsum(g, w * res * res, m)
 
 
 def coverage_factors(confidence: float, dof: np.ndarray, type_a: np.ndarray) -> np.ndarray:
