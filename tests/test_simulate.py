@@ -1,0 +1,191 @@
+"""Tests of sagfit.simulate: the invented bench runs used by demos, tests and benchmarks."""
+
+import math
+
+import numpy as np
+import pytest
+
+from sagfit.errors import InputError
+from sagfit.fit import fit_lines
+from sagfit.simulate import run_csv_text, simulate
+from sagfit.units import parse_accuracy
+
+VA = parse_accuracy("0.05%+2mV", "V")
+IA = parse_accuracy("0.2%+1mA", "A")
+LOADS = [math.inf, 10.0, 4.7, 2.2, 1.0, 0.47]
+
+
+class TestDeterminism:
+    def test_same_seed_same_run(self):
+        """Two runs with the same seed and settings are identical, array by array."""
+        kw = dict(duts=50, voltage_accuracy=VA, current_accuracy=IA, load_tolerance=1.0,
+                  measure_current=True, vth_spread=0.01, rth_spread=0.1, drift=1e-4)
+        a = simulate(12.6, 0.05, LOADS, seed=7, **kw)
+        b = simulate(12.6, 0.05, LOADS, seed=7, **kw)
+        for name in ("voltage_V", "current_A", "load_true_ohm", "vth", "rth", "time_s"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+        assert a.duts == b.duts
+
+    def test_other_seed_other_run(self):
+        """A different seed gives different readings."""
+        a = simulate(12.6, 0.05, LOADS, duts=5, seed=1, voltage_accuracy=VA)
+        b = simulate(12.6, 0.05, LOADS, duts=5, seed=2, voltage_accuracy=VA)
+        assert not np.array_equal(a.voltage_V, b.voltage_V)
+
+    def test_result_is_read_only(self):
+        """The arrays of a run cannot be modified in place."""
+        run = simulate(12.6, 0.05, LOADS, duts=2, voltage_accuracy=VA)
+        with pytest.raises(ValueError):
+            run.voltage_V[0] = 0.0
+
+
+class TestModel:
+    def test_noise_free_run_lies_on_the_line(self):
+        """Without errors, spreads or effects every reading satisfies V = Vth − Rth·I = I·R."""
+        run = simulate(12.6, 0.05, LOADS, duts=3)
+        i = run.true_current_A
+        np.testing.assert_allclose(run.voltage_V, 12.6 - 0.05 * i, rtol=1e-13)
+        finite = np.isfinite(run.load_ohm)
+        np.testing.assert_allclose(run.voltage_V[finite], i[finite] * run.load_ohm[finite],
+                                   rtol=1e-13)
+        assert np.all(i[~finite] == 0.0)
+
+    def test_layout_rows_of_one_dut_contiguous(self):
+        """Rows are DUT-major in load order, with names from the prefix and a bench clock."""
+        run = simulate(5.0, 0.1, [math.inf, 10, 1], duts=4, interval_s=2.0, dut_prefix="B7-")
+        assert run.duts == ("B7-001", "B7-002", "B7-003", "B7-004")
+        np.testing.assert_array_equal(run.group, np.repeat(np.arange(4), 3))
+        np.testing.assert_array_equal(run.time_s, np.arange(12) * 2.0)
+        np.testing.assert_array_equal(run.load_ohm, np.tile([math.inf, 10, 1], 4))
+
+    def test_knee_holds_the_current(self):
+        """Above the current limit the current stays at the knee and V = I_knee·R."""
+        run = simulate(12.0, 0.1, [math.inf, 10, 2, 1, 0.5], knee_current=5.0)
+        assert run.limited.tolist() == [False, False, True, True, True]
+        np.testing.assert_allclose(run.true_current_A[run.limited], 5.0)
+        np.testing.assert_allclose(run.voltage_V[run.limited], 5.0 * run.load_ohm[run.limited])
+        assert run.true_current_A.max() <= 5.0
+
+    def test_curvature_is_a_quadratic_sag(self):
+        """With a curvature c the terminal voltage is Vth − Rth·I − c·I² and also I·R."""
+        run = simulate(12.0, 0.1, [math.inf, 4, 2, 1], curvature=0.02)
+        i, v = run.true_current_A, run.voltage_V
+        np.testing.assert_allclose(v, 12.0 - 0.1 * i - 0.02 * i * i, rtol=1e-12)
+        np.testing.assert_allclose(v[1:], i[1:] * run.load_ohm[1:], rtol=1e-12)
+
+    def test_drift_moves_vth_with_time_within_each_dut(self):
+        """A drift raises each DUT's open-circuit voltage linearly from its first reading."""
+        run = simulate(12.0, 0.1, [math.inf, math.inf, math.inf], duts=2, drift=0.01,
+                       interval_s=5.0)
+        np.testing.assert_allclose(run.voltage_V, [12.0, 12.05, 12.1] * 2)
+
+    def test_resistor_drawn_once_per_resistor(self):
+        """By default every DUT sees the same true resistor value for one nominal value."""
+        run = simulate(12.0, 0.1, [math.inf, 10, 1, 10], duts=20, load_tolerance=5.0)
+        true = run.load_true_ohm.reshape(20, 4)
+        assert np.all(true == true[0])
+        assert true[0, 1] == true[0, 3]  # the same 10 Ω resistor, read twice
+        assert abs(true[0, 1] / 10 - 1) <= 0.05 and abs(true[0, 2] - 1) <= 0.05
+
+    def test_resistor_drawn_per_dut_as_an_option(self):
+        """With per_dut_loads the resistor errors differ between DUTs and stay in tolerance."""
+        run = simulate(12.0, 0.1, [math.inf, 10, 1], duts=2000, load_tolerance=5.0,
+                       per_dut_loads=True, seed=3)
+        dev = run.load_true_ohm.reshape(2000, 3)[:, 1:] / np.array([10, 1]) - 1
+        assert np.all(np.abs(dev) <= 0.05)
+        # rectangular on ±5 %: standard deviation 5 %/√3
+        assert abs(dev.std() / (0.05 / math.sqrt(3)) - 1) < 0.05
+
+    @pytest.mark.parametrize("dist", ["rectangular", "normal"])
+    def test_meter_errors_have_the_spec_standard_uncertainty(self, dist):
+        """Voltmeter errors have standard deviation a/√3 for either distribution."""
+        run = simulate(10.0, 0.1, [math.inf], duts=20000, voltage_accuracy=VA, seed=5,
+                       error_distribution=dist)
+        err = run.voltage_V - run.true_voltage_V
+        a = 0.0005 * 10.0 + 0.002
+        assert abs(err.std() / (a / math.sqrt(3)) - 1) < 0.03
+        if dist == "rectangular":
+            assert np.abs(err).max() <= a
+
+    def test_spreads_have_the_stated_relative_deviation(self):
+        """vth_spread and rth_spread are relative standard deviations across DUTs."""
+        run = simulate(12.0, 0.05, [math.inf, 1], duts=20000, vth_spread=0.01,
+                       rth_spread=0.2, seed=11)
+        assert abs(run.vth.std() / 12.0 - 0.01) < 0.0005
+        assert abs(run.rth.mean() / 0.05 - 1) < 0.01
+        assert np.all(run.rth > 0)
+
+
+class TestRoundTrip:
+    @pytest.mark.slow
+    @pytest.mark.reference("JCGM 100:2008 (GUM) 6.2: a coverage interval at level p contains "
+                           "the true value in a fraction p of repetitions")
+    def test_fit_recovers_parameters_at_the_nominal_rate(self):
+        """Fitting 2,000 simulated DUTs puts the true Vth and Rth inside their 95 % intervals
+        for 93–98 % of the DUTs."""
+        run = simulate(12.6, 0.05, LOADS, duts=2000, seed=20261201, voltage_accuracy=VA,
+                       load_tolerance=1.0, per_dut_loads=True, vth_spread=0.01,
+                       rth_spread=0.1)
+        fits = fit_lines(run.to_readings(voltage_accuracy=VA, load_tolerance=1.0))
+        for est, true, u in ((fits.vth, run.vth, fits.u_vth), (fits.rth, run.rth, fits.u_rth)):
+            covered = np.abs(est - true) <= fits.k * u
+            assert 0.93 <= covered.mean() <= 0.98
+
+    def test_measured_current_round_trip(self):
+        """With an ammeter the fit (York) also covers the truth at about the nominal rate."""
+        run = simulate(5.0, 0.2, [math.inf, 20, 10, 5, 2.2], duts=1000, seed=4,
+                       voltage_accuracy=VA, current_accuracy=IA, measure_current=True,
+                       load_tolerance=1.0, per_dut_loads=True)
+        fits = fit_lines(run.to_readings(voltage_accuracy=VA, current_accuracy=IA,
+                                         load_tolerance=1.0))
+        assert set(fits.method) == {"york"}
+        covered = np.abs(fits.rth - run.rth) <= fits.k * fits.u_rth
+        assert 0.92 <= covered.mean() <= 0.99
+
+
+class TestCsv:
+    def test_csv_reads_back_with_read_readings(self, tmp_path):
+        """The CSV text reads back with sagfit.read_readings to the same readings."""
+        from sagfit import read_readings
+
+        run = simulate(12.6, 0.05, LOADS, duts=3, seed=2, voltage_accuracy=VA,
+                       current_accuracy=IA, measure_current=True, load_tolerance=1.0)
+        path = tmp_path / "sim.csv"
+        path.write_text(run_csv_text(run, ["INVENTED DATA (test)", "seed: 2"]),
+                        encoding="utf-8")
+        back = read_readings(path, voltage_accuracy=VA, load_tolerance=1.0)
+        assert back.duts == run.duts
+        np.testing.assert_allclose(back.voltage, run.voltage_V, rtol=1e-9)
+        np.testing.assert_allclose(back.current, run.current_A, rtol=1e-9, atol=1e-15)
+        np.testing.assert_array_equal(back.load, run.load_ohm)
+        np.testing.assert_allclose(back.time, run.time_s)
+
+    def test_csv_starts_with_the_comments(self):
+        """Every comment line comes first, prefixed with '#', before the header."""
+        text = run_csv_text(simulate(5.0, 0.1, [math.inf, 1]), ["INVENTED DATA", "two\nlines"])
+        lines = text.splitlines()
+        assert lines[:4] == ["# INVENTED DATA", "# two", "# lines", "dut,load_ohm,voltage_V,time_s"]
+        assert lines[4].startswith("SIM-001,open,5,")
+
+
+class TestBadInput:
+    @pytest.mark.parametrize("kw, word", [
+        (dict(vth=-1.0), "vth"), (dict(rth=0.0), "rth"), (dict(loads=[]), "loads"),
+        (dict(loads=[-1.0]), "loads"), (dict(loads=[0.0, math.inf]), "short"),
+        (dict(duts=0), "duts"), (dict(load_tolerance=120.0), "load_tolerance"),
+        (dict(curvature=-1.0), "curvature"), (dict(knee_current=0.0), "knee_current"),
+        (dict(error_distribution="triangular"), "error_distribution"),
+        (dict(dut_prefix="=cmd|"), "dut_prefix"), (dict(vth_spread=float("nan")), "vth_spread"),
+    ])
+    def test_bad_parameter_is_an_input_error(self, kw, word):
+        """An out-of-range parameter raises InputError naming it."""
+        args = dict(vth=12.0, rth=0.1, loads=[math.inf, 1.0])
+        args.update(kw)
+        with pytest.raises(InputError, match=word):
+            simulate(args.pop("vth"), args.pop("rth"), args.pop("loads"), **args)
+
+    def test_short_allowed_with_measured_current(self):
+        """A short-circuit reading is possible when the current is measured."""
+        run = simulate(2.0, 0.5, [math.inf, 0.0], measure_current=True)
+        assert run.current_A[1] == pytest.approx(4.0)
+        assert run.voltage_V[1] == 0.0
