@@ -295,6 +295,11 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
     sxy = np.where(st, readings.cov_iv[keep], 0.0)
     res = _line(g, x, y, sxx, syy, sxy, m)
 
+    with np.errstate(all="ignore"):  # NaN/inf of DUTs in error are masked below
+        return _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence)
+
+
+def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence) -> Fits:
     xerr = np.bincount(g, weights=(sxx > 0) | (sxy != 0), minlength=m) > 0
     method = np.where(~stated, "ols", np.where(xerr, "york", "wls")).astype(object)
     method[bad] = ""

@@ -50,6 +50,7 @@ _ROLES: dict[str, tuple[str, ...]] = {
 _DIMENSION = {"load": "ohm", "voltage": "V", "current": "A", "u_voltage": "V",
               "u_current": "A", "u_load": "ohm", "load_tolerance": "%", "time": "s",
               "temperature": "degC"}
+_STRICT_UNITS = {"load", "voltage", "current", "u_voltage", "u_current", "u_load"}
 _NAME_TO_ROLE = {name: role for role, names in _ROLES.items() for name in names}
 _BRACKET_RE = re.compile(r"^(.*?)[\s_]*[\[(]\s*([^\])]*?)\s*[\])]\s*$")
 _SEPARATORS_RE = re.compile(r"[\s\-./]+")
@@ -100,16 +101,18 @@ def classify_header(header: str) -> tuple[str, float] | None:
     dim = _DIMENSION.get(role)
     if dim is None:
         raise ValueError(f"header {header!r}: a {role} column takes no unit")
-    parsed = parse_header_unit(unit)
-    if role == "time" and unit.lower() in ("iso", "iso8601", "utc", "date"):
-        return role, 1.0
-    if role == "time" and parsed is None:
-        factors = {"min": 60.0, "h": 3600.0, "hr": 3600.0, "ms": 1e-3}
+    if role == "time":
+        factors = {"s": 1.0, "sec": 1.0, "ms": 1e-3, "min": 60.0, "h": 3600.0, "hr": 3600.0,
+                   "iso": 1.0, "iso8601": 1.0, "utc": 1.0, "date": 1.0}
         if unit.lower() in factors:
             return role, factors[unit.lower()]
-    if parsed is None:
-        raise ValueError(f"unknown unit {unit!r} in header {header!r} "
-                         f"(use e.g. {_example_unit(dim)})")
+    parsed = parse_header_unit(unit)
+    if parsed is None or parsed[1] != dim:
+        if m is None and role not in _STRICT_UNITS:
+            return None  # 'temperature_note': a suffix that is no unit, on a side column
+        if parsed is None:
+            raise ValueError(f"unknown unit {unit!r} in header {header!r} "
+                             f"(use e.g. {_example_unit(dim)})")
     scale, got = parsed
     if got != dim:
         raise ValueError(f"unit {unit!r} in header {header!r} is not a unit of {dim}")
@@ -374,8 +377,11 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     if "load_tolerance" in roles:
         kwargs["load_tolerance_pct"] = numeric("load_tolerance")
     if "load" in roles:
-        kwargs["load"] = _parse_loads(column("load"), roles["load"].scale, name,
-                                      header_of("load"), lines_of_rows)
+        loads = column("load")
+        if decimal == ",":
+            loads = loads.str.replace(",", ".", regex=False)
+        kwargs["load"] = _parse_loads(loads, roles["load"].scale, name, header_of("load"),
+                                      lines_of_rows)
     if "time" in roles:
         kwargs["time"] = _parse_times(column("time"), roles["time"].scale, name,
                                       header_of("time"), lines_of_rows)
@@ -472,7 +478,7 @@ def _parse_loads(s, scale: float, name: str, header: str, lines) -> np.ndarray:
         strs = s.to_numpy(dtype=object)[todo]
         uniq, inv = np.unique(strs.astype(str), return_inverse=True)
         vals = np.empty(uniq.size)
-        for j, text in enumerate(uniq):
+        for j, text in enumerate(uniq.tolist()):
             try:
                 vals[j] = parse_resistance(text, scale)
             except ValueError as exc:

@@ -204,6 +204,8 @@ def parse_accuracy(text: str, dimension: str, *, what: str = "accuracy") -> Accu
                 raise InputError(f"{what}: cannot read {part!r} in {text!r}") from None
         else:
             try:
+                if not re.search(r"[A-Za-zΩΩµμ]\s*$", part):
+                    raise InputError("offset without a unit")  # '2' could be V, mV or digits
                 offset += parse_quantity(part, dimension, what=what)
             except InputError:
                 unit = {"V": "mV", "A": "mA", "ohm": "mΩ"}.get(dimension, dimension)

@@ -1,0 +1,41 @@
+"""Shared fixtures: run the CLI in-process and capture its streams."""
+
+from __future__ import annotations
+
+import hashlib
+import pathlib
+from dataclasses import dataclass
+
+import pytest
+
+ROOT = pathlib.Path(__file__).resolve().parents[1]
+SAMPLES = ROOT / "sample_runs"
+
+
+@dataclass
+class Run:
+    code: int
+    out: str
+    err: str
+
+
+@pytest.fixture
+def cli(capsys):
+    """Call ``sagfit`` in-process: ``cli("fit", path, "--json")`` → Run(code, out, err)."""
+    from sagfit.cli import main
+
+    def run(*args) -> Run:
+        capsys.readouterr()
+        try:
+            main([str(a) for a in args])
+            code = 0
+        except SystemExit as exc:
+            code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 2)
+        cap = capsys.readouterr()
+        return Run(code, cap.out, cap.err)
+
+    return run
+
+
+def digest(path) -> str:
+    return hashlib.sha256(pathlib.Path(path).read_bytes()).hexdigest()
