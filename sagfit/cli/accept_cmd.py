@@ -1,0 +1,220 @@
+"""``sagfit accept``: pass / fail / inconclusive for every DUT against a spec.
+
+Exit status (production-line scripts rely on it): 0 every DUT passed; 1 at least one
+failed; 3 none failed but at least one was inconclusive or could not be fitted; 2 bad
+input or usage.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Optional
+
+import typer
+
+from . import app
+from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
+                     VerboseOpt, VoltageAccOpt, dumps, fit_settings, guarded, interactive,
+                     load_readings, progress, settings_record, write_stdout)
+
+MAX_TABLE_ROWS = 40
+
+
+@app.command("accept")
+def accept_command(
+    file: Annotated[str, typer.Argument(help="Readings CSV, one load sweep per DUT.")],
+    spec: Annotated[str, typer.Option("--spec", help="Acceptance spec (TOML, see "
+                                                     "docs/accept.md).")],
+    rule: Annotated[Optional[str], typer.Option(
+        "--rule", help="Decision rule: simple, guarded or risk [default: the spec's, "
+                       "else guarded].")] = None,
+    dut: DutOpt = None,
+    confidence: ConfidenceOpt = None,
+    voltage_accuracy: VoltageAccOpt = None,
+    current_accuracy: CurrentAccOpt = None,
+    load_tolerance: LoadTolOpt = None,
+    bench: BenchOpt = None,
+    json_out: JsonOpt = False,
+    out: Annotated[Optional[str], typer.Option(
+        "--out", help="Also write the decisions to this .csv or .json file.")] = None,
+    report: Annotated[Optional[str], typer.Option(
+        "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
+                         "folder.")] = None,
+    verbose: VerboseOpt = False,
+) -> None:
+    """Decide every DUT against the spec's limits, taking the measurement uncertainty
+    into account (JCGM 106:2012, ILAC-G8:09/2019)."""
+    with guarded(file):
+        from ..acceptance import RULES, accept
+        from ..analysis import fit
+        from ..errors import OptionError
+        from ..io_spec import read_spec
+        from ..outputs import check_output_path
+
+        if rule is not None and rule not in RULES:
+            raise OptionError("--rule", f"{rule!r}: use one of {', '.join(RULES)}")
+        inputs = [file, spec] + ([bench] if bench else [])
+        the_spec = read_spec(spec)
+        if confidence is None:
+            confidence = the_spec.decision.confidence
+        settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
+                                confidence)
+        if out:
+            check_output_path(out, inputs)
+            if not out.lower().endswith((".csv", ".json")):
+                raise OptionError("--out", f"{out}: use a .csv or .json file name")
+        show = interactive() and not json_out
+        with progress("reading " + file, show) as step:
+            readings = load_readings(file, settings, dut)
+            step(f"fitting {readings.n_duts} DUT(s)")
+            fits = fit(readings, confidence=settings["confidence"])
+            step(f"deciding {readings.n_duts} DUT(s)")
+            acc = accept(fits, the_spec, rule=rule)
+        need_doc = json_out or report or (out and out.lower().endswith(".json"))
+        doc = accept_document(acc, fits, readings, settings) if need_doc else None
+        if out:
+            from ..outputs import atomic_write
+            from ..report_accept import acceptance_csv
+
+            if out.lower().endswith(".json"):
+                atomic_write(out, dumps(doc), inputs=inputs)
+            else:
+                atomic_write(out, acceptance_csv(acc), inputs=inputs)
+        if report:
+            from ..report_accept import write_accept_report
+
+            write_accept_report(report, acc, fits, readings, doc, inputs=inputs)
+        if json_out:
+            write_stdout(dumps(doc))
+        else:
+            print_acceptance(acc, fits, readings, settings, verbose=verbose)
+    raise typer.Exit(acc.exit_code)
+
+
+def accept_document(acc, fits, readings, settings) -> dict:
+    """The JSON document of ``sagfit accept --json``."""
+    from .. import __version__
+    from ..acceptance import DECISIONS
+    from ..safety import cautions
+
+    spec = acc.spec
+    r = acc.rule
+    return {
+        "tool": "sagfit",
+        "version": __version__,
+        "command": "accept",
+        "confidence": acc.confidence,
+        "input": {"file": readings.source, "sha256": readings.meta.get("sha256"),
+                  "date": readings.meta.get("date"), "duts": len(fits),
+                  "readings": len(readings)},
+        "spec": {"file": spec.source, "sha256": spec.sha256, "name": spec.name or None,
+                 "revision": spec.revision or None,
+                 "checks": [_check_record(c) for c in spec.checks]},
+        "decision_rule": {"rule": r.rule, "k": r.k, "guard": r.guard,
+                          "min_conformance": r.min_conformance, "cap_flagged": r.cap_flagged,
+                          "ignore_flags": list(r.ignore_flags),
+                          "decisions": list(DECISIONS)},
+        "settings": settings_record(settings),
+        "results": acc.to_dicts(),
+        "summary": acc.summary(),
+        "cautions": cautions(vth=fits.vth, isc=fits.isc,
+                             reading_power=readings.voltage * readings.current,
+                             voltages=readings.voltage),
+    }
+
+
+def _check_record(c) -> dict:
+    import math
+
+    def f(x):
+        return x if math.isfinite(x) else None
+
+    d = {"quantity": c.name, "kind": c.quantity, "unit": c.unit, "lower": f(c.lower),
+         "upper": f(c.upper), "key": c.key}
+    if c.at is not None:
+        d["at"] = {"kind": c.at.kind, "value": f(c.at.value), "text": c.at.label}
+    if c.light is not None:
+        d["light"] = {"kind": c.light.kind, "value": f(c.light.value), "text": c.light.label}
+        d["heavy"] = {"kind": c.heavy.kind, "value": f(c.heavy.value), "text": c.heavy.label}
+    if c.note:
+        d["note"] = c.note
+    return d
+
+
+def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) -> None:
+    """The terminal view: a table of (at most 40) DUTs, worst first, then the summary."""
+    import numpy as np
+    from rich.console import Console
+    from rich.table import Table
+
+    from ..acceptance import DECISIONS, ERROR, FAIL, PASS
+    from ..report_accept import format_check, limits_text
+    from ..safety import cautions
+
+    import sys
+
+    tty = sys.stdout.isatty()
+    console = Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
+    order = np.argsort(-_rank(acc.decision), kind="stable")
+    shown = order[:MAX_TABLE_ROWS]
+    t = Table(show_edge=False, title=f"acceptance: {acc.rule.rule} rule"
+              + (f", {acc.spec.name}" if acc.spec.name else ""), title_justify="left")
+    t.add_column("DUT")
+    t.add_column("decision")
+    for cr in acc.checks:
+        t.add_column(f"{cr.name}\n{limits_text(cr.check)}", justify="right")
+    for i in shown:
+        cells = [acc.duts[i], DECISIONS[acc.decision[i]]
+                 + (" (flagged)" if acc.capped[i] else "")]
+        for cr in acc.checks:
+            if acc.decision[i] == ERROR:
+                cells.append("")
+                continue
+            mark = {PASS: "", FAIL: " ✗"}.get(int(cr.decision[i]), " ?")
+            cells.append(format_check(float(cr.value[i]), float(cr.U[i]), cr.check.unit)
+                         + mark)
+        t.add_row(*cells)
+    console.print(t, markup=False)
+    if len(acc) > MAX_TABLE_ROWS:
+        console.print(f"… {len(acc) - MAX_TABLE_ROWS} more DUTs not shown (worst first; all "
+                      "of them are in --out results.csv or --json).", markup=False)
+    k = acc.k[np.isfinite(acc.k)]
+    kt = f"k = {float(k[0]):.3g}" if k.size and np.all(k == k[0]) else "k per DUT"
+    console.print(f"values ± U (expanded uncertainty, {kt}); ✗ outside the rejection limit, "
+                  "? inconclusive.", markup=False)
+    s = acc.summary()
+    console.print(f"summary: {s['pass']} pass, {s['fail']} fail, {s['inconclusive']} "
+                  f"inconclusive, {s['error']} error of {s['total']} DUT(s); yield "
+                  f"{100 * s['yield']:.1f} %" if s["total"] else "summary: no DUTs",
+                  markup=False)
+    if s["failed_most"]:
+        worst = ", ".join(f"{r['quantity']} ({r['fail']} fail, {r['inconclusive']} "
+                          "inconclusive)" for r in s["failed_most"][:5])
+        console.print(f"limits failed most: {worst}", markup=False)
+    if s["capped_by_flags"]:
+        console.print(f"{s['capped_by_flags']} DUT(s) inside the limits but flagged "
+                      "(non-linear or doubtful fit) are inconclusive; see --json for the flags.",
+                      markup=False)
+    errors = [i for i in np.flatnonzero(acc.decision == ERROR)]
+    for i in errors[:MAX_TABLE_ROWS]:
+        console.print(f"error {acc.duts[i]}: {acc.error[i]}", markup=False)
+    if len(errors) > MAX_TABLE_ROWS:
+        console.print(f"… and {len(errors) - MAX_TABLE_ROWS} more DUTs could not be fitted",
+                      markup=False)
+    if verbose:
+        console.print(f"spec: {acc.spec.source} (sha256 {acc.spec.sha256[:16]}…); input: "
+                      f"{readings.source} (sha256 {str(readings.meta.get('sha256', ''))[:16]}…)",
+                      markup=False)
+        for i in list(acc.warning_codes)[:MAX_TABLE_ROWS]:
+            console.print(f"flagged {acc.duts[i]}: {', '.join(acc.warning_codes[i])}",
+                          markup=False)
+    for c in cautions(vth=fits.vth, isc=fits.isc,
+                      reading_power=readings.voltage * readings.current,
+                      voltages=readings.voltage):
+        console.print(f"caution: {c}", markup=False)
+
+
+def _rank(decision):
+    """Sort key: fail first, then error, inconclusive, pass."""
+    import numpy as np
+
+    return np.array([0, 1, 3, 2], dtype=np.int16)[decision]

@@ -1,0 +1,292 @@
+"""Outputs of ``sagfit accept``: the decisions as CSV, and an acceptance report folder.
+
+Edge module (pandas for the CSV; matplotlib, through :mod:`sagfit.plots`, for the
+figures — both imported inside the functions). The report folder holds
+``accept.html`` (self-contained: inline SVG figures, escaped text), ``accept.csv``,
+``accept.json`` and one PNG histogram per check, written atomically and only inside
+the folder.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+
+import numpy as np
+
+from .acceptance import DECISIONS, ERROR, FAIL, INCONCLUSIVE, PASS, STATEMENTS
+from .formatting import format_estimate, format_percent, format_value
+
+__all__ = ["acceptance_table", "acceptance_csv", "limits_text", "format_check",
+           "write_accept_report"]
+
+MAX_REPORT_ROWS = 500
+# decision colours (a plain traffic-light convention, common practice), tuned to sit with
+# the house palette of sagfit.plots
+DECISION_COLORS = {"pass": "#3d7a57", "inconclusive": "#c99a2e", "fail": "#b3402f",
+                   "error": "#6b7280"}
+
+
+def format_check(value: float, U: float, unit: str) -> str:
+    """``value ± U`` as the trade writes it (per cent without an SI prefix)."""
+    if unit == "%":
+        return format_percent(value, U)
+    return format_estimate(value, U, unit)
+
+
+def limits_text(check) -> str:
+    """``'4.900 V … 5.100 V'``, ``'≤ 40.00 mΩ'`` or ``'≥ 50.00 A'`` (plus the condition)."""
+    unit = check.unit
+
+    def v(x):
+        return f"{x:.4g} %" if unit == "%" else format_value(x, unit)
+
+    if math.isfinite(check.lower) and math.isfinite(check.upper):
+        text = f"{v(check.lower)} … {v(check.upper)}"
+    elif math.isfinite(check.upper):
+        text = f"≤ {v(check.upper)}"
+    else:
+        text = f"≥ {v(check.lower)}"
+    if check.at is not None:
+        text += f" at {check.at.label}"
+    if check.light is not None:
+        text += f", {check.light.label} → {check.heavy.label}"
+    return text
+
+
+def acceptance_table(acc):
+    """The decisions as a pandas DataFrame, one row per DUT, SI units, full precision.
+
+    Text cells from user data (DUT names, messages) are formula-neutralised; numeric
+    columns stay numeric (NaN = empty cell).
+    """
+    import pandas as pd
+
+    from .io_csv import neutralise
+
+    names = np.array(DECISIONS, dtype=object)
+    m = len(acc)
+    flags = [""] * m
+    for i, codes in acc.warning_codes.items():
+        flags[i] = neutralise(";".join(codes))
+    cols: dict = {
+        "dut": [neutralise(d) for d in acc.duts],
+        "decision": names[acc.decision],
+        "rule": np.full(m, acc.rule.rule, dtype=object),
+        "coverage_factor": acc.k,
+        "capped_by_flags": acc.capped,
+        "flags": flags,
+    }
+    ok = acc.decision != ERROR
+    for cr in acc.checks:
+        n = cr.name
+        cols[f"{n}_value"] = cr.value
+        cols[f"{n}_U"] = cr.U
+        cols[f"{n}_lower"] = np.full(m, cr.check.lower if math.isfinite(cr.check.lower)
+                                     else np.nan)
+        cols[f"{n}_upper"] = np.full(m, cr.check.upper if math.isfinite(cr.check.upper)
+                                     else np.nan)
+        cols[f"{n}_acceptance_lower"] = np.where(np.isfinite(cr.accept_lower),
+                                                 cr.accept_lower, np.nan)
+        cols[f"{n}_acceptance_upper"] = np.where(np.isfinite(cr.accept_upper),
+                                                 cr.accept_upper, np.nan)
+        cols[f"{n}_p_c"] = cr.p_c
+        cols[f"{n}_decision"] = np.where(ok, names[cr.decision], "")
+    cols["error"] = [neutralise(e) if e else "" for e in acc.error]
+    return pd.DataFrame(cols)
+
+
+def acceptance_csv(acc) -> str:
+    """The CSV text of :func:`acceptance_table` (``%.10g``, empty cells for NaN)."""
+    return acceptance_table(acc).to_csv(index=False, float_format="%.10g")
+
+
+# ---------------------------------------------------------------------- figures
+def histogram(acc, j: int):
+    """Histogram of check ``j`` across the fitted DUTs, stacked by decision, with the
+    tolerance limits (solid), the median acceptance limits (dashed) and the guard band
+    between them shaded."""
+    from .plots import COLORS, house_style, new_figure, si_axis
+
+    cr = acc.checks[j]
+    c = cr.check
+    ok = (acc.decision != ERROR) & np.isfinite(cr.value)
+    v = cr.value[ok]
+    d = cr.decision[ok]
+    scale_pct = c.unit == "%"
+    with house_style():
+        fig, ax = new_figure(5.2, 3.1)
+        if v.size == 0:
+            ax.text(0.5, 0.5, "no fitted values", transform=ax.transAxes, ha="center")
+            return fig
+        lims = [x for x in (c.lower, c.upper) if math.isfinite(x)]
+        lo = min(float(v.min()), *lims)
+        hi = max(float(v.max()), *lims)
+        pad = 0.04 * (hi - lo) if hi > lo else max(abs(hi) * 1e-3, 1e-12)
+        edges = np.histogram_bin_edges(v, bins=min(60, max(10, int(np.sqrt(v.size)))),
+                                       range=(lo - pad, hi + pad))
+        bottom = np.zeros(edges.size - 1)
+        for code in (PASS, INCONCLUSIVE, FAIL):
+            h, _ = np.histogram(v[d == code], bins=edges)
+            if h.any():
+                ax.bar(edges[:-1], h, width=np.diff(edges), bottom=bottom, align="edge",
+                       color=DECISION_COLORS[DECISIONS[code]], edgecolor="white",
+                       linewidth=0.3, label=DECISIONS[code])
+                bottom += h
+        top = float(bottom.max()) if bottom.size else 1.0
+        for t, a in ((c.lower, cr.accept_lower[ok]), (c.upper, cr.accept_upper[ok])):
+            if not math.isfinite(t):
+                continue
+            ax.axvline(t, color=COLORS["ink"], linewidth=1.2)
+            a = a[np.isfinite(a)]
+            if a.size and acc.rule.rule != "simple":
+                med = float(np.median(a))
+                ax.axvspan(min(t, med), max(t, med), color=COLORS["muted"], alpha=0.18,
+                           linewidth=0)
+                ax.axvline(med, color=COLORS["ink"], linewidth=0.9, linestyle="--")
+        ax.set_ylim(0, top * 1.12 + 0.5)
+        ax.grid(axis="x", visible=False)
+        label = {"vth": "Open-circuit voltage Vth", "rth": "Internal resistance Rth",
+                 "isc": "Short-circuit current Isc", "pmax": "Maximum power Pmax"}.get(
+            c.quantity, c.name)
+        if scale_pct:
+            ax.set_xlabel(f"{label} (%)")
+        else:
+            si_axis(ax, "x", c.unit, label)
+        ax.set_ylabel("DUTs")
+        ax.legend(loc="best", frameon=False)
+    return fig
+
+
+# ---------------------------------------------------------------------- the report
+_CSS = """
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;color:#222831;margin:2em;
+max-width:70em}
+h1{font-size:1.4em}h2{font-size:1.1em;margin-top:1.6em}
+table{border-collapse:collapse;font-size:0.9em}
+th,td{padding:0.25em 0.7em;border-bottom:1px solid #e5e7eb;text-align:right}
+th:first-child,td:first-child{text-align:left}
+.pass{color:#3d7a57}.fail{color:#b3402f;font-weight:600}.inconclusive{color:#8a6412}
+.error{color:#6b7280}.note{color:#6b7280;font-size:0.9em}
+.caution{border-left:4px solid #c2410c;padding:0.3em 0.8em;background:#fff7ed}
+figure{display:inline-block;margin:0.5em 1em 0.5em 0}svg{max-width:100%;height:auto}
+"""
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
+    """Write the acceptance report into ``folder`` (created if needed)."""
+    from pathlib import Path
+
+    from .outputs import atomic_write, prepare_folder, safe_filename
+    from .plots import figure_svg, save_png
+
+    root = prepare_folder(folder, inputs)
+    import json
+
+    atomic_write(root / "accept.json", json.dumps(doc, indent=2, ensure_ascii=False,
+                                                  allow_nan=False) + "\n",
+                 inputs=inputs, within=root, option="--report")
+    atomic_write(root / "accept.csv", acceptance_csv(acc), inputs=inputs, within=root,
+                 option="--report")
+    figures = []
+    for j, cr in enumerate(acc.checks):
+        fig = histogram(acc, j)
+        name = f"hist-{safe_filename(cr.name)}.png"
+        save_png(fig, root / name, root, inputs=inputs)
+        figures.append((cr, figure_svg(fig, title=f"Histogram of {cr.name}"), name))
+    s = doc["summary"]
+    spec = acc.spec
+    r = acc.rule
+    parts = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+             "<meta name='viewport' content='width=device-width,initial-scale=1'>",
+             f"<title>Acceptance report: {_e(spec.name or Path(spec.source).name)}</title>",
+             f"<style>{_CSS}</style></head><body>",
+             f"<h1>Acceptance report: {_e(spec.name or Path(spec.source).name)}</h1>",
+             "<p>", f"Readings: {_e(readings.source)} (sha256 "
+             f"{_e(str(readings.meta.get('sha256', ''))[:16])}…), {len(readings)} readings, "
+             f"{len(acc)} DUT(s). Spec: {_e(spec.source)}"
+             + (f", revision {_e(spec.revision)}" if spec.revision else "")
+             + f" (sha256 {_e(spec.sha256[:16])}…).</p>",
+             f"<p>Decision rule: <b>{_e(r.rule)}</b> — {_e(_rule_text(r, acc))}</p>"]
+    for c in doc.get("cautions", []):
+        parts.append(f"<p class='caution'>{_e(c)}</p>")
+    parts.append("<h2>Summary</h2><table><tr><th>decision</th><th>DUTs</th></tr>")
+    for name in DECISIONS:
+        parts.append(f"<tr><td class='{name}'>{name}</td><td>{s[name]}</td></tr>")
+    parts.append(f"<tr><td>total</td><td>{s['total']}</td></tr></table>")
+    if s["total"]:
+        parts.append(f"<p>Yield (passed / tested): {100 * s['yield']:.1f} %."
+                     + (f" {s['capped_by_flags']} DUT(s) inside the limits but flagged are "
+                        "inconclusive." if s["capped_by_flags"] else "") + "</p>")
+    parts.append("<h2>Limits</h2><table><tr><th>check</th><th>tolerance</th>"
+                 "<th>fail</th><th>inconclusive</th><th>note</th></tr>")
+    ranked = {x["quantity"]: x for x in s["failed_most"]}
+    for cr in acc.checks:
+        x = ranked.get(cr.name, {"fail": 0, "inconclusive": 0})
+        parts.append(f"<tr><td>{_e(cr.name)}</td><td>{_e(limits_text(cr.check))}</td>"
+                     f"<td>{x['fail']}</td><td>{x['inconclusive']}</td>"
+                     f"<td>{_e(cr.check.note)}</td></tr>")
+    parts.append("</table><h2>Distributions</h2><p class='note'>Solid lines: tolerance "
+                 "limits. Dashed lines and shading: the guard band up to the median "
+                 "acceptance limit (each DUT's own limit depends on its uncertainty).</p>")
+    for cr, svg, name in figures:
+        parts.append(f"<figure>{svg}<figcaption class='note'>{_e(cr.name)} "
+                     f"({_e(name)})</figcaption></figure>")
+    parts.append(_units_table(acc))
+    parts.append("<p class='note'>Values are shown ± U, the expanded uncertainty used for "
+                 "the decision. Full precision, SI units: accept.csv and accept.json. "
+                 "Statements per ILAC-G8:09/2019 §4.2.3 are in accept.json.</p>")
+    parts.append("</body></html>\n")
+    atomic_write(root / "accept.html", "".join(parts), inputs=inputs, within=root,
+                 option="--report")
+
+
+def _rule_text(r, acc) -> str:
+    k = acc.k[np.isfinite(acc.k)]
+    kt = (f"k = {float(k[0]):.3g}" if k.size and np.all(k == k[0])
+          else "k from each fit (Student t for Type A fits)")
+    if r.rule == "simple":
+        return ("simple acceptance (shared risk): pass inside the tolerance limits, fail "
+                "outside (ILAC-G8:09/2019 §4.2.1).")
+    if r.rule == "guarded":
+        return (f"guarded acceptance, guard band w = {r.guard:g}·U with U = k·u ({kt}): pass "
+                "when the whole interval lies inside the limits, fail when it lies wholly "
+                "outside, inconclusive otherwise (ILAC-G8:09/2019 §4.2.2–4.2.3; JCGM "
+                "106:2012).")
+    return (f"conformance probability p_c for a normal PDF (JCGM 106:2012): pass when p_c ≥ "
+            f"{r.min_conformance:g}, fail when p_c ≤ {1 - r.min_conformance:.3g}, "
+            "inconclusive otherwise.")
+
+
+def _units_table(acc) -> str:
+    rank = np.array([0, 1, 3, 2])[acc.decision]
+    order = np.argsort(-rank, kind="stable")[:MAX_REPORT_ROWS]
+    head = "".join(f"<th>{_e(cr.name)}</th>" for cr in acc.checks)
+    rows = [f"<h2>Units</h2><table><tr><th>DUT</th><th>decision</th>{head}</tr>"]
+    for i in order:
+        name = DECISIONS[acc.decision[i]]
+        cells = []
+        for cr in acc.checks:
+            if acc.decision[i] == ERROR:
+                cells.append("<td></td>")
+                continue
+            dn = DECISIONS[int(cr.decision[i])]
+            text = format_check(float(cr.value[i]), float(cr.U[i]), cr.check.unit)
+            cells.append(f"<td class='{dn}' title='{_e(STATEMENTS[int(cr.statement[i])])}"
+                         f", p_c = {float(cr.p_c[i]):.4g}'>{_e(text)}</td>")
+        extra = ""
+        if acc.decision[i] == ERROR:
+            extra = f" — {_e(acc.error[i])}"
+        elif acc.capped[i]:
+            extra = f" (flagged: {_e(', '.join(acc.warning_codes.get(int(i), ())))})"
+        rows.append(f"<tr><td>{_e(acc.duts[i])}</td><td class='{name}'>{name}{extra}</td>"
+                    + "".join(cells) + "</tr>")
+    rows.append("</table>")
+    if len(acc) > MAX_REPORT_ROWS:
+        rows.append(f"<p class='note'>{len(acc) - MAX_REPORT_ROWS} more DUTs (worst first "
+                    "above) are in accept.csv.</p>")
+    return "".join(rows)
