@@ -464,32 +464,26 @@ def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int)
 
 
 def _parse_loads(s, scale: float, name: str, header: str, lines) -> np.ndarray:
+    """Load cells → ohms: each distinct spelling is parsed once (a sweep has few loads)."""
     import pandas as pd
 
-    empty = s.isna().to_numpy()
-    if empty.any():
-        k = int(np.flatnonzero(empty)[0])
+    codes, uniques = pd.factorize(s, use_na_sentinel=True)
+    if (codes < 0).any():
+        k = int(np.flatnonzero(codes < 0)[0])
         raise ReadingsFileError(name, "empty load cell (write a resistance such as 4.7k, or "
                                       "'open')", line=int(lines[k]), column=header)
-    num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64)
-    out = num * scale
-    todo = np.isnan(num) | np.isinf(num)
-    if todo.any():
-        strs = s.to_numpy(dtype=object)[todo]
-        uniq, inv = np.unique(strs.astype(str), return_inverse=True)
-        vals = np.empty(uniq.size)
-        for j, text in enumerate(uniq.tolist()):
-            try:
-                vals[j] = parse_resistance(text, scale)
-            except ValueError as exc:
-                k = int(np.flatnonzero(todo)[int(np.flatnonzero(inv == j)[0])])
-                raise ReadingsFileError(name, str(exc), line=int(lines[k]), column=header) from None
-            if text.strip().lower() in ("-inf",) or (math.isnan(vals[j])):
-                k = int(np.flatnonzero(todo)[int(np.flatnonzero(inv == j)[0])])
-                raise ReadingsFileError(name, f"{text!r} is not a load resistance",
-                                        line=int(lines[k]), column=header)
-        out[todo] = vals[inv]
-    return out
+    values = np.empty(len(uniques))
+    for j, text in enumerate(uniques.tolist()):
+        try:
+            values[j] = parse_resistance(str(text), scale)
+        except ValueError as exc:
+            k = int(np.flatnonzero(codes == j)[0])
+            raise ReadingsFileError(name, str(exc), line=int(lines[k]), column=header) from None
+        if math.isnan(values[j]) or values[j] == -math.inf:
+            k = int(np.flatnonzero(codes == j)[0])
+            raise ReadingsFileError(name, f"{str(text)[:40]!r} is not a load resistance",
+                                    line=int(lines[k]), column=header)
+    return values[codes]
 
 
 def _parse_times(s, scale: float, name: str, header: str, lines) -> np.ndarray:
@@ -533,14 +527,12 @@ def neutralise(text: str) -> str:
     return text
 
 
-def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
-    """The results as a pandas DataFrame, one row per DUT, SI units, full precision."""
-    import pandas as pd
-
+def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dict:
+    """The per-DUT result columns (SI units, full precision) of ``--out results.csv``."""
     k = fits.k
     cols = {
-        "dut": [neutralise(d) for d in fits.duts],
-        "method": fits.method.astype(str),
+        "dut": list(fits.duts),
+        "method": fits.method.astype(str).tolist(),
         "n": fits.n,
         "vth": fits.vth, "vth_u": fits.u_vth,
         "vth_ci_low": fits.vth - k * fits.u_vth, "vth_ci_high": fits.vth + k * fits.u_vth,
@@ -551,12 +543,78 @@ def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
         "corr_vth_rth": _corr(fits),
         "chi2": fits.chi2, "dof": fits.dof, "p_value": fits.p_value,
         "coverage_factor": k, "confidence": np.full(len(fits), fits.confidence),
-        "flags": [neutralise(";".join(f.code for f in fl)) for fl in fits.flags],
-        "error": [neutralise(e) if e else "" for e in fits.error],
+        "flags": [";".join(f.code for f in fl) for fl in fits.flags],
+        "error": [e or "" for e in fits.error],
     }
     if extra_columns:
         cols.update(extra_columns)
+    return cols
+
+
+def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
+    """The results as a pandas DataFrame (text cells formula-neutralised)."""
+    import pandas as pd
+
+    cols = fits_columns(fits, extra_columns)
+    for name, col in cols.items():
+        if isinstance(col, list) and col and isinstance(col[0], str):
+            cols[name] = [neutralise(c) for c in col]
     return pd.DataFrame(cols)
+
+
+def fits_csv(fits, extra_columns: Mapping[str, object] | None = None) -> str:
+    """The results as CSV text (see :func:`table_csv`)."""
+    return table_csv(fits_columns(fits, extra_columns))
+
+
+def _csv_text_cell(text: str) -> str:
+    text = neutralise(text)
+    if any(c in text for c in ',"\n\r'):
+        return '"' + text.replace('"', '""') + '"'
+    return text
+
+
+def _csv_text_column(vals: list[str]) -> list[str]:
+    """Neutralise and quote a text column; a quick whole-column check skips clean columns."""
+    joined = "\x00".join(vals)
+    if not any(c in joined for c in ',"\n\r') and not ({v[:1] for v in vals} & set(_FORMULA_START)):
+        return vals
+    return [_csv_text_cell(v) for v in vals]
+
+
+def table_csv(columns: Mapping[str, object]) -> str:
+    """Columns → CSV text, fast for 100 000 rows: one '%'-format per row.
+
+    Floats keep 10 significant digits, NaN and ±inf become empty cells, integers stay
+    integers; text cells are formula-neutralised (:func:`neutralise`) and quoted where
+    needed, so numeric columns stay numeric for a spreadsheet.
+    """
+    names = list(columns)
+    parts, fmts = [], []
+    nrows = None
+    for name in names:
+        col = columns[name]
+        if isinstance(col, np.ndarray) and col.dtype.kind in "fiub":
+            if col.dtype.kind in "iub":
+                parts.append(col.astype(np.int64).tolist())
+                fmts.append("%d")
+            elif np.isfinite(col).all():
+                parts.append(col.tolist())
+                fmts.append("%.10g")
+            else:
+                ok = np.isfinite(col)
+                parts.append(["%.10g" % x if f else "" for x, f in zip(col.tolist(), ok.tolist())])
+                fmts.append("%s")
+        else:
+            vals = ["" if v is None else str(v) for v in col]
+            parts.append(_csv_text_column(vals))
+            fmts.append("%s")
+        if nrows is None:
+            nrows = len(parts[-1])
+    header = ",".join(_csv_text_cell(n) for n in names)
+    fmt = ",".join(fmts)
+    body = [fmt % row for row in zip(*parts)]
+    return header + "\n" + ("\n".join(body) + "\n" if body else "")
 
 
 def _corr(fits):

@@ -316,4 +316,51 @@ class Fits:
         return self.replace(flags=merged)
 
     def to_dicts(self) -> list[dict]:
-        return [r.to_dict() for r in self]
+        """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit fit --json``).
+
+        Built column-wise: equal to ``[fits[i].to_dict() for i …]`` but several times
+        faster on a large batch.
+        """
+        m = len(self)
+        if m == 0:
+            return []
+        k = self.k
+
+        def col(a):
+            return [_f(x) for x in np.asarray(a, dtype=float).tolist()]
+
+        def est(v, u):
+            vv, uu = col(v), col(u)
+            lo, hi = col(v - k * u), col(v + k * u)
+            return [{"value": a, "u": b, "ci": [c, d]} for a, b, c, d in zip(vv, uu, lo, hi)]
+
+        with np.errstate(invalid="ignore", divide="ignore"):
+            vth, rth = est(self.vth, self.u_vth), est(self.rth, self.u_rth)
+            isc, pmax = est(self.isc, self.u_isc), est(self.pmax, self.u_pmax)
+            corr = col(self.cov_vr / (self.u_vth * self.u_rth))
+            sf = col(np.sqrt(self.scale))
+        chi2, p, kk = col(self.chi2), col(self.p_value), col(k)
+        n, dof = self.n.tolist(), self.dof.tolist()
+        method = [str(x) or None for x in self.method.tolist()]
+        conv = self.converged.tolist()
+        diag_cols = {name: {f: (c.tolist() if isinstance(c, np.ndarray) else list(c))
+                            for f, c in cols.items()}
+                     for name, cols in self.diagnostics.items()}
+        out = []
+        for i in range(m):
+            d = {"dut": self.duts[i], "n": int(n[i]), "method": method[i],
+                 "vth": vth[i], "rth": rth[i], "isc": isc[i], "pmax": pmax[i],
+                 "norton": {"current": isc[i], "resistance": rth[i]},
+                 "corr_vth_rth": corr[i], "chi2": chi2[i], "dof": int(dof[i]),
+                 "p_value": p[i], "scale_factor": sf[i], "coverage_factor": kk[i],
+                 "converged": bool(conv[i]),
+                 "flags": [f.to_dict() for f in self.flags[i]],
+                 "diagnostics": {name: {f: _jsonable(c[i]) for f, c in cols.items()}
+                                 for name, cols in diag_cols.items()}}
+            for name, c in self.extra.items():
+                if c[i] is not None:
+                    d[name] = _jsonable(c[i])
+            if self.error[i]:
+                d["error"] = self.error[i]
+            out.append(d)
+        return out

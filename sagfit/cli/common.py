@@ -126,7 +126,10 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
 
 
 def dumps(doc) -> str:
-    return json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    """JSON text; indented for people, compact (C encoder, 10× faster) for big batches."""
+    big = len(doc.get("results", ())) > 2000 if isinstance(doc, dict) else False
+    return json.dumps(doc, indent=None if big else 2, ensure_ascii=False,
+                      allow_nan=False) + "\n"
 
 
 def write_stdout(text: str) -> None:

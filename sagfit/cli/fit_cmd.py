@@ -63,7 +63,8 @@ def fit_command(
             fits = fit(readings, confidence=settings["confidence"], level=level,
                        current_range=parse_current_range(current_range),
                        below_knee=below_knee, robust=robust)
-        doc = fit_document(fits, readings, settings)
+        need_results = bool(json_out or report or (out and out.lower().endswith(".json")))
+        doc = fit_document(fits, readings, settings, results=need_results)
         if all(e is not None for e in fits.error):
             from ..errors import ReadingsFileError
 
@@ -106,8 +107,9 @@ def parse_current_range(text: str | None):
     return lo, hi
 
 
-def fit_document(fits, readings, settings) -> dict:
-    """The JSON document of ``sagfit fit --json``."""
+def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
+    """The JSON document of ``sagfit fit --json`` (``results=False``: everything but the
+    per-DUT results, which cost time on a large batch and the terminal view does not need)."""
     from .. import __version__
     from ..safety import cautions
 
@@ -120,7 +122,7 @@ def fit_document(fits, readings, settings) -> dict:
                   "date": readings.meta.get("date"),
                   "duts": len(fits), "readings": len(readings)},
         "settings": settings_record(settings),
-        "results": fits.to_dicts(),
+        "results": fits.to_dicts() if results else [],
         "cautions": cautions(vth=fits.vth, isc=fits.isc, reading_power=power,
                              voltages=readings.voltage),
     }
@@ -133,7 +135,6 @@ def write_results(out: str, fits, doc, inputs) -> None:
     if out.lower().endswith(".json"):
         atomic_write(out, dumps(doc), inputs=inputs)
     else:
-        from ..io_csv import fits_table
+        from ..io_csv import fits_csv
 
-        atomic_write(out, fits_table(fits).to_csv(index=False, float_format="%.10g"),
-                     inputs=inputs)
+        atomic_write(out, fits_csv(fits), inputs=inputs)
