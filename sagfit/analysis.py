@@ -6,17 +6,31 @@ in, frozen results out.
 
 from __future__ import annotations
 
+import dataclasses
+import math
+
+import numpy as np
+from scipy import special
+
+from .diagnostics import diagnose, knee_rows
+from .errors import InputError
 from .fit import fit_lines
+from .formatting import format_value
 from .readings import Readings
-from .results import Fits
+from .results import Fits, Flag
 
 __all__ = ["fit"]
+
+#: Huber's tuning constant (95 % efficiency at the normal distribution): P. J. Huber,
+#: E. M. Ronchetti, *Robust Statistics*, 2nd ed. (2009), ch. 4 (value from memory: 1.345).
+HUBER_C = 1.345
+_IRLS_MAX = 50
 
 
 def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         current_range: tuple[float, float] | None = None, below_knee: bool = False,
         robust: bool = False) -> Fits:
-    """Fit the Thevenin equivalent V = Vth − Rth·I of every DUT in ``readings``.
+    """Fit the Thevenin equivalent V = Vth − Rth·I of every DUT in ``readings``, then check it.
 
     Parameters
     ----------
@@ -29,18 +43,204 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
     current_range : (lo, hi), optional
         Fit only readings with lo ≤ I ≤ hi (A).
     below_knee : bool
-        Where a knee is found, refit only the readings below it.
+        Where a knee is found, refit only the readings below it (before it along the
+        source curve) and check the refit again.
     robust : bool
-        Refit with a soft-L1 loss.
+        Refit with Huber's loss (iteratively reweighted York/WLS/OLS fits) so that an
+        outlying reading loses weight instead of pulling the line.
 
     Returns
     -------
     Fits
-        Columnar results; ``fits["U17"]`` gives one DUT's :class:`FitResult`.
+        Columnar results; ``fits["U17"]`` gives one DUT's :class:`FitResult`. Every DUT
+        carries the checks of :mod:`sagfit.diagnostics` in ``diagnostics`` and ``flags``;
+        ``settings`` records the options used.
 
     See :func:`sagfit.fit.fit_lines` for the method and its references.
     """
-    if current_range is not None or below_knee or robust:
-        raise NotImplementedError("diagnostic refits are being written (issue 3)")
+    if not (0.0 < level < 0.5) or not math.isfinite(level):
+        raise InputError(f"level must be between 0 and 0.5 (got {level!r})")
+    notes: dict[int, list[Flag]] = {}
+    used = readings
+    if current_range is not None:
+        lo, hi = (float(v) for v in current_range)
+        if not lo < hi:
+            raise InputError(f"current range: the low end {lo:g} A must be below the high "
+                             f"end {hi:g} A")
+        keep = (readings.current >= lo) & (readings.current <= hi)
+        dropped = np.bincount(readings.group[~keep], minlength=readings.n_duts)
+        used = readings.select(keep)
+        kept = used.counts()
+        text = _range_text(lo, hi)
+        for k in np.flatnonzero(dropped):
+            notes.setdefault(int(k), []).append(Flag(
+                "current-range", "info",
+                f"fitted only the {kept[k]} readings with {text}; {dropped[k]} outside it "
+                "were left out (--current-range)"))
+    fits = _fit_checked(used, confidence, level, robust)
+    if below_knee:
+        fits, used = _refit_below_knee(used, fits, confidence, level, robust, notes)
+    if notes:
+        new = [tuple(notes.get(k, ())) for k in range(len(fits))]
+        fits = fits.add_flags(new)
+    settings = dict(fits.settings)
+    settings.update(level=float(level),
+                    current_range=None if current_range is None
+                    else [float(current_range[0]), float(current_range[1])],
+                    below_knee=bool(below_knee), robust="huber" if robust else None)
+    return fits.replace(settings=settings)
+
+
+def _range_text(lo, hi):
+    if math.isinf(lo):
+        return f"I ≤ {format_value(hi, 'A')}"
+    if math.isinf(hi):
+        return f"I ≥ {format_value(lo, 'A')}"
+    return f"{format_value(lo, 'A')} ≤ I ≤ {format_value(hi, 'A')}"
+
+
+def _fit_checked(readings, confidence, level, robust):
     fits = fit_lines(readings, confidence=confidence)
-    return fits
+    if robust:
+        fits = _robust(readings, fits, confidence)
+    return diagnose(readings, fits, level=level)
+
+
+def _refit_below_knee(readings, fits, confidence, level, robust, notes):
+    keep = knee_rows(readings, fits)
+    if keep.all():
+        return fits, readings
+    g = readings.group
+    before = readings.counts()
+    kept = np.bincount(g[keep], minlength=readings.n_duts)
+    changed = kept < before
+    # a refit needs three readings to say anything; otherwise keep the full fit
+    enough = kept >= 3
+    keep = keep | ~(changed & enough)[g]
+    sub = readings.select(keep)
+    refit = _fit_checked(sub, confidence, level, robust)
+    use = changed & enough
+    knee = fits.diagnostics["knee"]
+    for k in np.flatnonzero(changed):
+        if use[k]:
+            notes.setdefault(int(k), []).append(Flag(
+                "below-knee", "info",
+                f"refitted on the {kept[k]} readings below the knee at "
+                f"I = {format_value(knee['current'][k], 'A')}, "
+                f"V = {format_value(knee['voltage'][k], 'V')}; {before[k] - kept[k]} readings "
+                "beyond it were left out (--below-knee)"))
+        else:
+            notes.setdefault(int(k), []).append(Flag(
+                "below-knee", "warning",
+                f"only {kept[k]} readings lie below the knee: too few to refit, so the fit "
+                "uses all readings; take more readings below the knee"))
+    # DUTs that were not refitted keep their first fit: rebuild them from the full set
+    if (changed & ~enough).any():
+        refit = _merge(refit, fits, use | ~changed)
+    return refit, sub
+
+
+def _merge(new: Fits, old: Fits, take_new: np.ndarray) -> Fits:
+    """Per DUT, ``new`` where ``take_new`` else ``old`` (same DUT list)."""
+    changes = {}
+    for f in dataclasses.fields(Fits):
+        a, b = getattr(new, f.name), getattr(old, f.name)
+        if isinstance(a, np.ndarray):
+            changes[f.name] = np.where(take_new, a, b)
+        elif f.name in ("error", "flags"):
+            changes[f.name] = tuple(x if t else y for x, y, t in zip(a, b, take_new))
+    diag = {}
+    for name, cols in new.diagnostics.items():
+        oc = old.diagnostics.get(name, {})
+        diag[name] = {c: (np.where(take_new, v, oc[c]) if c in oc else v)
+                      for c, v in cols.items()}
+    changes["diagnostics"] = diag
+    return new.replace(**changes)
+
+
+def _robust(readings: Readings, fits: Fits, confidence: float) -> Fits:
+    """Huber M-estimate by iteratively reweighted fits (all DUTs at once).
+
+    Each reading's variances are divided by its Huber weight ψ(z)/z = min(1, c/|z|), with
+    z its residual in units of the effective standard deviation (of the stated
+    uncertainties, or of the robust scale 1.4826·MAD for a fit without them), and the
+    York/WLS/OLS fit is repeated until the weights settle.
+    """
+    ok = fits.ok
+    g = readings.group
+    ols = ok & (fits.method == "ols")
+    stated = ok & ~ols
+    weight = np.ones(len(readings))
+    uv0, ui0, cv0 = readings.u_voltage, readings.u_current, readings.cov_iv
+    cur = fits
+    rob_scale = np.ones(len(fits))
+    for _ in range(_IRLS_MAX):
+        b = -np.where(ok, cur.rth, 0.0)
+        a = np.where(ok, cur.vth, 0.0)
+        res = readings.voltage - a[g] - b[g] * readings.current
+        with np.errstate(divide="ignore", invalid="ignore"):
+            var = uv0 ** 2 + b[g] ** 2 * ui0 ** 2 - 2 * b[g] * cv0
+            z = res / np.sqrt(np.where(stated[g], var, 1.0))
+        rob_scale = _mad_scale(np.where(ols[g], z, 0.0), g, len(fits))
+        zz = np.where(ols[g], z / rob_scale[g], z)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w_new = np.where(np.abs(zz) > HUBER_C, HUBER_C / np.abs(zz), 1.0)
+        w_new = np.where(ok[g] & np.isfinite(w_new), w_new, 1.0)
+        settled = np.max(np.abs(w_new - weight)) < 1e-6 if w_new.size else True
+        weight = w_new
+        inflate = 1.0 / np.sqrt(weight)
+        # for a fit without stated uncertainties the Huber weights act on a unit scale
+        uv = np.where(ols[g], rob_scale[g] * inflate, uv0 * inflate)
+        ui = np.where(ols[g], 0.0, ui0 * inflate)
+        cv = np.where(ols[g], 0.0, cv0 / weight)
+        rd = dataclasses.replace(readings, u_voltage=uv, u_current=ui, cov_iv=cv)
+        cur = fit_lines(rd, confidence=confidence)
+        if settled:
+            break
+    # the checks judge the robust line against the readings as stated: χ² with the
+    # original uncertainties (the plain residual sum of squares without them)
+    b = -np.where(ok, cur.rth, 0.0)
+    res = readings.voltage - np.where(ok, cur.vth, 0.0)[g] - b[g] * readings.current
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var = np.where(stated[g], uv0 ** 2 + b[g] ** 2 * ui0 ** 2 - 2 * b[g] * cv0, 1.0)
+        chi2 = np.bincount(g, weights=np.where(ok[g], res * res / var, 0.0),
+                           minlength=len(fits))
+    chi2 = np.where(ok, chi2, np.nan)
+    dof = np.maximum(fits.dof, 1)
+    p_value = np.where(stated, special.chdtrc(dof, chi2), np.nan)
+    # a fit without stated uncertainties stays Type A: keep its method, Student-t k and scale
+    k = np.where(ols, fits.k, cur.k)
+    method = np.where(ols, fits.method, cur.method)
+    n_down = np.bincount(g, weights=weight < 1.0, minlength=len(fits))
+    flags = []
+    for i in range(len(fits)):
+        kept = tuple(f for f in cur.flags[i] if not (ols[i] and f.code == "scale-applied"))
+        if ok[i]:
+            kept = tuple(f for f in fits.flags[i] if f.code == "type-a") + tuple(
+                f for f in kept if f.code != "type-a")
+            kept += (Flag("robust", "info",
+                          f"robust refit (Huber loss, c = {HUBER_C}): {int(n_down[i])} of "
+                          f"{int(fits.n[i])} readings were down-weighted; the uncertainties "
+                          "are those of the reweighted fit"),)
+        flags.append(kept)
+    return cur.replace(k=k, method=method, flags=tuple(flags), chi2=chi2, p_value=p_value,
+                       extra={**cur.extra, "robust_weights": _per_dut(weight, g, len(fits))})
+
+
+def _mad_scale(z, g, m):
+    """1.4826 × median |z| per group (median absolute residual, a robust σ)."""
+    order = np.lexsort((np.abs(z), g))
+    az = np.abs(z)[order]
+    n = np.bincount(g, minlength=m)
+    starts = np.concatenate(([0], np.cumsum(n)[:-1]))
+    lo = starts + (n - 1) // 2
+    hi = starts + n // 2
+    med = np.where(n > 0, 0.5 * (az[np.minimum(lo, az.size - 1)] + az[np.minimum(hi, az.size - 1)]), 1.0)
+    s = 1.4826 * med
+    return np.where(s > 0, s, 1.0)
+
+
+def _per_dut(values, g, m):
+    n = np.bincount(g, minlength=m)
+    parts = np.split(values, np.cumsum(n)[:-1])
+    return [p.tolist() for p in parts]
