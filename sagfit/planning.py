@@ -346,9 +346,11 @@ def plan(
         cand = cand[(i <= i_cap * (1 + _RTOL)) & (p <= p_allow * (1 + _RTOL))]
         source_text = f"the {series} series"
     if cand.size == 0:
+        power_text = (f"dissipation ≤ {format_value(p_allow, 'W', 3)}"
+                      if math.isfinite(p_allow) else "no power limit")
         raise InputError(
             f"no load from {source_text} meets the limits (current ≤ "
-            f"{format_value(i_cap, 'A', 3)}, dissipation ≤ {format_value(p_allow, 'W', 3)}): "
+            f"{format_value(i_cap, 'A', 3)}, {power_text}): "
             "raise --max-current or --max-power if the source and resistors allow it, or "
             "offer other resistors with --have")
 

@@ -364,7 +364,7 @@ def run_csv_text(run: SimulatedRun, comments: Sequence[str] = ()) -> str:
     if run.current_A is not None:
         cols.append(_fmt(run.current_A, "%.10g"))
         header += ",current_A"
-    cols.append(_fmt(run.time_s, "%.6f"))
+    cols.append(_fmt(run.time_s, "%.10g"))
     header += ",time_s"
     body = [",".join(row) for row in zip(*cols)]
     return "\n".join(head + [header] + body) + "\n"

@@ -224,3 +224,61 @@ class TestLimitsProperty:
             assert not np.any(p.load == 0)
         assert len(set(p.load.tolist())) == len(p)
         assert p.cautions[-1] == DEFERRAL
+
+
+def _cli(argv, capsys):
+    from sagfit.cli import main
+
+    with pytest.raises(SystemExit) as exc:
+        main(argv)
+    out = capsys.readouterr()
+    return exc.value.code, out.out, out.err
+
+
+class TestPlanCommand:
+    ARGS = ["plan", "--voltage", "12.6V", "--resistance", "50mohm", "--max-current", "10A",
+            "--max-power", "100W", "--voltage-accuracy", "0.05%+2mV", "--load-tolerance", "1%"]
+
+    def test_terminal_output(self, capsys):
+        """The terminal plan lists the loads, the prediction, and ends with the deferral."""
+        code, out, err = _cli(self.ARGS, capsys)
+        assert code == 0 and err == ""
+        assert "open" in out and "predicted standard uncertainties" in out
+        assert out.rstrip().splitlines()[-1] == "caution: " + DEFERRAL
+
+    def test_json_document(self, capsys):
+        """--json prints only the JSON document with the documented keys."""
+        import json
+
+        code, out, _ = _cli(self.ARGS + ["--json"], capsys)
+        doc = json.loads(out)
+        assert code == 0 and doc["loads"][0]["load_ohm"] is None
+        assert doc["predicted"]["u_rth"] > 0 and doc["cautions"][-1] == DEFERRAL
+        assert all(l["power_W"] <= 50.0 for l in doc["loads"])
+
+    def test_own_list_with_a_short_on_a_battery(self, capsys):
+        """A short in --have on a battery is refused in the warnings, not planned."""
+        import json
+
+        code, out, _ = _cli(["plan", "--voltage", "12.6", "--resistance", "0.05", "--have",
+                             "1,2.2,4.7,10,short", "--json"], capsys)
+        doc = json.loads(out)
+        assert code == 0 and all(l["load_ohm"] != 0 for l in doc["loads"])
+        assert any("short left out" in w for w in doc["warnings"])
+
+    @pytest.mark.parametrize("extra, option", [
+        (["--series", "E7"], "--series"), (["--points", "2"], "--points"),
+        (["--derating", "50"], "--derating"), (["--max-power", "3V"], "--max-power"),
+        (["--have", "1,x"], "--have"), (["--resistance", "0"], "--resistance"),
+    ])
+    def test_bad_option_is_one_error_line(self, capsys, extra, option):
+        """A bad option value gives one `error:` line naming the option, exit status 2."""
+        code, out, err = _cli(self.ARGS + extra, capsys)
+        assert code == 2 and out == ""
+        assert err.startswith(f"error: option {option}") and err.count("\n") == 1
+
+    def test_impossible_plan_refused(self, capsys):
+        """A plan no resistor can meet is refused with the reason, exit status 2."""
+        code, _, err = _cli(["plan", "--voltage", "12", "--resistance", "1", "--max-current",
+                             "1mA", "--have", "1,2"], capsys)
+        assert code == 2 and err.startswith("error: plan refused: no load")

@@ -189,3 +189,77 @@ class TestBadInput:
         run = simulate(2.0, 0.5, [math.inf, 0.0], measure_current=True)
         assert run.current_A[1] == pytest.approx(4.0)
         assert run.voltage_V[1] == 0.0
+
+
+def _cli(argv, capsys):
+    from sagfit.cli import main
+
+    with pytest.raises(SystemExit) as exc:
+        main(argv)
+    out = capsys.readouterr()
+    return exc.value.code, out.out, out.err
+
+
+class TestSimulateCommand:
+    ARGS = ["simulate", "--vth", "12.6V", "--rth", "50mohm", "--loads", "open,10,4k7,2.2,1,R47",
+            "--voltage-accuracy", "0.05%+2mV", "--load-tolerance", "1%", "--duts", "20",
+            "--seed", "5"]
+
+    def test_round_trip_through_fit(self, tmp_path, capsys):
+        """`sagfit simulate … --out x.csv` then `sagfit fit x.csv …` fits every DUT."""
+        import json
+
+        out = tmp_path / "x.csv"
+        code, text, err = _cli(self.ARGS + ["--out", str(out)], capsys)
+        assert code == 0 and "120 invented readings of 20 DUT(s)" in text and err == ""
+        code, text, err = _cli(["fit", str(out), "--voltage-accuracy", "0.05%+2mV",
+                                "--load-tolerance", "1%", "--json"], capsys)
+        assert code == 0
+        doc = json.loads(text)
+        assert len(doc["results"]) == 20
+        rth = [r["rth"]["value"] for r in doc["results"]]
+        assert 0.045 < np.mean(rth) < 0.055
+
+    def test_file_is_labelled_and_reproducible(self, tmp_path, capsys):
+        """The CSV starts with an INVENTED DATA line naming the settings and seed, and the
+        same command writes the same bytes."""
+        a, b = tmp_path / "a.csv", tmp_path / "b.csv"
+        _cli(self.ARGS + ["--out", str(a)], capsys)
+        _cli(self.ARGS + ["--out", str(b)], capsys)
+        first = a.read_text(encoding="utf-8").splitlines()[0]
+        assert first.startswith("# INVENTED DATA (sagfit simulate --vth 12.6V --rth 50mohm")
+        assert "--seed 5" in first and "--load-tolerance 1%" in first
+        assert a.read_bytes() == b.read_bytes()
+
+    def test_effects_and_measured_current(self, tmp_path, capsys):
+        """Knee, curvature, drift and an ammeter column are accepted with units."""
+        from sagfit import read_readings
+
+        out = tmp_path / "k.csv"
+        code, text, _ = _cli(["simulate", "--vth", "12", "--rth", "0.1", "--loads",
+                              "open,10,2,1,0.5", "--knee", "5A", "--curvature", "2mV/A2",
+                              "--drift", "5mV/h", "--measure-current", "--current-accuracy",
+                              "0.2%+1mA", "--duts", "3", "--out", str(out)], capsys)
+        assert code == 0 and "in current limit" in text
+        back = read_readings(out)
+        assert back.n_duts == 3 and back.current.max() <= 5.0 * 1.003 + 0.001
+
+    def test_refuses_to_overwrite_real_readings(self, tmp_path, capsys):
+        """An existing file that is not a simulation is never overwritten."""
+        real = tmp_path / "bench.csv"
+        real.write_text("dut,load,voltage_V\nA,open,12\n", encoding="utf-8")
+        code, _, err = _cli(self.ARGS + ["--out", str(real)], capsys)
+        assert code == 2 and err.startswith("error: option --out:") and err.count("\n") == 1
+        assert real.read_text(encoding="utf-8") == "dut,load,voltage_V\nA,open,12\n"
+
+    @pytest.mark.parametrize("extra, option", [
+        (["--rth", "open"], "--rth"), (["--loads", "1,,2"], "--loads"),
+        (["--knee", "5V"], "--knee"), (["--vth-spread", "1"], "--vth-spread"),
+        (["--prefix", "=HYPERLINK"], "--prefix"), (["--duts", "0"], "--duts"),
+    ])
+    def test_bad_option_is_one_error_line(self, tmp_path, capsys, extra, option):
+        """A bad option value gives one `error:` line naming the option, exit status 2."""
+        code, _, err = _cli(self.ARGS + extra + ["--out", str(tmp_path / "y.csv")], capsys)
+        assert code == 2
+        assert err.startswith(f"error: option {option}") and err.count("\n") == 1
+        assert not (tmp_path / "y.csv").exists()
