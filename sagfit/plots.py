@@ -279,20 +279,29 @@ def _rows(readings, i: int) -> slice:
     return slice(lo, hi)
 
 
-_LINE_LIST = re.compile(r"\blines?(?:\s*\(s\))?\s+((?:\d+(?:\s*(?:,|and)\s*)?)+)", re.I)
+_LINE_WORD = re.compile(r"\blines?(?:\s*\(s\))?\s+(?=\d)", re.I)
+_NUMBER_LIST = re.compile(r"\d+(?:\s*,\s*\d+|\s+and\s+\d+)*")
 
 
 def flagged_lines(flags: Sequence, codes: Sequence[str] | None = None) -> set[int]:
-    """Input line numbers named in the messages of ``flags`` (e.g. ``outlier`` flags say
-    "line 14"); all flag codes when ``codes`` is None."""
+    """Input line numbers named in the messages of ``flags`` (``outlier`` flags say
+    "line 14", cross-checks "line(s) 12, 14 and 3 more"); all flag codes when ``codes``
+    is None. A count ("and 3 more") is not a line number."""
     out: set[int] = set()
     for f in flags:
         code = getattr(f, "code", None) or (f.get("code") if isinstance(f, Mapping) else None)
         msg = getattr(f, "message", None) or (f.get("message") if isinstance(f, Mapping) else "")
         if codes is not None and code not in codes:
             continue
-        for m in _LINE_LIST.finditer(msg or ""):
-            out.update(int(t) for t in re.findall(r"\d+", m.group(1)))
+        msg = msg or ""
+        for m in _LINE_WORD.finditer(msg):
+            run = _NUMBER_LIST.match(msg, m.end())
+            if run is None:
+                continue
+            nums = re.findall(r"\d+", run.group(0))
+            if re.match(r"\s*more\b", msg[run.end():]):
+                nums = nums[:-1]
+            out.update(int(t) for t in nums)
     return out
 
 
