@@ -239,13 +239,13 @@ def trend_command(
         names = [d.strip() for d in dut.split(",") if d.strip()] if dut else None
         with History(db, create=False) as hist:
             recs = hist.records(names)
+            if names:
+                missing = [d for d in names if d not in recs.duts]
+                if missing and hist.count():
+                    raise OptionError("--dut", f"no records of {missing[0]!r} in {db}")
             if len(recs) == 0:
                 raise HistoryError(f"{db}: no records yet; add tests with 'sagfit record FILE "
                                    f"--db {db}'")
-            if names:
-                missing = [d for d in names if d not in recs.duts]
-                if missing:
-                    raise OptionError("--dut", f"no records of {missing[0]!r} in {db}")
         trends = analyse_trends(
             recs.dut_index, recs.duts, recs.time, recs.rth, recs.u_rth,
             labels=recs.labels_per_dut(), baseline=base, threshold=thr, horizon_days=hz,
