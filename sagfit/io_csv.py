@@ -327,7 +327,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
                                 line=header_line)
     decimal = "," if delim == ";" else "."
     usecols = [roles[r].index for r in roles]
-    text_roles = {"dut", "load", "time", "group"}
+    text_roles = {"dut", "load", "group"}
     try:
         frame = pd.read_csv(
             io.BytesIO(body), sep=delim, header=None, names=list(range(len(names))),
@@ -390,9 +390,15 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         empty = s.isna().to_numpy()
         if empty.any():
             row_error("dut", int(np.flatnonzero(empty)[0]), "empty DUT id")
-        codes, uniques = pd.factorize(s.str.strip(), sort=False)
-        kwargs["group"] = codes.astype(np.int64)
-        kwargs["duts"] = [str(u) for u in uniques]
+        codes, uniques = pd.factorize(s, sort=False)
+        names_u = [str(u) for u in uniques.tolist()]
+        stripped = [u.strip() for u in names_u]
+        if stripped != names_u:  # ' A' and 'A' are one DUT: merge after stripping
+            codes2, names2 = pd.factorize(pd.Series(stripped, dtype=object), sort=False)
+            codes = np.asarray(codes2)[codes]
+            stripped = [str(u) for u in names2.tolist()]
+        kwargs["group"] = np.asarray(codes, dtype=np.int64)
+        kwargs["duts"] = stripped
     else:
         kwargs["group"] = np.zeros(lines_of_rows.size, np.int64)
         kwargs["duts"] = [stem or "DUT"]
@@ -487,18 +493,20 @@ def _parse_loads(s, scale: float, name: str, header: str, lines) -> np.ndarray:
 
 
 def _parse_times(s, scale: float, name: str, header: str, lines) -> np.ndarray:
+    """Seconds (a numeric column, times its unit) or ISO 8601 date-times → epoch seconds."""
     import pandas as pd
 
-    empty = s.isna().to_numpy()
-    if empty.all():
-        return np.full(len(s), np.nan)
-    num = pd.to_numeric(s, errors="coerce")
-    if not (num.isna() & s.notna()).any():
-        a = num.to_numpy(dtype=np.float64) * scale
+    if s.dtype.kind in "fiu":
+        a = s.to_numpy(dtype=np.float64) * scale
         bad = np.flatnonzero(np.isinf(a))
         if bad.size:
             raise ReadingsFileError(name, "infinite time", line=int(lines[bad[0]]), column=header)
         return a
+    if s.isna().all():
+        return np.full(len(s), np.nan)
+    num = pd.to_numeric(s, errors="coerce")
+    if not (num.isna() & s.notna()).any():
+        return num.to_numpy(dtype=np.float64) * scale
     try:
         ts = pd.to_datetime(s, errors="coerce", format="ISO8601", utc=True)
     except (ValueError, TypeError):
