@@ -16,6 +16,7 @@ from .diagnostics import diagnose, knee_rows
 from .errors import InputError
 from .fit import fit_lines
 from .formatting import format_value
+from .predict import prediction_fields
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -83,6 +84,7 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
     if notes:
         new = [tuple(notes.get(k, ())) for k in range(len(fits))]
         fits = fits.add_flags(new)
+    fits = fits.replace(extra={**fits.extra, "prediction": prediction_fields(used, fits)})
     settings = dict(fits.settings)
     settings.update(level=float(level),
                     current_range=None if current_range is None

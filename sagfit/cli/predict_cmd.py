@@ -1,0 +1,135 @@
+"""``sagfit predict``: the operating point of a fitted source at other loads."""
+
+from __future__ import annotations
+
+from typing import Annotated, Optional
+
+import typer
+
+from . import app
+from .common import ConfidenceOpt, JsonOpt, dumps, guarded, write_stdout
+
+
+@app.command("predict")
+def predict_command(
+    results: Annotated[str, typer.Argument(
+        help="A saved fit: the JSON of `sagfit fit --json` or `sagfit fit --out x.json`.")],
+    load: Annotated[Optional[str], typer.Option(
+        "--load", help="Load resistances, comma-separated: 3.3,4k7,470R,1M5,open.")] = None,
+    current: Annotated[Optional[str], typer.Option(
+        "--current", help="Set load currents, comma-separated: 0.5,1A,250mA.")] = None,
+    dut: Annotated[Optional[str], typer.Option(
+        "--dut", help="Only these DUTs (comma-separated).")] = None,
+    confidence: ConfidenceOpt = None,
+    json_out: JsonOpt = False,
+) -> None:
+    """Terminal voltage, current and power of each fitted source at other loads, each
+    with a confidence interval for the mean and, for the voltage, a prediction interval
+    for one new reading."""
+    with guarded(results):
+        from ..errors import OptionError
+        from ..predict import models_from_document, predict
+
+        loads = _parse_list(load, "--load", _resistance)
+        currents = _parse_list(current, "--current", _current)
+        if not loads and not currents:
+            raise OptionError("--load", "give at least one load (e.g. --load 3.3,4.7,10) or "
+                                        "a current (--current 0.5,1)")
+        doc = _read_document(results)
+        names = [d.strip() for d in dut.split(",") if d.strip()] if dut else None
+        models = models_from_document(doc, results, names)
+        preds = predict(models, loads=loads, currents=currents, confidence=confidence)
+        if json_out:
+            write_stdout(dumps({"tool": "sagfit", "source": results,
+                                "predictions": [p.to_dict() for p in preds]}))
+        else:
+            _print(preds, doc)
+
+
+def _resistance(text: str) -> float:
+    from ..units import parse_resistance
+
+    return parse_resistance(text)
+
+
+def _current(text: str) -> float:
+    from ..units import parse_quantity
+
+    return parse_quantity(text, "A", what="current")
+
+
+def _parse_list(text, option, parse):
+    from ..errors import InputError, OptionError
+
+    if text is None:
+        return []
+    out = []
+    for part in text.split(","):
+        if not part.strip():
+            raise OptionError(option, f"{text!r}: empty item in the list")
+        try:
+            value = parse(part.strip())
+        except (ValueError, InputError) as exc:
+            raise OptionError(option, str(exc).split(": ", 1)[-1]) from None
+        if option == "--load" and value < 0:
+            raise OptionError(option, f"{part.strip()!r}: a load resistance must be ≥ 0 Ω")
+        out.append(value)
+    return out
+
+
+def _read_document(path: str):
+    import json
+
+    from ..errors import InputError
+
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read()
+    except IsADirectoryError:
+        raise InputError(f"{path}: is a folder, not a results file") from None
+    try:
+        return json.loads(raw.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: not a text file (expected the JSON of `sagfit fit --json`)") \
+            from None
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{path}, line {exc.lineno}, column {exc.colno}: not valid JSON "
+                         f"({exc.msg}); expected the output of `sagfit fit --json`") from None
+
+
+def _print(preds, doc) -> None:
+    from rich.table import Table
+
+    from ..formatting import format_estimate, format_interval, format_value
+    from .render import _console
+
+    console = _console()
+    by_dut: dict[str, list] = {}
+    for p in preds:
+        by_dut.setdefault(p.dut, []).append(p)
+    for dut, rows in by_dut.items():
+        lvl = f"{rows[0].level * 100:g} %"
+        t = Table(title=f"{dut}: predicted operating points ({lvl} intervals)",
+                  title_justify="left", show_edge=False)
+        for col, just in (("load", "right"), ("current", "right"), ("voltage", "right"),
+                          (f"V interval (mean)", "right"), ("V interval (one reading)", "right"),
+                          ("power", "right")):
+            t.add_column(col, justify=just)
+        for p in rows:
+            load = "open" if p.load_ohm == float("inf") else format_value(p.load_ohm, "Ω")
+            if p.given == "current":
+                load = f"≈ {load}"
+            v = p.voltage
+            t.add_row(load, format_estimate(p.current.value, p.current.u, "A"),
+                      format_estimate(v.value, v.u, "V"),
+                      format_interval(v.ci[0], v.ci[1], "V", v.u),
+                      format_interval(v.pi[0], v.pi[1], "V", v.u_pi) if v.pi else "n/a",
+                      format_estimate(p.power.value, p.power.u, "W"))
+        console.print(t)
+    if any(p.voltage.pi is None for p in preds):
+        console.print("note: the saved fit carries no model of a new reading's uncertainty "
+                      "(an older results file): refit with this version for prediction "
+                      "intervals", markup=False)
+    console.print("Values ± standard uncertainty; the one-reading interval adds the "
+                  "voltmeter's uncertainty (and the load tolerance, when stated) to the "
+                  "uncertainty of the fitted line.", markup=False)
