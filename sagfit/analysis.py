@@ -130,7 +130,9 @@ def _refit_below_knee(readings, fits, confidence, level, robust, notes):
                 f"refitted on the {kept[k]} readings below the knee at "
                 f"I = {format_value(knee['current'][k], 'A')}, "
                 f"V = {format_value(knee['voltage'][k], 'V')}; {before[k] - kept[k]} readings "
-                "beyond it were left out (--below-knee)"))
+                "beyond it were left out (--below-knee). Isc and Pmax extrapolate this linear "
+                "part: the source itself delivers no more than about "
+                f"{format_value(knee['current'][k], 'A')}"))
         else:
             notes.setdefault(int(k), []).append(Flag(
                 "below-knee", "warning",

@@ -677,7 +677,9 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
                              f"p {_p(p_fit[k])}): the meter accuracy or resistor tolerance is "
                              "understated, or the source was unstable (temperature, state of "
                              "charge, a loose contact); the uncertainty was enlarged by the "
-                             "scale factor"))
+                             "scale factor" + (
+                                 "; here a non-linearity (see the knee/curvature findings) "
+                                 "explains much of it" if f_knee[k] or f_curv[k] else "")))
     for k in np.flatnonzero(f_good):
         flags[k].append(Flag("too-good", "info",
                              f"the readings agree with the line far better than the stated "

@@ -38,6 +38,9 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
                       format_interval(est.ci_low, est.ci_high, unit, est.u))
         console.print(t)
         console.print(_quality(r.chi2, r.dof, r.p_value, r.method, r.corr_vth_rth))
+        knee = _knee_line(fits, 0)
+        if knee:
+            console.print(knee, markup=False)
     else:
         t = Table(show_edge=False)
         for col, just in (("DUT", "left"), ("n", "right"), ("Vth", "right"), ("Rth", "right"),
@@ -72,7 +75,7 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
     _print_flags(console, fits, verbose)
     errors = [(d, e) for d, e in zip(fits.duts, fits.error) if e is not None]
     for d, e in errors[:MAX_TABLE_ROWS]:
-        console.print(f"[bold]error[/bold] {d}: {e}", markup=True)
+        console.print(f"[bold]error[/bold] {_esc(d)}: {_esc(e)}", markup=True)
     if len(errors) > MAX_TABLE_ROWS:
         console.print(f"… and {len(errors) - MAX_TABLE_ROWS} more DUTs could not be fitted")
     if verbose:
@@ -93,13 +96,38 @@ def _quality(chi2, dof, p, method, corr) -> str:
     if method == "ols":
         return (f"fit quality: residual SS {chi2:.4g} on {dof} degrees of freedom (no uncertainty "
                 f"stated: Type A, Student t); corr(Vth, Rth) = {corr:.3f}")
-    pv = format_p(p) if p is not None else "n/a"
-    return (f"fit quality: χ² = {chi2:.3g} on {dof} degrees of freedom, p = {pv}; "
+    pv = _p_text(p) if p is not None else "= n/a"
+    return (f"fit quality: χ² = {chi2:.3g} on {dof} degrees of freedom, p {pv}; "
             f"corr(Vth, Rth) = {corr:.3f}")
 
 
+def _knee_line(fits, i) -> str:
+    """'knee at I = …, V = …' when the knee check flagged DUT i, else ''."""
+    if not any(f.code == "knee" for f in fits.flags[i]):
+        return ""
+    k = fits.diagnostics.get("knee", {})
+    ik, vk, p = (float(k[c][i]) for c in ("current", "voltage", "p_value"))
+    return (f"knee at I = {format_value(ik, 'A')}, V = {format_value(vk, 'V')} "
+            f"(p {_p_text(p)}): the line above describes neither segment well; "
+            "refit with --below-knee")
+
+
+def _p_text(p) -> str:
+    t = format_p(p)
+    return t if t[0] in "<>" else "= " + t
+
+
 def _print_flags(console, fits, verbose):
+    from collections import Counter
+
     shown = 0
+    counts: Counter = Counter()
+    for fl in fits.flags:
+        counts.update(f.code for f in fl if f.severity == "warning")
+    if len(fits) > 1 and counts:
+        summary = ", ".join(f"{code} {n}" for code, n in counts.most_common())
+        console.print(f"[bold]checks[/bold]: warnings across {len(fits)} DUTs: {summary}",
+                      markup=True)
     for i in range(len(fits)):
         for f in fits.flags[i]:
             if f.severity == "info" and not verbose and len(fits) > 1:
@@ -107,6 +135,15 @@ def _print_flags(console, fits, verbose):
             if shown >= MAX_TABLE_ROWS * 2:
                 console.print("… more flags in --json / --out")
                 return
-            prefix = "warning" if f.severity == "warning" else "note"
-            console.print(f"{prefix} {fits.duts[i]} [{f.code}]: {f.message}", markup=False)
+            if f.severity == "warning":
+                console.print(f"[bold yellow]warning[/bold yellow] {_esc(fits.duts[i])} "
+                              f"\\[{_esc(f.code)}]: {_esc(f.message)}", markup=True)
+            else:
+                console.print(f"note {fits.duts[i]} [{f.code}]: {f.message}", markup=False)
             shown += 1
+
+
+def _esc(text) -> str:
+    from rich.markup import escape
+
+    return escape(str(text))
