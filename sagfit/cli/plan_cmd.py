@@ -11,7 +11,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, dumps,
-                     fit_settings, guarded, write_stdout)
+                     fit_settings, guarded, interactive, progress, write_stdout)
 
 INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
 
@@ -195,35 +195,37 @@ def simulate_command(
             raise OptionError("--errors", f"use rectangular or normal (got {errors!r})")
         spread_v = (_percent(vth_spread, "--vth-spread") or 0.0) / 100.0
         spread_r = (_percent(rth_spread, "--rth-spread") or 0.0) / 100.0
-        step = _time(interval, "--interval")
-        if step < 0:
+        interval_s = _time(interval, "--interval")
+        if interval_s < 0:
             raise OptionError("--interval", "must not be negative")
         check_output_path(out)
         _refuse_real_file(out)
-        try:
-            run = simulate(
-                v, r, load_list, duts=duts, seed=seed,
-                voltage_accuracy=settings["voltage_accuracy"],
-                current_accuracy=settings["current_accuracy"],
-                load_tolerance=settings["load_tolerance"], measure_current=measure_current,
-                vth_spread=spread_v, rth_spread=spread_r,
-                knee_current=_quantity(knee, "A", "--knee"), curvature=_curvature(curvature),
-                drift=_drift(drift), interval_s=step, dut_prefix=prefix,
-                per_dut_loads=per_dut_loads, error_distribution=errors)
-        except OptionError:
-            raise
-        except InputError as exc:
-            head, _, rest = str(exc).partition(": ")
-            raise OptionError(_SIM_OPTIONS.get(head, "--" + head.replace("_", "-")),
-                              rest) from None
-        comments = _simulate_comments(_reproducing_argv(
-            vth=vth, rth=rth, loads=loads, duts=duts, seed=seed,
-            voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
-            load_tolerance=load_tolerance, measure_current=measure_current, knee=knee,
-            curvature=curvature, drift=drift, vth_spread=vth_spread, rth_spread=rth_spread,
-            interval=interval, prefix=prefix, per_dut_loads=per_dut_loads, errors=errors,
-            out=out), run)
-        atomic_write(out, run_csv_text(run, comments))
+        with progress(f"simulating {duts} DUT(s)", interactive() and duts >= 1000) as say:
+            try:
+                run = simulate(
+                    v, r, load_list, duts=duts, seed=seed,
+                    voltage_accuracy=settings["voltage_accuracy"],
+                    current_accuracy=settings["current_accuracy"],
+                    load_tolerance=settings["load_tolerance"], measure_current=measure_current,
+                    vth_spread=spread_v, rth_spread=spread_r,
+                    knee_current=_quantity(knee, "A", "--knee"), curvature=_curvature(curvature),
+                    drift=_drift(drift), interval_s=interval_s, dut_prefix=prefix,
+                    per_dut_loads=per_dut_loads, error_distribution=errors)
+            except OptionError:
+                raise
+            except InputError as exc:
+                head, _, rest = str(exc).partition(": ")
+                raise OptionError(_SIM_OPTIONS.get(head, "--" + head.replace("_", "-")),
+                                  rest) from None
+            comments = _simulate_comments(_reproducing_argv(
+                vth=vth, rth=rth, loads=loads, duts=duts, seed=seed,
+                voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
+                load_tolerance=load_tolerance, measure_current=measure_current, knee=knee,
+                curvature=curvature, drift=drift, vth_spread=vth_spread, rth_spread=rth_spread,
+                interval=interval, prefix=prefix, per_dut_loads=per_dut_loads, errors=errors,
+                out=out), run)
+            say(f"writing {out}")
+            atomic_write(out, run_csv_text(run, comments))
     limited = int(run.limited.sum())
     write_stdout(f"wrote {len(run)} invented readings of {len(run.duts)} DUT(s) to {out} "
                  f"(seed {seed})" + (f"; {limited} reading(s) in current limit" if limited
