@@ -1,0 +1,167 @@
+"""`sagfit fit` end to end: output shapes, files, options, exit codes (plumbing; the numbers
+themselves are checked against references in test_fit.py)."""
+
+import csv
+import io
+import json
+import subprocess
+import sys
+
+import pytest
+
+from conftest import SAMPLES, digest
+
+PACK = SAMPLES / "pack_a.csv"
+FLEET = SAMPLES / "fleet_packs.csv"
+BENCH = SAMPLES / "bench.toml"
+REQUIRED = ["dut", "method", "n", "vth", "vth_u", "vth_ci_low", "vth_ci_high", "rth", "rth_u",
+            "rth_ci_low", "rth_ci_high", "flags"]
+
+
+class TestJson:
+    def test_document_shape(self, cli):
+        """--json prints one document with the promised keys, SI units, nothing else on stdout."""
+        run = cli("fit", FLEET, "--bench", BENCH, "--json")
+        assert run.code == 0, run.err
+        doc = json.loads(run.out)
+        assert doc["tool"] == "sagfit" and doc["confidence"] == 0.95 and doc["version"]
+        assert len(doc["results"]) == 6
+        r = doc["results"][0]
+        for key in ("dut", "n", "method", "vth", "rth", "isc", "pmax", "corr_vth_rth", "chi2",
+                    "dof", "p_value", "flags"):
+            assert key in r
+        for q in ("vth", "rth", "isc", "pmax"):
+            assert set(r[q]) >= {"value", "u", "ci"} and len(r[q]["ci"]) == 2
+        assert r["method"] == "york"
+        assert 12 < r["vth"]["value"] < 13 and 0.01 < r["rth"]["value"] < 0.05
+        assert doc["input"]["sha256"] == digest(FLEET)
+
+    def test_no_uncertainty_gives_null_p(self, cli):
+        """Without stated uncertainty the method is ols and p_value is null."""
+        doc = json.loads(cli("fit", PACK, "--json").out)
+        assert doc["results"][0]["method"] == "ols" and doc["results"][0]["p_value"] is None
+
+    def test_confidence_changes_intervals(self, cli):
+        """--confidence 0.99 widens the interval by z(0.995)/z(0.975)."""
+        a = json.loads(cli("fit", PACK, "--bench", BENCH, "--json").out)["results"][0]["vth"]
+        b = json.loads(cli("fit", PACK, "--bench", BENCH, "--json", "--confidence", "0.99")
+                       .out)["results"][0]["vth"]
+        wa, wb = a["ci"][1] - a["ci"][0], b["ci"][1] - b["ci"][0]
+        assert wb / wa == pytest.approx(2.5758293035489 / 1.959963984540054, rel=1e-9)
+
+
+class TestOut:
+    def test_csv(self, cli, tmp_path):
+        """--out x.csv writes one row per DUT with the required columns, numeric cells numeric."""
+        out = tmp_path / "res.csv"
+        run = cli("fit", FLEET, "--bench", BENCH, "--out", out)
+        assert run.code == 0, run.err
+        rows = list(csv.DictReader(io.StringIO(out.read_text())))
+        assert len(rows) == 6 and set(REQUIRED) <= set(rows[0])
+        float(rows[0]["vth"]), float(rows[0]["rth_ci_high"])
+        assert not list(tmp_path.glob(".*part"))
+
+    def test_json_file(self, cli, tmp_path):
+        """--out x.json writes the same document as --json."""
+        out = tmp_path / "res.json"
+        assert cli("fit", PACK, "--out", out).code == 0
+        assert json.loads(out.read_text())["results"][0]["dut"] == "pack_a"
+
+    def test_refuses_to_overwrite_input(self, cli, tmp_path):
+        """--out naming the input file is refused with exit 2 and the file is unchanged."""
+        p = tmp_path / "pack.csv"
+        p.write_bytes(PACK.read_bytes())
+        before = digest(p)
+        run = cli("fit", p, "--out", p)
+        assert run.code == 2 and "input file" in run.err
+        assert digest(p) == before
+
+    def test_unknown_extension(self, cli, tmp_path):
+        """An --out name that is neither .csv nor .json is refused."""
+        assert cli("fit", PACK, "--out", tmp_path / "x.xlsx").code == 2
+
+    def test_missing_folder(self, cli, tmp_path):
+        """--out into a folder that does not exist is refused, not created."""
+        run = cli("fit", PACK, "--out", tmp_path / "no" / "x.csv")
+        assert run.code == 2 and "does not exist" in run.err
+
+    def test_formula_injection_neutralised(self, cli, tmp_path):
+        """A DUT id starting with '=' is neutralised in the CSV; numbers stay numbers."""
+        p = tmp_path / "evil.csv"
+        p.write_text("dut,load,voltage\n=HYPERLINK(1),open,12.7\n=HYPERLINK(1),10,12.6\n"
+                     "=HYPERLINK(1),4.7,12.5\n")
+        out = tmp_path / "r.csv"
+        assert cli("fit", p, "--out", out).code == 0
+        row = next(csv.DictReader(io.StringIO(out.read_text())))
+        assert row["dut"].startswith("'=")
+        float(row["vth"])
+
+
+class TestOptions:
+    def test_dut_filter(self, cli):
+        """--dut keeps only the named DUTs; an unknown one is an error."""
+        doc = json.loads(cli("fit", FLEET, "--dut", "PK-12,PK-07", "--json").out)
+        assert [r["dut"] for r in doc["results"]] == ["PK-12", "PK-07"]
+        run = cli("fit", FLEET, "--dut", "PK-99")
+        assert run.code == 2 and "PK-99" in run.err
+
+    @pytest.mark.parametrize("args,words", [
+        (["--voltage-accuracy", "fast"], "--voltage-accuracy"),
+        (["--current-accuracy", "0.2%+1"], "--current-accuracy"),
+        (["--load-tolerance", "1"], "per-cent"),
+        (["--confidence", "1.5"], "--confidence"),
+        (["--bench", "nope.toml"], "nope.toml"),
+        (["--current-range", "5"], "--current-range"),
+        (["--frobnicate"], "No such option"),
+    ])
+    def test_bad_options(self, cli, args, words):
+        """A bad option value: exit 2 and one error line naming the option."""
+        run = cli("fit", PACK, *args)
+        assert run.code == 2
+        lines = run.err.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("error:") and words in lines[0]
+
+    def test_bench_profile_errors_name_the_key(self, cli, tmp_path):
+        """Unknown keys in a bench profile name the key."""
+        b = tmp_path / "b.toml"
+        b.write_text('[voltage]\naccuracy = "0.1%+1mV"\nacuracy = "x"\n')
+        run = cli("fit", PACK, "--bench", b)
+        assert run.code == 2 and "voltage.acuracy" in run.err
+
+    def test_cli_overrides_bench(self, cli):
+        """A command-line accuracy wins over the bench profile's."""
+        a = json.loads(cli("fit", PACK, "--bench", BENCH, "--json").out)
+        b = json.loads(cli("fit", PACK, "--bench", BENCH, "--voltage-accuracy", "1%+10mV",
+                           "--json").out)
+        assert b["results"][0]["vth"]["u"] > a["results"][0]["vth"]["u"]
+        assert b["settings"]["voltage_accuracy"]["text"] == "1%+10mV"
+
+
+class TestTerminal:
+    def test_summary(self, cli):
+        """The terminal summary shows SI-prefixed values with units and the cautions."""
+        run = cli("fit", PACK, "--bench", BENCH)
+        assert run.code == 0
+        assert "mΩ" in run.out and " V" in run.out and "caution:" in run.out
+        assert "compute Isc" in run.out.lower() or "Compute Isc" in run.out
+
+    def test_verbose_lists_ignored_columns(self, cli, tmp_path):
+        """--verbose lists columns that were ignored."""
+        p = tmp_path / "x.csv"
+        p.write_text("load,voltage,operator\nopen,5.0,K\n10,4.9,K\n5,4.8,K\n")
+        assert "operator" in cli("fit", p, "--verbose").out
+
+
+def test_python_dash_m():
+    """`python -m sagfit fit` works as a whole process, with exit status 0."""
+    p = subprocess.run([sys.executable, "-m", "sagfit", "fit", str(PACK), "--json"],
+                       capture_output=True, text=True, timeout=120)
+    assert p.returncode == 0, p.stderr
+    assert json.loads(p.stdout)["results"][0]["dut"] == "pack_a"
+
+
+def test_console_script_error_has_no_traceback(tmp_path):
+    """The installed `sagfit` script prints one error line for a missing file, exit 2."""
+    p = subprocess.run(["sagfit", "fit", str(tmp_path / "missing.csv")], capture_output=True,
+                       text=True, timeout=120)
+    assert p.returncode == 2 and p.stderr.startswith("error:") and "Traceback" not in p.stderr
