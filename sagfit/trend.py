@@ -230,6 +230,12 @@ class Trends:
         return f"<Trends {len(self)} DUT(s), {int(self.flagged.sum())} flagged>"
 
     @property
+    def expanded_latest(self) -> np.ndarray:
+        """Expanded uncertainty U = k·u of the latest Rth, k the normal quantile at
+        ``confidence`` (GUM 6.2)."""
+        return float(special.ndtri(0.5 * (1.0 + self.confidence))) * self.u_latest
+
+    @property
     def flagged(self) -> np.ndarray:
         """DUTs with a warning flag (``aging`` or ``outlier-in-group``)."""
         return np.array([any(f.severity == "warning" for f in fl) for fl in self.flags], bool)
@@ -245,37 +251,60 @@ class Trends:
 
     def to_dicts(self) -> list[dict]:
         """Plain JSON-ready dicts, SI units (the ``results`` of ``sagfit trend --json``)."""
+        # columns converted once (lists of Python floats/None, date strings), not per DUT
+        c = {name: _floats(getattr(self, name)) for name in (
+            "baseline_rth", "u_baseline", "latest_rth", "u_latest", "threshold_rth",
+            "change_pct", "u_change_pct", "rate", "u_rate", "rate_low", "rate_high", "chi2",
+            "k", "fitted_latest", "group_median", "excess_pct")}
+        c["U"] = _floats(self.expanded_latest)
+        c["S"] = _floats(np.sqrt(np.where(self.scale > 0, self.scale, np.nan)))
+        dates = {name: _dates(getattr(self, name)) for name in (
+            "baseline_time", "latest_time", "crossing_time", "crossing_low", "crossing_high")}
+        records, ndates, dof = self.records.tolist(), self.dates.tolist(), self.dof.tolist()
+        crossed, size = self.crossed.tolist(), self.group_size.tolist()
         out = []
         for i in range(len(self)):
             out.append({
                 "dut": self.duts[i],
-                "records": int(self.records[i]),
-                "dates": int(self.dates[i]),
-                "baseline_rth": _f(self.baseline_rth[i]),
-                "baseline": {"value": _f(self.baseline_rth[i]), "u": _f(self.u_baseline[i]),
-                             "date": iso_date(self.baseline_time[i])},
-                "latest_rth": {"value": _f(self.latest_rth[i]), "u": _f(self.u_latest[i]),
-                               "date": iso_date(self.latest_time[i])},
-                "threshold_rth": _f(self.threshold_rth[i]),
-                "change_pct": {"value": _f(self.change_pct[i]), "u": _f(self.u_change_pct[i])},
-                "rate_per_30d": {"value": _f(self.rate[i]), "u": _f(self.u_rate[i]),
-                                 "ci": [_f(self.rate_low[i]), _f(self.rate_high[i])],
-                                 "unit": "ohm"},
-                "projected_crossing": iso_date(self.crossing_time[i]),
-                "projected_crossing_ci": [iso_date(self.crossing_low[i]),
-                                          iso_date(self.crossing_high[i])],
-                "threshold_crossed": bool(self.crossed[i]),
-                "trend_fit": {"chi2": _f(self.chi2[i]), "dof": int(self.dof[i]),
-                              "scale_factor": _f(math.sqrt(self.scale[i]))
-                              if self.scale[i] > 0 else None,
-                              "coverage_factor": _f(self.k[i]),
-                              "fitted_latest_rth": _f(self.fitted_latest[i])},
-                "group": {"key": self.group_key[i], "size": int(self.group_size[i]),
-                          "median_rth": _f(self.group_median[i]),
-                          "excess_pct": _f(self.excess_pct[i])},
+                "records": records[i],
+                "dates": ndates[i],
+                "baseline_rth": c["baseline_rth"][i],
+                "baseline": {"value": c["baseline_rth"][i], "u": c["u_baseline"][i],
+                             "date": dates["baseline_time"][i]},
+                "latest_rth": {"value": c["latest_rth"][i], "u": c["u_latest"][i],
+                               "U": c["U"][i], "date": dates["latest_time"][i]},
+                "threshold_rth": c["threshold_rth"][i],
+                "change_pct": {"value": c["change_pct"][i], "u": c["u_change_pct"][i]},
+                "rate_per_30d": {"value": c["rate"][i], "u": c["u_rate"][i],
+                                 "ci": [c["rate_low"][i], c["rate_high"][i]], "unit": "ohm"},
+                "projected_crossing": dates["crossing_time"][i],
+                "projected_crossing_ci": [dates["crossing_low"][i], dates["crossing_high"][i]],
+                "threshold_crossed": crossed[i],
+                "trend_fit": {"chi2": c["chi2"][i], "dof": dof[i], "scale_factor": c["S"][i],
+                              "coverage_factor": c["k"][i],
+                              "fitted_latest_rth": c["fitted_latest"][i]},
+                "group": {"key": self.group_key[i], "size": size[i],
+                          "median_rth": c["group_median"][i], "excess_pct": c["excess_pct"][i]},
                 "flags": [f.to_dict() for f in self.flags[i]],
             })
         return out
+
+
+def _floats(a) -> list:
+    """Array → list of float, ``None`` where not finite (JSON has no NaN)."""
+    a = np.asarray(a, float)
+    return np.where(np.isfinite(a), a, None).tolist()
+
+
+def _dates(t) -> list:
+    """Unix times → ``YYYY-MM-DD`` strings (UTC), ``None`` where not finite (vectorised)."""
+    t = np.asarray(t, float)
+    ok = np.isfinite(t) & (np.abs(t) < 1e13)
+    out = np.full(t.shape, None, dtype=object)
+    if ok.any():
+        out[ok] = np.datetime_as_string(np.floor(t[ok]).astype("int64").astype("datetime64[s]"),
+                                        unit="D")
+    return out.tolist()
 
 
 def _f(x) -> float | None:

@@ -242,10 +242,12 @@ class TestVectorised:
         u = rng.uniform(1e-6, 1e-5, g.size)
         perm = rng.permutation(g.size)
         names = [f"D{i}" for i in range(len(sizes))]
-        tr = analyse_trends(g[perm], names, t[perm], r[perm], u[perm], labels=["S"] * len(sizes))
+        tr = analyse_trends(g[perm], names, t[perm], r[perm], u[perm], labels=["S"] * len(sizes),
+                            as_of=float(t.max()))
         for i in range(len(sizes)):
             m = g == i
-            one = analyse_trends(np.zeros(m.sum(), int), [names[i]], t[m], r[m], u[m])
+            one = analyse_trends(np.zeros(m.sum(), int), [names[i]], t[m], r[m], u[m],
+                                 as_of=float(t.max()))  # the horizon counts from one date
             for f in ("rate", "u_rate", "crossing_time", "change_pct", "latest_rth"):
                 a, b = getattr(tr, f)[i], getattr(one, f)[0]
                 assert (np.isnan(a) and np.isnan(b)) or a == pytest.approx(b, rel=1e-9, abs=1e-9)
