@@ -393,7 +393,8 @@ def plan(
                             "tighter resistors or a measured current would help")
 
     notes = _notes(vth, rth, top, i_cap, u_rth, u_ends, u_meters, n_loaded, measure_current,
-                   load_tolerance)
+                   load_tolerance, _binding(vth, rth, top, i_cap, p_allow, have is None),
+                   current_accuracy)
     cautions = _cautions(vth, isc, cur, volt, pwr, src_pwr, top, battery, max_power,
                          derating, (loads_r == 0).any())
     settings = {
@@ -446,11 +447,31 @@ def _predict(loads_r, cur, volt, n_loaded, va, ia, tol, measure_current):
     return u_vth, u[0], u[1], meters
 
 
-def _notes(vth, rth, top, i_cap, u_rth, u_ends, u_meters, n_loaded, measure_current, tol):
+def _binding(vth, rth, top, i_cap, p_allow, from_series):
+    """What set the heaviest load, in words."""
+    if top >= 0.9 * i_cap:
+        return "the current limit"
+    r_top = vth / top - rth
+    if math.isfinite(p_allow) and top * top * r_top >= 0.8 * p_allow:
+        return f"the resistor rating ({format_value(p_allow, 'W', 3)} after derating)"
+    if from_series and r_top <= 1.6 * rth:
+        return ("the matched-load point: no load below Rth is proposed, since the source "
+                "would then dissipate more than the load")
+    return "the values available"
+
+
+def _notes(vth, rth, top, i_cap, u_rth, u_ends, u_meters, n_loaded, measure_current, tol,
+           binding, current_accuracy):
     notes = [
         f"Currents are spread evenly from open circuit to {format_value(top, 'A', 3)} "
-        f"({top / i_cap:.0%} of the {format_value(i_cap, 'A', 3)} limit). u(Rth) falls "
-        "roughly as 1/(current span), so the heaviest load is as heavy as the limits allow.",
+        f"({top / i_cap:.0%} of the {format_value(i_cap, 'A', 3)} limit; the heaviest load "
+        f"is set by {binding}). u(Rth) falls roughly as 1/(current span), so the heaviest "
+        "load is as heavy as the limits allow.",
+        ("The current is assumed read with the ammeter "
+         f"({current_accuracy.text or 'as specified'}) at every load." if measure_current
+         and current_accuracy is not None else
+         "The current is assumed computed from the load, I = V/R (no ammeter); the "
+         "resistor tolerance then enters the uncertainty of every current."),
         "Interior loads are kept on purpose: readings only at the two ends would give the "
         "smallest u(Rth) for a straight line, but could not show curvature or a "
         "current-limit knee; evenly spread points let the fit's checks see them.",
