@@ -192,3 +192,29 @@ class TestOutputs:
         assert "B&amp;C" in page and page.count("<svg") == 4
         assert not any(p.name.endswith(".part") for p in rep.iterdir())
         assert math.isfinite(json.loads((rep / "accept.json").read_text())["summary"]["yield"])
+
+    @pytest.mark.reference("RFC 4180, Common Format and MIME Type for CSV Files (quoting)")
+    def test_csv_quoting_round_trips(self):
+        """DUT names with commas, quotes or the word nan survive the fast CSV writer, and
+        the file reads back exactly like pandas' own writer's output."""
+        import io
+
+        import numpy as np
+        import pandas as pd
+
+        from sagfit.acceptance import Check, Spec, accept
+        from sagfit.report_accept import acceptance_csv, acceptance_table
+        from test_acceptance import make_fits
+
+        fits = make_fits([5.0, 4.0, np.nan, 5.1], 0.005,
+                         errors=[None, None, "only one reading", None])
+        fits = fits.replace(duts=("a,b", 'say "hi"', "nan", "=1+1"))
+        acc = accept(fits, Spec(checks=(Check("vth", "vth", 4.75, 5.25),)))
+        text = acceptance_csv(acc)
+        ours = pd.read_csv(io.StringIO(text), keep_default_na=False, na_values=[""])
+        ref = pd.read_csv(io.StringIO(acceptance_table(acc).to_csv(index=False,
+                                                                   float_format="%.10g")),
+                          keep_default_na=False, na_values=[""])
+        pd.testing.assert_frame_equal(ours, ref)
+        assert ours["dut"].tolist() == ["a,b", 'say "hi"', "nan", "'=1+1"]
+        assert np.isnan(ours["vth_value"][2]) and ours["vth_upper"][0] == 5.25
