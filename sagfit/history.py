@@ -385,7 +385,11 @@ class History:
         labels = tuple(group_labels) if group_labels is not None else ("",) * len(fits)
         ok = [i for i in range(len(fits)) if fits.error[i] is None]
         c = self._conn
-        c.execute("BEGIN IMMEDIATE")
+        try:
+            c.execute("BEGIN IMMEDIATE")
+        except sqlite3.OperationalError as exc:
+            raise HistoryError(f"{self.path}: cannot write the history ({exc}); another "
+                               "sagfit may be recording into it; try again") from None
         try:
             have = {r[0] for r in c.execute(
                 "SELECT dut FROM results WHERE file_sha256 = ?", (sha256,))}
@@ -418,9 +422,17 @@ class History:
                     (self._row(fits, i, run_id, labels[i], float(t[i]), sha256) for i in todo))
             self._before_commit()
             c.execute("COMMIT")
-        except BaseException:
+        except BaseException as exc:
             if c.in_transaction:
                 c.execute("ROLLBACK")
+            if isinstance(exc, sqlite3.OperationalError):
+                hint = ("another sagfit may be recording into it; try again" if "locked" in
+                        str(exc) else "nothing of this run was recorded")
+                raise HistoryError(f"{self.path}: cannot write the history ({exc}); {hint}") \
+                    from None
+            if isinstance(exc, sqlite3.DatabaseError):
+                raise HistoryError(f"{self.path}: the history database is damaged ({exc}); "
+                                   "restore it from a backup") from None
             raise
         added = tuple(fits.duts[i] for i in todo if fits.duts[i] not in replaced)
         return RecordOutcome(added, tuple(skipped), tuple(replaced), run_id)

@@ -260,3 +260,24 @@ class TestDates:
         rd = self._readings("cell,string,current,voltage\nA,S1,0,2\nB,S2,0,2\nA,S1,1,1.9\n"
                             "B,S2,1,1.9\n")
         assert dict(zip(rd.duts, dut_group_labels(rd))) == {"A": "S1", "B": "S2"}
+
+
+class TestLocking:
+    def test_a_locked_database_is_a_clear_error(self, tmp_path):
+        """While another writer holds the lock, record fails with HistoryError, not a traceback."""
+        p = tmp_path / "h.sqlite"
+        with History(p) as h:
+            _record(h, _fits())
+        other = sqlite3.connect(p, isolation_level=None)
+        other.execute("BEGIN IMMEDIATE")
+        try:
+            conn = sqlite3.connect(p, isolation_level=None, timeout=0.05)
+            with History(conn) as h:
+                with pytest.raises(HistoryError, match="another sagfit"):
+                    _record(h, _fits(), sha="e" * 64)
+            conn.close()
+        finally:
+            other.execute("ROLLBACK")
+            other.close()
+        with History(p) as h:
+            assert h.count() == 2
