@@ -4,6 +4,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from sagfit.errors import InputError
 from sagfit.fit import fit_lines
@@ -87,6 +89,8 @@ class TestModel:
         assert true[0, 1] == true[0, 3]  # the same 10 Ω resistor, read twice
         assert abs(true[0, 1] / 10 - 1) <= 0.05 and abs(true[0, 2] - 1) <= 0.05
 
+    @pytest.mark.reference("JCGM 100:2008 (GUM) 4.3.7: a rectangular distribution of "
+                           "half-width a has standard deviation a/√3")
     def test_resistor_drawn_per_dut_as_an_option(self):
         """With per_dut_loads the resistor errors differ between DUTs and stay in tolerance."""
         run = simulate(12.0, 0.1, [math.inf, 10, 1], duts=2000, load_tolerance=5.0,
@@ -96,6 +100,8 @@ class TestModel:
         # rectangular on ±5 %: standard deviation 5 %/√3
         assert abs(dev.std() / (0.05 / math.sqrt(3)) - 1) < 0.05
 
+    @pytest.mark.reference("JCGM 100:2008 (GUM) 4.3.7: a rectangular distribution of "
+                           "half-width a has standard deviation a/√3")
     @pytest.mark.parametrize("dist", ["rectangular", "normal"])
     def test_meter_errors_have_the_spec_standard_uncertainty(self, dist):
         """Voltmeter errors have standard deviation a/√3 for either distribution."""
@@ -114,6 +120,26 @@ class TestModel:
         assert abs(run.vth.std() / 12.0 - 0.01) < 0.0005
         assert abs(run.rth.mean() / 0.05 - 1) < 0.01
         assert np.all(run.rth > 0)
+
+
+class TestShapes:
+    @settings(max_examples=60, deadline=None)
+    @given(duts=st.integers(1, 50),
+           loads=st.lists(st.one_of(st.just(math.inf), st.floats(1e-3, 1e6)), min_size=1,
+                          max_size=12),
+           knee=st.one_of(st.none(), st.floats(1e-3, 100.0)),
+           curvature=st.floats(0.0, 1.0), seed=st.integers(0, 2 ** 32 - 1))
+    def test_any_shape(self, duts, loads, knee, curvature, seed):
+        """Any number of DUTs and loads gives duts × loads finite readings, DUT-major, with
+        the current never above the knee."""
+        run = simulate(12.0, 0.1, loads, duts=duts, seed=seed, voltage_accuracy=VA,
+                       load_tolerance=1.0, knee_current=knee, curvature=curvature,
+                       vth_spread=0.01, rth_spread=0.1)
+        assert len(run) == duts * len(loads) and len(run.duts) == duts
+        assert np.all(np.diff(run.group) >= 0) and run.vth.shape == (duts,)
+        assert np.all(np.isfinite(run.voltage_V)) and np.all(run.true_current_A >= 0)
+        if knee is not None:
+            assert np.all(run.true_current_A <= knee)
 
 
 class TestRoundTrip:
