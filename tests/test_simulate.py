@@ -270,6 +270,20 @@ class TestSimulateCommand:
         back = read_readings(out)
         assert back.n_duts == 3 and back.current.max() <= 5.0 * 1.003 + 0.001
 
+    def test_truth_file(self, tmp_path, capsys):
+        """--truth writes each DUT's true Vth and Rth, labelled as invented; it may not be
+        the readings file itself."""
+        out, truth = tmp_path / "x.csv", tmp_path / "truth.csv"
+        code, _, _ = _cli(self.ARGS + ["--rth-spread", "10%", "--out", str(out), "--truth",
+                                       str(truth)], capsys)
+        lines = truth.read_text(encoding="utf-8").splitlines()
+        assert code == 0 and lines[0].startswith("# INVENTED DATA (sagfit simulate")
+        body = [ln for ln in lines if not ln.startswith("#")]
+        assert body[0] == "dut,vth_V,rth_ohm" and len(body) == 21
+        assert body[1].startswith("SIM-001,")
+        code, _, err = _cli(self.ARGS + ["--out", str(out), "--truth", str(out)], capsys)
+        assert code == 2 and "--truth" in err
+
     def test_refuses_to_overwrite_real_readings(self, tmp_path, capsys):
         """An existing file that is not a simulation is never overwritten."""
         real = tmp_path / "bench.csv"

@@ -173,6 +173,8 @@ def simulate_command(
                                 "resistor.")] = False,
     errors: Annotated[str, typer.Option(
         "--errors", help="Meter error distribution: rectangular or normal.")] = "rectangular",
+    truth: Annotated[Optional[str], typer.Option(
+        "--truth", help="Also write the true Vth and Rth of each DUT to this CSV.")] = None,
 ) -> None:
     """Write invented bench readings (labelled as such) for demos, tests and benchmarks."""
     with guarded(out):
@@ -200,6 +202,9 @@ def simulate_command(
             raise OptionError("--interval", "must not be negative")
         check_output_path(out)
         _refuse_real_file(out)
+        if truth is not None:
+            check_output_path(truth, [out], option="--truth")
+            _refuse_real_file(truth, option="--truth")
         with progress(f"simulating {duts} DUT(s)", interactive() and duts >= 1000) as say:
             try:
                 run = simulate(
@@ -226,6 +231,8 @@ def simulate_command(
                 out=out), run)
             say(f"writing {out}")
             atomic_write(out, run_csv_text(run, comments))
+            if truth is not None:
+                atomic_write(truth, _truth_csv(run, comments), inputs=[out], option="--truth")
     limited = int(run.limited.sum())
     write_stdout(f"wrote {len(run)} invented readings of {len(run.duts)} DUT(s) to {out} "
                  f"(seed {seed})" + (f"; {limited} reading(s) in current limit" if limited
@@ -241,7 +248,7 @@ def _reproducing_argv(**opts) -> list[str]:
     """The command line that reproduces a simulated file, options in a fixed order."""
     parts = ["sagfit", "simulate"]
     for key, value in opts.items():
-        if key == "out" or value is None or value is False:
+        if key in ("out", "truth") or value is None or value is False:
             continue
         flag = "--" + key.replace("_", "-")
         if value is True:
@@ -264,7 +271,15 @@ def _simulate_comments(argv: list[str], run) -> list[str]:
     ]
 
 
-def _refuse_real_file(out: str) -> None:
+def _truth_csv(run, comments) -> str:
+    """The true parameters of each simulated DUT, labelled like the readings."""
+    lines = ["# " + c for c in comments] + ["dut,vth_V,rth_ohm"]
+    lines += [f"{d},{v:.12g},{r:.12g}" for d, v, r in zip(run.duts, run.vth.tolist(),
+                                                            run.rth.tolist())]
+    return "\n".join(lines) + "\n"
+
+
+def _refuse_real_file(out: str, option: str = "--out") -> None:
     """Never overwrite a file that is not itself a simulation (it may be real readings)."""
     import os
 
@@ -276,9 +291,9 @@ def _refuse_real_file(out: str) -> None:
         with open(out, "rb") as fh:
             head = fh.read(len(INVENTED_TAG) + 3)
     except OSError as exc:
-        raise OptionError("--out", f"{out}: {exc.strerror or exc}") from None
+        raise OptionError(option, f"{out}: {exc.strerror or exc}") from None
     if not head.lstrip(b"\xef\xbb\xbf").startswith(INVENTED_TAG.encode()):
-        raise OptionError("--out", f"{out} exists and is not a file written by 'sagfit "
+        raise OptionError(option, f"{out} exists and is not a file written by 'sagfit "
                                    "simulate'; refusing to overwrite what may be real "
                                    "readings (choose another name or delete it first)")
 
