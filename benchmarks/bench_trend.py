@@ -33,7 +33,8 @@ def make(duts: int, per: int = 8, seed: int = 20261201):
     t = 1.775e9 + np.tile(np.arange(per) * 28.0, duts) * DAY
     fast = rng.random(duts) < 0.01
     rate = np.where(fast, 0.06, 0.004)[g]
-    r = 0.55e-3 * (1 + rate * np.tile(np.arange(per), duts)) * (1 + 0.02 * rng.standard_normal(g.size))
+    k = np.tile(np.arange(per), duts)
+    r = 0.55e-3 * (1 + rate * k) * (1 + 0.02 * rng.standard_normal(g.size))
     u = np.full(g.size, 2e-6)
     return g, t, r, u
 

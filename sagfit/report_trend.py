@@ -80,8 +80,9 @@ def _dut_figure(trends, recs, i, rows, k_show):
                 if math.isfinite(lo) and math.isfinite(hi):
                     ax.axvspan(*_dates([lo, min(hi, tl + 3 * 365 * DAY)]), color=COLORS["flag"],
                                alpha=0.12, lw=0, label="crossing interval")
+                when = iso_date(trends.crossing_time[i])
                 ax.plot(_dates([trends.crossing_time[i]]), [trends.threshold_rth[i]], "D",
-                        color=COLORS["flag"], ms=5, label=f"crossing {iso_date(trends.crossing_time[i])}")
+                        color=COLORS["flag"], ms=5, label=f"crossing {when}")
         ax.set_xlabel("Test date")
         si_axis(ax, "y", "Ω", "Internal resistance")
         fig.autofmt_xdate()
@@ -106,7 +107,8 @@ def _fleet_figure(trends, members, key, excess_pct):
         if flagged.any():
             ax.errorbar(x[flagged], y[flagged], yerr=U[flagged], fmt="o", color=COLORS["flag"],
                         ecolor=COLORS["flag"], elinewidth=0.8, label="flagged")
-        ax.axhline(med, color=COLORS["model"], lw=1.0, label=f"group median {format_value(med, 'Ω')}")
+        ax.axhline(med, color=COLORS["model"], lw=1.0,
+                   label=f"group median {format_value(med, 'Ω')}")
         ax.axhline(med * (1 + excess_pct / 100.0), color=COLORS["flag"], lw=1.0, ls="--",
                    label=f"median + {excess_pct:g} %")
         ax.set_xticks(x, [trends.duts[j] for j in members], rotation=90 if members.size > 12 else 0)

@@ -500,7 +500,7 @@ def analyse_trends(
     aging = crossed | soon
 
     # ---- fleet view
-    keys = tuple(lab if lab else f"tested {iso_date(tl)}" for lab, tl in zip(labels, t_latest))
+    keys = tuple(lab if lab else f"tested {day}" for lab, day in zip(labels, _dates(t_latest)))
     uniq, codes = np.unique(np.asarray(keys, dtype=object).astype(str), return_inverse=True)
     fin = present & np.isfinite(latest)
     med, size = nan.copy(), np.zeros(m, np.int64)

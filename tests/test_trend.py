@@ -42,7 +42,7 @@ class TestClosedFormCrossing:
             assert tr.threshold_rth[0] == pytest.approx(level)
 
     def test_fieller_interval_matches_a_brute_force_search(self):
-        """Fieller's interval equals the set of dates where |fit − T| ≤ k·sd(fit), found by grid search."""
+        """Fieller's interval is the set of dates with |fit − T| ≤ k·sd(fit), found by a grid."""
         rng = np.random.default_rng(5)
         days = np.arange(0, 250, 25.0)
         u = np.full(days.size, 4e-6)
@@ -79,7 +79,7 @@ class TestWeightedFitReference:
     @pytest.mark.reference("statsmodels WLS (J. Seabold, J. Perktold, 'statsmodels', Proc. 9th "
                            "Python in Science Conf., 2010), an independent implementation")
     def test_rate_and_its_uncertainty_match_statsmodels_wls_with_scatter(self):
-        """With scatter beyond the stated u, slope and u(slope) equal statsmodels WLS (scale χ²/ν)."""
+        """With scatter beyond u, slope and u(slope) equal statsmodels WLS (scale χ²/ν)."""
         sm = pytest.importorskip("statsmodels.api")
         rng = np.random.default_rng(11)
         days = np.sort(rng.uniform(0, 400, 9))
@@ -123,14 +123,14 @@ class TestWeightedFitReference:
 
 class TestChangeFromBaseline:
     def test_change_and_its_uncertainty_follow_the_gum_propagation(self):
-        """c = 100(R_L/R_B − 1) with u² = 100²[(u_L/R_B)² + (R_L u_B/R_B²)²] (JCGM 100:2008 5.1.2)."""
+        """c = 100(R_L/R_B − 1), u² = 100²[(u_L/R_B)² + (R_L u_B/R_B²)²] (JCGM 100:2008 5.1.2)."""
         tr = _one([0, 30, 60], [1.0e-3, 1.1e-3, 1.2e-3], np.array([1e-5, 1e-5, 2e-5]))
         assert tr.change_pct[0] == pytest.approx(20.0)
         assert tr.u_change_pct[0] == pytest.approx(
             100 * math.hypot(2e-5 / 1e-3, 1.2e-3 * 1e-5 / 1e-6), rel=1e-12)
 
     def test_change_uncertainty_agrees_with_monte_carlo(self):
-        """The propagated u(change) agrees with a seeded Monte Carlo of the ratio (GUM Suppl. 1 idea)."""
+        """The propagated u(change) agrees with a seeded Monte Carlo (JCGM 101:2008 idea)."""
         rng = np.random.default_rng(1)
         rb, rl = rng.normal(1e-3, 1e-5, 200_000), rng.normal(1.3e-3, 2e-5, 200_000)
         mc = np.std(100 * (rl / rb - 1))
