@@ -158,7 +158,8 @@ def simulate_command(
     knee: Annotated[Optional[str], typer.Option(
         "--knee", help="Current limit of the source, e.g. 5A.")] = None,
     curvature: Annotated[Optional[str], typer.Option(
-        "--curvature", help="Quadratic sag c in V = Vth − Rth·I − c·I², e.g. 2mV/A2.")] = None,
+        "--curvature",
+        help="Quadratic sag c in V = Vth − Rth·I − c·I², e.g. 2mV/A2.")] = None,
     drift: Annotated[Optional[str], typer.Option(
         "--drift", help="Drift of Vth during each DUT's test, e.g. 5mV/h.")] = None,
     vth_spread: Annotated[Optional[str], typer.Option(
