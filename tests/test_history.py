@@ -171,10 +171,15 @@ CHILD = textwrap.dedent("""
             print("in-transaction", flush=True)
             time.sleep(60)
 
-    i = np.tile([0.0, 25.0, 50.0], 3)
-    rd = Readings.from_arrays(voltage=2.1 - 1e-3 * i, current=i, dut=np.repeat(["X", "Y", "Z"], 3),
-                              u_voltage=np.full(9, 1e-4))
+    m = 3000
+    i = np.tile([0.0, 25.0, 50.0], m)
+    rd = Readings.from_arrays(voltage=2.1 - 1e-3 * i, current=i,
+                              dut=np.repeat([f"X{k}" for k in range(m)], 3),
+                              u_voltage=np.full(3 * m, 1e-4))
     h = Slow(sys.argv[1])
+    # a tiny page cache makes SQLite spill uncommitted pages into the write-ahead log,
+    # so the kill leaves real uncommitted frames for recovery to discard
+    h._conn.execute("PRAGMA cache_size = 10")
     h.record(fit_lines(rd), test_time=1.78e9, file_name="new.csv", sha256="c" * 64)
 """)
 
@@ -186,12 +191,15 @@ class TestInterruptedWrite:
         with History(p) as h:
             _record(h, _fits())
             before = h.records()
+        wal_before = (tmp_path / "h.sqlite-wal").stat().st_size \
+            if (tmp_path / "h.sqlite-wal").exists() else 0
         proc = subprocess.Popen([sys.executable, "-c", CHILD, str(p)], stdout=subprocess.PIPE,
                                 stderr=subprocess.PIPE, text=True)
         try:
             line = proc.stdout.readline()
             assert line.strip() == "in-transaction", proc.stderr.read()
-            # the uncommitted rows are in the write-ahead log at this point
+            wal = tmp_path / "h.sqlite-wal"
+            assert wal.exists() and wal.stat().st_size > wal_before  # uncommitted frames
             proc.send_signal(signal.SIGKILL)
             proc.wait(timeout=20)
         finally:
