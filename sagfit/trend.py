@@ -39,6 +39,7 @@ no record on the baseline date).
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import math
 from dataclasses import dataclass, field
@@ -248,6 +249,16 @@ class Trends:
             return self.duts.index(str(dut))
         except ValueError:
             raise KeyError(dut) from None
+
+    def take(self, names: Sequence[str]) -> "Trends":
+        """A new ``Trends`` with only the named DUTs, in that order (each keeps the fleet
+        comparison made with its whole group)."""
+        idx = np.array([self.index(d) for d in names], dtype=np.int64)
+        changes = {f: getattr(self, f)[idx] for f in _FIELDS}
+        return dataclasses.replace(
+            self, duts=tuple(self.duts[i] for i in idx),
+            group_key=tuple(self.group_key[i] for i in idx),
+            flags=tuple(self.flags[i] for i in idx), **changes)
 
     def to_dicts(self) -> list[dict]:
         """Plain JSON-ready dicts, SI units (the ``results`` of ``sagfit trend --json``)."""

@@ -62,9 +62,18 @@ class TestFleet:
         assert doc["settings"]["group_excess_pct"] == 30.0
 
     def test_a_stable_cell_alone_exits_zero(self, cli, fleet_db):
-        """Nothing flagged → exit 0 (one stable cell; a group of one is not compared)."""
+        """Nothing flagged → exit 0 (one stable cell of the string)."""
         run, doc = _trend(cli, fleet_db, "--dut", "C01")
         assert run.code == 0 and [r["dut"] for r in doc["results"]] == ["C01"]
+
+    def test_one_dut_is_still_compared_with_its_whole_group(self, cli, fleet_db, tmp_path):
+        """--dut C05 narrows the output, not the fleet: C05 stays an outlier of ST-A."""
+        run, doc = _trend(cli, fleet_db, "--dut", "C05", "--report", tmp_path / "r")
+        assert run.code == 1 and [r["dut"] for r in doc["results"]] == ["C05"]
+        codes = {f["code"] for f in doc["results"][0]["flags"]}
+        assert codes == {"aging", "outlier-in-group"}
+        assert doc["results"][0]["group"]["size"] == 16
+        assert (tmp_path / "r" / "trend_C05.png").exists()
 
     def test_settings_change_the_verdict(self, cli, fleet_db):
         """A looser threshold and a short horizon leave C12 unflagged for aging."""

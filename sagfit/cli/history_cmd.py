@@ -236,20 +236,24 @@ def trend_command(
                 t_as_of = parse_date(as_of)
             except ValueError as exc:
                 raise OptionError("--as-of", str(exc)) from None
-        names = [d.strip() for d in dut.split(",") if d.strip()] if dut else None
+        names = list(dict.fromkeys(d.strip() for d in dut.split(",") if d.strip())) \
+            if dut else None
         with History(db, create=False) as hist:
-            recs = hist.records(names)
-            if names:
-                missing = [d for d in names if d not in recs.duts]
-                if missing and hist.count():
-                    raise OptionError("--dut", f"no records of {missing[0]!r} in {db}")
-            if len(recs) == 0:
-                raise HistoryError(f"{db}: no records yet; add tests with 'sagfit record FILE "
-                                   f"--db {db}'")
+            recs = hist.records()  # all DUTs: --dut narrows the output, not the fleet view
+        if len(recs) == 0:
+            raise HistoryError(f"{db}: no records yet; add tests with 'sagfit record FILE "
+                               f"--db {db}'")
+        if names:
+            missing = [d for d in names if d not in set(recs.duts)]
+            if missing:
+                raise OptionError("--dut", f"no records of {missing[0]!r} in {db}")
         trends = analyse_trends(
             recs.dut_index, recs.duts, recs.time, recs.rth, recs.u_rth,
             labels=recs.labels_per_dut(), baseline=base, threshold=thr, horizon_days=hz,
             group_excess_pct=excess, confidence=conf, as_of=t_as_of)
+        if names:
+            trends = trends.take(names)
+            recs = _records_of(recs, names)
         doc = trend_document(trends, db, __version__, len(recs))
         if report:
             from ..report_trend import write_trend_report
@@ -260,6 +264,29 @@ def trend_command(
         else:
             print_trends(trends, doc)
     raise typer.Exit(1 if trends.flagged.any() else 0)
+
+
+def _records_of(recs, names):
+    """The records of the named DUTs, renumbered in that order (for the report figures)."""
+    import dataclasses
+
+    import numpy as np
+
+    pos = {d: k for k, d in enumerate(recs.duts)}
+    old = np.array([pos[d] for d in names], np.int64)
+    remap = np.full(len(recs.duts), -1, np.int64)
+    remap[old] = np.arange(old.size)
+    new = remap[recs.dut_index]
+    rows = np.flatnonzero(new >= 0)
+    rows = rows[np.lexsort((recs.time[rows], new[rows]))]
+    pick = rows.tolist()
+    return dataclasses.replace(
+        recs, duts=tuple(names), dut_index=new[rows], time=recs.time[rows],
+        rth=recs.rth[rows], u_rth=recs.u_rth[rows], vth=recs.vth[rows], u_vth=recs.u_vth[rows],
+        cov_vth_rth=recs.cov_vth_rth[rows], chi2=recs.chi2[rows], dof=recs.dof[rows],
+        group_label=tuple(recs.group_label[k] for k in pick),
+        file_name=tuple(recs.file_name[k] for k in pick),
+        file_sha256=tuple(recs.file_sha256[k] for k in pick))
 
 
 def trend_document(trends, db: str, version: str, n_records: int) -> dict:
