@@ -53,6 +53,7 @@ import numpy as np
 from scipy import special
 
 from .errors import InputError
+from .readings import Readings
 from .results import Fits
 
 __all__ = ["RULES", "DECISIONS", "PASS", "INCONCLUSIVE", "FAIL", "ERROR", "Condition",
@@ -423,10 +424,13 @@ class CheckResult:
     reject_upper: np.ndarray
     decision: np.ndarray
     statement: np.ndarray
+    extrapolated: np.ndarray | None = None
 
     def __post_init__(self):
         for name in ("value", "u", "U", "p_c", "accept_lower", "accept_upper", "reject_lower",
-                     "reject_upper", "decision", "statement"):
+                     "reject_upper", "decision", "statement", "extrapolated"):
+            if getattr(self, name) is None:
+                continue
             a = np.array(getattr(self, name))
             a.setflags(write=False)
             object.__setattr__(self, name, a)
@@ -496,10 +500,13 @@ class Acceptance:
             ranked.append({"quantity": cr.name, "fail": int(c[FAIL]),
                            "inconclusive": int(c[INCONCLUSIVE])})
         ranked.sort(key=lambda r: (-r["fail"], -r["inconclusive"]))
+        extrapolated = {cr.name: int(cr.extrapolated[self.decision != ERROR].sum())
+                        for cr in self.checks if cr.extrapolated is not None}
         return {**counts, "total": n,
                 "yield": counts["pass"] / n if n else None,
                 "capped_by_flags": int(self.capped.sum()),
-                "failed_most": [r for r in ranked if r["fail"] or r["inconclusive"]]}
+                "failed_most": [r for r in ranked if r["fail"] or r["inconclusive"]],
+                "extrapolated": {k: v for k, v in extrapolated.items() if v}}
 
     @property
     def exit_code(self) -> int:
@@ -522,14 +529,15 @@ class Acceptance:
             c = cr.check
             cols.append((c, cr.value.tolist(), cr.u.tolist(), cr.U.tolist(), cr.p_c.tolist(),
                          cr.accept_lower.tolist(), cr.accept_upper.tolist(),
-                         cr.decision.tolist(), cr.statement.tolist()))
+                         cr.decision.tolist(), cr.statement.tolist(),
+                         None if cr.extrapolated is None else cr.extrapolated.tolist()))
         k = self.k.tolist()
         out = []
         for i in idx:
             err = self.error[i]
             checks = []
             if err is None:
-                for (c, v, u, U, p, al, au, d, st) in cols:
+                for (c, v, u, U, p, al, au, d, st, ex) in cols:
                     item = {"quantity": c.name, "value": _f(v[i]), "U": _f(U[i]),
                             "lower": _f(c.lower), "upper": _f(c.upper),
                             "decision": DECISIONS[d[i]],
@@ -541,6 +549,8 @@ class Acceptance:
                         item["at"] = c.at.label
                     if c.light is not None:
                         item["light"], item["heavy"] = c.light.label, c.heavy.label
+                    if ex is not None:
+                        item["extrapolated"] = bool(ex[i])
                     checks.append(item)
             d = {"dut": self.duts[i], "decision": DECISIONS[self.decision[i]],
                  "checks": checks, "flags": list(self.warning_codes.get(i, ())),
@@ -567,7 +577,45 @@ def _warnings(fits: Fits, ignore: tuple[str, ...]):
     return flagged, codes
 
 
-def accept(fits: Fits, spec: Spec, *, rule: str | None = None) -> Acceptance:
+def _current_range(readings: Readings, m: int):
+    """Lowest and highest measured load current of each DUT (A; NaN without readings)."""
+    n = np.bincount(readings.group, minlength=m)
+    lo = np.full(m, np.nan)
+    hi = np.full(m, np.nan)
+    has = n > 0
+    if has.any():
+        starts = np.concatenate(([0], np.cumsum(n)[:-1]))[has]
+        lo[has] = np.minimum.reduceat(readings.current, starts)
+        hi[has] = np.maximum.reduceat(readings.current, starts)
+    return lo, hi
+
+
+def _operating_current(fits: Fits, cond: Condition):
+    if cond.kind == "current":
+        return np.full(len(fits), cond.value)
+    if math.isinf(cond.value):
+        return np.zeros(len(fits))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return fits.vth / (fits.rth + cond.value)
+
+
+def _extrapolated(fits: Fits, check: Check, lo, hi):
+    """True where an operating point of ``check`` lies outside the measured currents
+    (beyond 5 % of their span): the straight line is then extrapolated."""
+    conds = [c for c in (check.at, check.light, check.heavy) if c is not None]
+    if not conds:
+        return None
+    margin = 0.05 * (hi - lo)
+    out = np.zeros(len(fits), dtype=bool)
+    with np.errstate(invalid="ignore"):
+        for c in conds:
+            i = _operating_current(fits, c)
+            out |= (i > hi + margin) | (i < lo - margin)
+    return out
+
+
+def accept(fits: Fits, spec: Spec, *, rule: str | None = None,
+           readings: Readings | None = None) -> Acceptance:
     """Decide every DUT of ``fits`` against ``spec``.
 
     Parameters
@@ -578,6 +626,10 @@ def accept(fits: Fits, spec: Spec, *, rule: str | None = None) -> Acceptance:
         Checks and decision rule (see :func:`sagfit.io_spec.read_spec`).
     rule : str, optional
         Override the spec's rule (``simple``, ``guarded`` or ``risk``).
+    readings : Readings, optional
+        The readings that were fitted; with them, terminal-voltage and regulation checks
+        say whether their operating points lie outside the measured currents
+        (``extrapolated``; reported, not used in the decision).
 
     Returns
     -------
@@ -590,11 +642,15 @@ def accept(fits: Fits, spec: Spec, *, rule: str | None = None) -> Acceptance:
          else np.asarray(fits.k, dtype=float))
     unit = np.zeros(m, dtype=np.int8)
     results = []
+    lo = hi = None
+    if readings is not None and readings.n_duts == m:
+        lo, hi = _current_range(readings, m)
     for c in spec.checks:
         value, u = check_values(fits, c)
         U = k * u
         r = decide(value, u, U, c.lower, c.upper, decision)
-        results.append(CheckResult(check=c, value=value, u=u, U=U, **r))
+        ex = None if lo is None else _extrapolated(fits, c, lo, hi)
+        results.append(CheckResult(check=c, value=value, u=u, U=U, extrapolated=ex, **r))
         unit = np.maximum(unit, r["decision"])
     flagged, codes = _warnings(fits, decision.ignore_flags)
     flagged &= ~failed_fit

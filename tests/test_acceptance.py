@@ -340,6 +340,35 @@ class TestUnitDecision:
             assert acc.checks[0].decision[i] == d["decision"][0]
 
 
+class TestExtrapolation:
+    def test_operating_point_outside_measured_currents(self):
+        """A terminal-voltage check at a current (or load) beyond the swept currents is
+        marked as extrapolated; one inside the sweep is not; decisions are unchanged."""
+        from sagfit.analysis import fit
+        from sagfit.readings import Readings
+        from sagfit.units import Accuracy
+
+        i = np.tile([0.0, 0.25, 0.5, 0.75, 1.0], 2)
+        v = np.repeat([5.0, 5.01], 5) - 0.05 * i
+        r = Readings.from_arrays(voltage=v, current=i, dut=np.repeat(["A", "B"], 5),
+                                 voltage_accuracy=Accuracy(0.01, 0.0005))
+        fits = fit(r)
+        spec = Spec(checks=(
+            Check("in", "voltage", lower=4.0, at=Condition("current", 0.8)),
+            Check("out", "voltage", lower=4.0, at=Condition("current", 3.0)),
+            Check("load", "voltage", lower=4.0, at=Condition("load", 1.0)),  # ≈ 4.8 A
+            Check("reg", "regulation", upper=5.0, light=Condition("load", math.inf),
+                  heavy=Condition("current", 1.0)),
+            Check("vth", "vth", lower=4.0)))
+        acc = accept(fits, spec, readings=r)
+        ex = {cr.name: cr.extrapolated for cr in acc.checks}
+        assert ex["in"].tolist() == [False, False] and ex["out"].tolist() == [True, True]
+        assert ex["load"].all() and not ex["reg"].any() and ex["vth"] is None
+        assert acc.summary()["extrapolated"] == {"out": 2, "load": 2}
+        assert acc.to_dicts([0])[0]["checks"][1]["extrapolated"] is True
+        np.testing.assert_array_equal(acc.decision, accept(fits, spec).decision)
+
+
 class TestModelValidation:
     def test_bad_checks_and_rules_are_refused(self):
         """Limits in the wrong order, no limit, bad rules and bad probabilities are errors."""

@@ -68,7 +68,7 @@ def accept_command(
             step(f"fitting {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"])
             step(f"deciding {readings.n_duts} DUT(s)")
-            acc = accept(fits, the_spec, rule=rule)
+            acc = accept(fits, the_spec, rule=rule, readings=readings)
         need_doc = json_out or report or (out and out.lower().endswith(".json"))
         doc = accept_document(acc, fits, readings, settings) if need_doc else None
         if out:
@@ -193,6 +193,10 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
     if s["capped_by_flags"]:
         console.print(f"{s['capped_by_flags']} DUT(s) inside the limits but flagged "
                       "(non-linear or doubtful fit) are inconclusive; see --json for the flags.",
+                      markup=False)
+    for name, count in s.get("extrapolated", {}).items():
+        console.print(f"note: {name}: the operating point lies outside the measured "
+                      f"currents for {count} DUT(s); the line is extrapolated there.",
                       markup=False)
     errors = [i for i in np.flatnonzero(acc.decision == ERROR)]
     for i in errors[:MAX_TABLE_ROWS]:
