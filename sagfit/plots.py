@@ -377,14 +377,18 @@ def _level(fits) -> str:
 
 
 # ------------------------------------------------------------------------ the figures
-def fit_figure(readings, fits, i: int):
+def fit_figure(readings, fits, i: int, *, used=None):
     """Terminal voltage against current for DUT ``i``: readings with k·u error bars on
     both axes, the fitted line, its confidence band and the prediction band of one new
     reading, open- and short-circuit points, flagged readings and the knee.
 
-    Returns a matplotlib Figure (not saved).
+    ``used`` (boolean mask over all rows of ``readings``) marks the rows the fit used;
+    the others are drawn hollow as "left out of the fit". Returns a matplotlib Figure
+    (not saved).
     """
     rows = _rows(readings, i)
+    left_out = (np.zeros(rows.stop - rows.start, bool) if used is None
+                else ~np.asarray(used, bool)[rows])
     cur = np.asarray(readings.current[rows], float)
     vol = np.asarray(readings.voltage[rows], float)
     ln = np.asarray(readings.line[rows])
@@ -415,9 +419,10 @@ def fit_figure(readings, fits, i: int):
             ax.plot(grid, c["line"], color=COLORS["model"], lw=1.5, label=legend, zorder=3)
         hot = flagged_lines(fits.flags[i])
         is_flag = np.isin(ln, list(hot)) & (ln > 0) if hot else np.zeros(cur.size, bool)
-        is_open = np.isinf(load) | ((cur == 0) & ~is_flag)
-        is_short = (load == 0) & ~is_flag
-        plain = ~(is_flag | is_open | is_short)
+        is_flag &= ~left_out
+        is_open = (np.isinf(load) | ((cur == 0) & ~is_flag)) & ~left_out
+        is_short = (load == 0) & ~is_flag & ~left_out
+        plain = ~(is_flag | is_open | is_short | left_out)
         xe, ye = k * np.asarray(readings.u_current[rows]), k * np.asarray(readings.u_voltage[rows])
         for mask, style in (
                 (plain, dict(fmt="o", color=COLORS["point"], ms=4.5,
@@ -426,7 +431,9 @@ def fit_figure(readings, fits, i: int):
                 (is_short, dict(fmt="s", color=COLORS["short"], ms=5,
                                 label="short-circuit reading")),
                 (is_flag, dict(fmt="o", color=COLORS["flag"], ms=6.5, mfc="white", mew=1.6,
-                               label="flagged reading"))):
+                               label="flagged reading")),
+                (left_out, dict(fmt="o", color=COLORS["muted"], ms=4.5, mfc="white", mew=1.0,
+                                label="left out of the fit"))):
             if mask.any():
                 ax.errorbar(cur[mask], vol[mask], xerr=xe[mask], yerr=ye[mask], elinewidth=0.9,
                             zorder=4, **style)
@@ -452,7 +459,7 @@ def fit_figure(readings, fits, i: int):
         ax.set_xlim(grid[0], grid[-1])
         si_axis(ax, "x", "A", "Load current")
         si_axis(ax, "y", "V", "Terminal voltage")
-        ax.legend(loc="best", fontsize=7.5, handlelength=1.6)
+        ax.legend(loc="upper right", fontsize=7.5, handlelength=1.6)
     return fig
 
 
@@ -474,11 +481,14 @@ def _residuals(readings, fits, i: int):
     return rows, cur, z
 
 
-def residual_figure(readings, fits, i: int):
+def residual_figure(readings, fits, i: int, *, used=None):
     """Normalised residuals e/u(e) of DUT ``i`` against current, and against time when
     the readings have times, with the ±2 lines. u(e) is the stated uncertainty of each
-    reading's deviation from the line (the scatter s for an OLS fit)."""
+    reading's deviation from the line (the scatter s for an OLS fit); rows outside
+    ``used`` are drawn hollow grey."""
     rows, cur, z = _residuals(readings, fits, i)
+    left_out = (np.zeros(cur.size, bool) if used is None
+                else ~np.asarray(used, bool)[rows])
     t = np.asarray(readings.time[rows], float)
     has_t = bool(np.isfinite(t).any())
     ln = np.asarray(readings.line[rows])
@@ -496,7 +506,11 @@ def residual_figure(readings, fits, i: int):
             for yy in (-2.0, 2.0):
                 ax.axhline(yy, color=COLORS["flag"], lw=0.8, ls=(0, (4, 3)))
             ax.axhline(0.0, color=COLORS["muted"], lw=0.7)
-            ax.plot(x[~is_flag], z[~is_flag], "o", color=COLORS["point"], ms=4.5)
+            plain = ~is_flag & ~left_out
+            ax.plot(x[plain], z[plain], "o", color=COLORS["point"], ms=4.5)
+            if left_out.any():
+                ax.plot(x[left_out], z[left_out], "o", color=COLORS["muted"], mfc="white",
+                        ms=4.5)
             if is_flag.any():
                 ax.plot(x[is_flag], z[is_flag], "o", color=COLORS["flag"], mfc="white",
                         mew=1.6, ms=6.5)
@@ -547,7 +561,7 @@ def power_figure(readings, fits, i: int):
         ax.set_xlim(lo, hi)
         si_axis(ax, "x", "Ω", "Load resistance")
         si_axis(ax, "y", "W", "Delivered power")
-        ax.legend(loc="best", fontsize=7.5)
+        ax.legend(loc="upper right", fontsize=7.5)
     return fig
 
 

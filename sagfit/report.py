@@ -464,12 +464,23 @@ def _diagnostics_rows(diag: Mapping) -> str:
             + "".join(rows) + "</table>")
 
 
+def used_rows(readings, fits) -> np.ndarray | None:
+    """Rows the fit used, where the settings say (``current_range``); None when all were
+    used or it cannot be told (the budget then checks the line itself)."""
+    rng = (getattr(fits, "settings", None) or {}).get("current_range")
+    if not rng:
+        return None
+    lo, hi = (float(v) for v in rng)
+    cur = np.asarray(readings.current)
+    return (cur >= lo) & (cur <= hi)
+
+
 def _figure(svg: str, caption: str, png: str | None) -> str:
     link = f' <a href="{_e(png)}">PNG</a>' if png else ""
     return f"<figure>{svg}<figcaption>{_e(caption)}{link}</figcaption></figure>"
 
 
-def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink) -> str:
+def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) -> str:
     from . import plots
 
     fi = fits[i]
@@ -510,13 +521,14 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink) -> str:
     for kind, fn, caption in figs:
         if kind != "fit" and fi.error:
             continue
-        fig = fn(readings, fits, i)
+        fig = fn(readings, fits, i) if kind == "power" else fn(readings, fits, i, used=used)
         if fig is None:
             parts.append(f'<p class="muted">No {kind} figure: Rth is not positive, so there is '
                          "no maximum-power point.</p>")
             continue
         name = f"{stem}-{kind}.png"
         png_sink((name, plots.png_bytes(fig)))
+        fig.set_layout_engine("none")  # laid out once for the PNG; the SVG reuses it
         parts.append(_figure(plots.figure_svg(fig, title=f"{fi.dut}: {kind}"), caption, name))
     if not fi.error:
         parts.append("<h4>Uncertainty budget</h4>")
@@ -537,7 +549,8 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
     inp = doc.get("input") or {}
     src = inp.get("file") or readings.source
     warned = _warned(fits)
-    bud = budget_arrays(readings, fits)
+    used = used_rows(readings, fits)
+    bud = budget_arrays(readings, fits, used=used)
     pick, eligible, why = _section_duts(fits, figures)
     anchors = {int(i): f"dut-{int(i)}" for i in pick}
 
@@ -581,7 +594,7 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
                                 f"Distribution of {label} across the {n_ok} fitted DUTs.", name))
         hist_html = "<div class='figrow'>" + "".join(figs) + "</div>"
 
-    sections = [_dut_section(readings, fits, bud, int(i), anchors[int(i)], png_sink)
+    sections = [_dut_section(readings, fits, bud, int(i), anchors[int(i)], png_sink, used)
                 for i in pick]
     if figures == "none":
         sec_note = why + "."
