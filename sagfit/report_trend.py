@@ -190,9 +190,12 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     order = np.concatenate((np.flatnonzero(flagged), np.flatnonzero(~flagged)))
     U = trends.expanded_latest
     for i in order[:MAX_TABLE_ROWS]:
-        cross = (iso_date(trends.crossing_time[i]) or
-                 ("crossed" if trends.crossed[i] else
-                  "not within the tested trend" if math.isfinite(trends.rate[i]) else "n/a"))
+        when = iso_date(trends.crossing_time[i])
+        if trends.crossed[i]:
+            cross = "crossed" + (f" (trend: {when})" if when else "")
+        else:
+            cross = when or ("not within the tested trend" if math.isfinite(trends.rate[i])
+                             else "n/a")
         grp = (f"{trends.excess_pct[i]:+.0f} %" if trends.group_size[i] >= 3 else "")
         codes = ", ".join(trends.codes(i))
         parts.append(

@@ -332,10 +332,11 @@ def print_trends(trends, doc) -> None:
     order = np.concatenate((np.flatnonzero(flagged), np.flatnonzero(~flagged)))
     U = trends.expanded_latest
     for i in order[:MAX_TABLE_ROWS]:
-        if np.isfinite(trends.crossing_time[i]):
+        if trends.crossed[i]:
+            cross = "crossed" + (f" (trend: {iso_date(trends.crossing_time[i])})"
+                                 if np.isfinite(trends.crossing_time[i]) else "")
+        elif np.isfinite(trends.crossing_time[i]):
             cross = iso_date(trends.crossing_time[i])
-        elif trends.crossed[i]:
-            cross = "crossed"
         elif np.isfinite(trends.rate[i]):
             cross = "not within the tested trend"
         else:
