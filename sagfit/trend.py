@@ -550,7 +550,8 @@ def _flags(m, duts, aging, crossed, soon, outlier, insufficient, fallback, lates
     flags: list[list[Flag]] = [[] for _ in range(m)]
     lvl = f"{confidence * 100:g} %"
     for i in np.flatnonzero(aging):
-        now = format_estimate(latest[i], u_latest[i], "Ω")
+        z = float(special.ndtri(0.5 * (1.0 + confidence)))
+        now = format_estimate(latest[i], z * u_latest[i], "Ω") + f" (U at {lvl})"
         ch = format_percent(change[i], u_change[i])
         if crossed[i]:
             msg = (f"latest Rth {now} is at or above the threshold {format_value(thr[i], 'Ω')} "
