@@ -1,8 +1,9 @@
 """``sagfit accept`` end to end on the invented sample reel (sample_runs/accept_*).
 
 Expected decisions come from the construction of the invented data (boards 0008/0009 made
-to fail, 0010/0011 placed within U of a limit, 0012 with one reading) and were checked by
-hand against the guarded rule of ILAC-G8:09/2019 §4.2.2; exit codes are those of issue 4.
+to fail, 0010/0011 placed within U of a limit, 0012 with one reading, 0013 with a sagging
+output that the fit's checks flag) and were checked by hand against the guarded rule of
+ILAC-G8:09/2019 §4.2.2; exit codes are those of issue 4.
 """
 
 import json
@@ -22,7 +23,7 @@ EXPECTED = {"SH5-D-0001": "pass", "SH5-D-0002": "pass", "SH5-D-0003": "pass",
             "SH5-D-0004": "pass", "SH5-D-0005": "pass", "SH5-D-0006": "pass",
             "SH5-D-0007": "pass", "SH5-D-0008": "fail", "SH5-D-0009": "fail",
             "SH5-D-0010": "inconclusive", "SH5-D-0011": "inconclusive",
-            "SH5-D-0012": "error"}
+            "SH5-D-0012": "error", "SH5-D-0013": "inconclusive"}
 
 
 @pytest.fixture(scope="module")
@@ -45,9 +46,16 @@ class TestSampleBatch:
         assert got == EXPECTED
         s = doc["summary"]
         assert {k: s[k] for k in ("pass", "fail", "inconclusive", "error")} == {
-            "pass": 7, "fail": 2, "inconclusive": 2, "error": 1}
-        assert s["yield"] == pytest.approx(7 / 12)
+            "pass": 7, "fail": 2, "inconclusive": 3, "error": 1}
+        assert s["yield"] == pytest.approx(7 / 13)
+        assert s["capped_by_flags"] == 1
         assert {r["quantity"] for r in s["failed_most"]} >= {"vth", "rth"}
+
+    def test_flagged_board_is_capped(self, doc):
+        """The sagging board is inside every limit, but flagged, hence inconclusive."""
+        r = next(x for x in doc["results"] if x["dut"] == "SH5-D-0013")
+        assert r["capped_by_flags"] and r["flags"]
+        assert all(c["decision"] == "pass" for c in r["checks"])
 
     def test_json_shape(self, doc):
         """The documented JSON fields are present with numbers in SI units."""
@@ -72,7 +80,7 @@ class TestSampleBatch:
         lines = run.out.splitlines()
         body = [ln for ln in lines if ln.strip().startswith("SH5-")]
         assert body[0].split()[0] in ("SH5-D-0008", "SH5-D-0009")
-        assert "summary: 7 pass, 2 fail, 2 inconclusive, 1 error of 12" in run.out
+        assert "summary: 7 pass, 2 fail, 3 inconclusive, 1 error of 13" in run.out
         assert "error SH5-D-0012" in run.out
 
     @pytest.mark.parametrize("duts,code", [
