@@ -40,6 +40,12 @@ def safe_filename(name: str, *, max_len: int = 60) -> str:
     return base
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _same_file(a: Path, b: Path) -> bool:
     try:
         return a.exists() and b.exists() and os.path.samefile(a, b)
@@ -101,6 +107,7 @@ def atomic_write(path: str | os.PathLike, data: bytes | str, *,
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the user's usual mode
         os.replace(tmp, p)
         tmp = None
     except OSError as exc:

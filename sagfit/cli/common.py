@@ -18,7 +18,7 @@ DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only this DUT (com
 ConfidenceOpt = Annotated[Optional[float], typer.Option(
     "--confidence", help="Confidence level of the intervals [default: 0.95].")]
 VoltageAccOpt = Annotated[Optional[str], typer.Option(
-    "--voltage-accuracy", help="Voltmeter spec ±(%% of reading + offset), e.g. '0.05%+2mV' "
+    "--voltage-accuracy", help="Voltmeter spec ±(% of reading + offset), e.g. '0.05%+2mV' "
                                "(a rectangular half-width).")]
 CurrentAccOpt = Annotated[Optional[str], typer.Option(
     "--current-accuracy", help="Ammeter spec, e.g. '0.2%+1mA'.")]
