@@ -104,13 +104,15 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
         t = dx / h[g]
         ybar = _gsum(g, w * y, m) / sw
         dy = y - ybar[g]
-        s2 = _gsum(g, w * t * t, m)
-        s3 = _gsum(g, w * t ** 3, m)
+        wt = w * t
+        wt2 = wt * t
+        s2 = _gsum(g, wt2, m)
+        s3 = _gsum(g, wt2 * t, m)
         A = s3 / s2
         B = s2 / sw
         p2 = t * t - A[g] * t - B[g]
         s22 = _gsum(g, w * p2 * p2, m)
-        g1 = _gsum(g, w * t * dy, m) / s2
+        g1 = _gsum(g, wt * dy, m) / s2
         g2 = _gsum(g, w * p2 * dy, m) / s22
         line_res = dy - g1[g] * t
         chi2_line = _gsum(g, w * line_res * line_res, m)
@@ -274,14 +276,14 @@ def _curvature(R: _Rows, level):
     delta = q["delta"]
     chi2q = np.maximum(R.chi2 - delta, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        p_q = special.chdtrc(np.maximum(nu, 1), chi2q)
+        p_q = _on(R.stated & run, special.chdtrc, np.maximum(nu, 1), chi2q)
         known = R.stated & (p_q >= CONSISTENT_P)
         F = delta / (chi2q / np.maximum(nu, 1))
-        p_known = special.chdtrc(1, delta)
-        p_f = special.fdtrc(1, np.maximum(nu, 1), F)
+        # χ²(1) upper tail = erfc(√(x/2)); the F tail only where the scatter is estimated
+        p = np.where(known, special.erfc(np.sqrt(np.maximum(delta, 0.0) / 2.0)),
+                     _on(run & ~known, special.fdtrc, 1.0, np.maximum(nu, 1), F))
         scale = np.where(known, 1.0, chi2q / nu)
     stat = np.where(known, delta, F)
-    p = np.where(known, p_known, p_f)
     out["c"] = np.where(run, q["c"], _NAN)
     with np.errstate(invalid="ignore"):
         out["u_c"] = np.where(run, np.sqrt(q["var_c"] * np.maximum(scale, 1.0 * known)), _NAN)
@@ -392,7 +394,7 @@ def _knee(R: _Rows, level):
     # The orthogonal-distance sums of the search are in units of each DUT's typical
     # uncertainty; they decide which DUTs deserve the exact refit.
     K = out["splits"]
-    stat, p, known = _knee_p(lam_line - lam_br, lam_br, R.n, R.stated, K)
+    stat, p, known = _knee_p(lam_line - lam_br, lam_br, R.n, R.stated, K, tested)
     source = np.where(tested, "orthogonal", None).astype(object)
     refine = tested & (p < KNEE_SCREEN_P)
     # York refit of the chosen split: each segment with its own slope in the weights
@@ -416,7 +418,7 @@ def _knee(R: _Rows, level):
         good = (refine & conv.reshape(m, 2).all(axis=1) & np.isfinite(chi)
                 & (delta_y > -1e-9 * np.abs(R.chi2)))
         if good.any():
-            st_y, p_y, kn_y = _knee_p(np.maximum(delta_y, 0.0), chi, R.n, R.stated, K)
+            st_y, p_y, kn_y = _knee_p(np.maximum(delta_y, 0.0), chi, R.n, R.stated, K, good)
             stat = np.where(good, st_y, stat)
             p = np.where(good, p_y, p)
             known = np.where(good, kn_y, known)
@@ -429,14 +431,24 @@ def _knee(R: _Rows, level):
     return out, test, run
 
 
-def _knee_p(delta, chi_br, n, stated, splits):
+def _on(mask, fn, *args):
+    """``fn(*args)`` evaluated only where ``mask`` is true (NaN elsewhere)."""
+    out = np.full(mask.shape, _NAN)
+    if mask.any():
+        out[mask] = fn(*(np.broadcast_to(a, mask.shape)[mask] for a in args))
+    return out
+
+
+def _knee_p(delta, chi_br, n, stated, splits, mask=None):
     """p-value of the two-segment model, Bonferroni-corrected for the breakpoint search."""
     nu = np.maximum(n - 4, 1).astype(float)
+    mask = np.isfinite(delta) if mask is None else mask
     with np.errstate(divide="ignore", invalid="ignore"):
-        p_br = special.chdtrc(nu, chi_br)
+        p_br = _on(mask & stated, special.chdtrc, nu, chi_br)
         known = stated & (p_br >= CONSISTENT_P)
         F = (delta / 2.0) / (chi_br / nu)
-        p1 = np.where(known, special.chdtrc(2, delta), special.fdtrc(2, nu, F))
+        # χ²(2) upper tail = exp(−x/2); the F tail only where the scatter is estimated
+        p1 = np.where(known, np.exp(-0.5 * delta), _on(mask & ~known, special.fdtrc, 2.0, nu, F))
         p = np.minimum(1.0, p1 * splits)
     return np.where(known, delta, F), p, known
 
