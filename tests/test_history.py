@@ -103,6 +103,22 @@ class TestStore:
         c.close()
 
 
+    def test_a_failing_run_records_nothing(self):
+        """One transaction per run: an error on the second DUT leaves the first unrecorded too."""
+        with History(":memory:") as h:
+            with pytest.raises(HistoryError, match="no test date"):
+                h.record(_fits(), test_time=[T0, np.nan], file_name="f.csv", sha256="a" * 64)
+            assert h.count() == 0
+            assert h._conn.execute("SELECT COUNT(*) FROM runs").fetchone()[0] == 0
+
+    def test_an_empty_file_becomes_a_history(self, tmp_path):
+        """A zero-byte file (e.g. made with touch) is initialised, not refused."""
+        p = tmp_path / "h.sqlite"
+        p.write_bytes(b"")
+        with History(p) as h:
+            assert h.schema_version == SCHEMA_VERSION and h.count() == 0
+
+
 class TestRefusals:
     def test_newer_schema_is_refused_unchanged(self, tmp_path):
         """A database of a newer schema version is refused with a clear message, untouched."""
