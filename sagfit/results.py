@@ -311,8 +311,7 @@ class Fits:
 
     def add_flags(self, new_flags) -> "Fits":
         """A new ``Fits`` with ``new_flags[i]`` (a sequence of Flag) appended to DUT i."""
-        merged = tuple(tuple(a) + tuple(b) if b else tuple(a)
-                       for a, b in zip(self.flags, new_flags))
+        merged = tuple(a + tuple(b) if b else a for a, b in zip(self.flags, new_flags))
         return self.replace(flags=merged)
 
     def to_dicts(self) -> list[dict]:
