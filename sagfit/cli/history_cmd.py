@@ -238,7 +238,8 @@ def trend_command(
                 raise OptionError("--as-of", str(exc)) from None
         names = list(dict.fromkeys(d.strip() for d in dut.split(",") if d.strip())) \
             if dut else None
-        with History(db, create=False) as hist:
+        show = interactive() and not json_out
+        with progress("reading " + db, show), History(db, create=False) as hist:
             recs = hist.records()  # all DUTs: --dut narrows the output, not the fleet view
         if len(recs) == 0:
             raise HistoryError(f"{db}: no records yet; add tests with 'sagfit record FILE "
