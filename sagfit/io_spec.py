@@ -163,11 +163,10 @@ def parse_spec(raw: bytes | str, path: str = "<spec>") -> Spec:
                                     upper=hi, at=at, note=_note(path, key, body)))
             else:
                 _keys(path, key, body, _LIMIT_KEYS | {"light", "heavy", "name"})
-                for end in ("light", "heavy"):
+                for end, example in (("light", "open"), ("heavy", "2.2ohm")):
                     if end not in body:
                         raise SpecFileError(path, f"missing: the {end} load or current, e.g. "
-                                                  f"{end} = \"{'open' if end == 'light' else '2.2ohm'}\"",
-                                            key=f"{key}.{end}")
+                                                  f"{end} = \"{example}\"", key=f"{key}.{end}")
                 light = _condition(path, f"{key}.light", body["light"])
                 heavy = _condition(path, f"{key}.heavy", body["heavy"])
                 _order(path, key, light, heavy)
