@@ -226,3 +226,15 @@ class TestOutputs:
         pd.testing.assert_frame_equal(ours, ref)
         assert ours["dut"].tolist() == ["a,b", 'say "hi"', "nan", "'=1+1"]
         assert np.isnan(ours["vth_value"][2]) and ours["vth_upper"][0] == 5.25
+
+
+class TestOneDut:
+    @pytest.mark.reference(ILAC)
+    def test_single_dut_view(self, cli):
+        """For one DUT the terminal lists every check with its acceptance limits, p_c and
+        the ILAC-G8 §4.2.3 statement."""
+        run = cli(*BASE, "--dut", "SH5-D-0010")
+        assert run.code == 3
+        assert "acceptance limits" in run.out and "conditional pass" in run.out
+        row = next(ln for ln in run.out.splitlines() if ln.strip().startswith("rth"))
+        assert "inconclusive" in row and "≤ 40.00 mΩ" in row

@@ -142,41 +142,20 @@ def _check_record(c) -> dict:
 
 def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) -> None:
     """The terminal view: a table of (at most 40) DUTs, worst first, then the summary."""
+    import sys
+
     import numpy as np
     from rich.console import Console
-    from rich.table import Table
 
-    from ..acceptance import DECISIONS, ERROR, FAIL, PASS
-    from ..report_accept import format_check, limits_text
+    from ..acceptance import ERROR
     from ..safety import cautions
-
-    import sys
 
     tty = sys.stdout.isatty()
     console = Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
-    order = np.argsort(-_rank(acc.decision), kind="stable")
-    shown = order[:MAX_TABLE_ROWS]
-    t = Table(show_edge=False, title=f"acceptance: {acc.rule.rule} rule"
-              + (f", {acc.spec.name}" if acc.spec.name else ""), title_justify="left")
-    t.add_column("DUT")
-    t.add_column("decision")
-    for cr in acc.checks:
-        t.add_column(f"{cr.name}\n{limits_text(cr.check)}", justify="right")
-    for i in shown:
-        cells = [acc.duts[i], DECISIONS[acc.decision[i]]
-                 + (" (flagged)" if acc.capped[i] else "")]
-        for cr in acc.checks:
-            if acc.decision[i] == ERROR:
-                cells.append("")
-                continue
-            mark = {PASS: "", FAIL: " ✗"}.get(int(cr.decision[i]), " ?")
-            cells.append(format_check(float(cr.value[i]), float(cr.U[i]), cr.check.unit)
-                         + mark)
-        t.add_row(*cells)
-    console.print(t, markup=False)
-    if len(acc) > MAX_TABLE_ROWS:
-        console.print(f"… {len(acc) - MAX_TABLE_ROWS} more DUTs not shown (worst first; all "
-                      "of them are in --out results.csv or --json).", markup=False)
+    if len(acc) == 1 and acc.decision[0] != ERROR:
+        _print_one(console, acc)
+    else:
+        _print_many(console, acc)
     k = acc.k[np.isfinite(acc.k)]
     kt = f"k = {float(k[0]):.3g}" if k.size and np.all(k == k[0]) else "k per DUT"
     console.print(f"values ± U (expanded uncertainty, {kt}); ✗ outside the rejection limit, "
@@ -189,7 +168,7 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
     if s["failed_most"]:
         worst = ", ".join(f"{r['quantity']} ({r['fail']} fail, {r['inconclusive']} "
                           "inconclusive)" for r in s["failed_most"][:5])
-        console.print(f"limits failed most: {worst}", markup=False)
+        console.print(f"limits that failed most: {worst}", markup=False)
     if s["capped_by_flags"]:
         console.print(f"{s['capped_by_flags']} DUT(s) inside the limits but flagged "
                       "(non-linear or doubtful fit) are inconclusive; see --json for the flags.",
@@ -215,6 +194,77 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
                       reading_power=readings.voltage * readings.current,
                       voltages=readings.voltage):
         console.print(f"caution: {c}", markup=False)
+
+
+def _print_many(console, acc) -> None:
+    """One row per DUT (at most 40, worst first), one column per check."""
+    import numpy as np
+    from rich.table import Table
+
+    from ..acceptance import DECISIONS, ERROR, FAIL, PASS
+    from ..report_accept import format_check, limits_text
+
+    order = np.argsort(-_rank(acc.decision), kind="stable")
+    shown = order[:MAX_TABLE_ROWS]
+    t = Table(show_edge=False, title=f"acceptance: {acc.rule.rule} rule"
+              + (f", {acc.spec.name}" if acc.spec.name else ""), title_justify="left")
+    t.add_column("DUT")
+    t.add_column("decision")
+    for cr in acc.checks:
+        t.add_column(f"{cr.name}\n{limits_text(cr.check)}", justify="right")
+    for i in shown:
+        cells = [acc.duts[i], DECISIONS[acc.decision[i]]
+                 + (" (flagged)" if acc.capped[i] else "")]
+        for cr in acc.checks:
+            if acc.decision[i] == ERROR:
+                cells.append("")
+                continue
+            mark = {PASS: "", FAIL: " ✗"}.get(int(cr.decision[i]), " ?")
+            cells.append(format_check(float(cr.value[i]), float(cr.U[i]), cr.check.unit)
+                         + mark)
+        t.add_row(*cells)
+    console.print(t, markup=False)
+    if len(acc) > MAX_TABLE_ROWS:
+        console.print(f"… {len(acc) - MAX_TABLE_ROWS} more DUTs not shown (worst first; all "
+                      "of them are in --out results.csv or --json).", markup=False)
+
+
+def _print_one(console, acc) -> None:
+    """One DUT: every check with its limits, acceptance limits, p_c and statement."""
+    import numpy as np
+    from rich.table import Table
+
+    from ..acceptance import DECISIONS, STATEMENTS
+    from ..formatting import format_p, format_value
+    from ..report_accept import format_check, limits_text
+
+    def lim(x, unit):
+        if not np.isfinite(x):
+            return ""
+        return f"{x:.4g} %" if unit == "%" else format_value(float(x), unit, 5)
+
+    name = DECISIONS[acc.decision[0]] + (" (flagged)" if acc.capped[0] else "")
+    t = Table(show_edge=False, title=f"{acc.duts[0]}: {name} ({acc.rule.rule} rule"
+              + (f", {acc.spec.name})" if acc.spec.name else ")"), title_justify="left")
+    for col, just in (("check", "left"), ("value ± U", "right"), ("tolerance", "right"),
+                      ("acceptance limits", "right"), ("p_c", "right"),
+                      ("decision", "left"), ("statement", "left")):
+        t.add_column(col, justify=just)
+    for cr in acc.checks:
+        u = cr.check.unit
+        lo, hi = cr.accept_lower[0], cr.accept_upper[0]
+        if np.isnan(lo) and np.isnan(hi):
+            acc_text = "none (no value can pass)"
+        elif not np.isfinite(lo):
+            acc_text = f"≤ {lim(hi, u)}"
+        elif not np.isfinite(hi):
+            acc_text = f"≥ {lim(lo, u)}"
+        else:
+            acc_text = f"{lim(lo, u)} … {lim(hi, u)}"
+        t.add_row(cr.name, format_check(float(cr.value[0]), float(cr.U[0]), u),
+                  limits_text(cr.check), acc_text, format_p(float(cr.p_c[0])),
+                  DECISIONS[int(cr.decision[0])], STATEMENTS[int(cr.statement[0])])
+    console.print(t, markup=False)
 
 
 def _rank(decision):
