@@ -246,6 +246,7 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
              + (f", revision {_e(spec.revision)}" if spec.revision else "")
              + f" (sha256 {_e(spec.sha256[:16])}…).</p>",
              f"<p>Decision rule: <b>{_e(r.rule)}</b> — {_e(_rule_text(r, acc))}</p>"]
+    parts.append(_instruments(doc.get("settings", {}), acc))
     for c in doc.get("cautions", []):
         parts.append(f"<p class='caution'>{_e(c)}</p>")
     parts.append("<h2>Summary</h2><table><tr><th>decision</th><th>DUTs</th></tr>")
@@ -283,6 +284,30 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
     parts.append("</body></html>\n")
     atomic_write(root / "accept.html", "".join(parts), inputs=inputs, within=root,
                  option="--report")
+
+
+def _instruments(settings, acc) -> str:
+    """The measurement set-up: meter specs, load tolerance and the instruments' identities
+    with their calibration due dates (for traceability)."""
+    bits = []
+    for key, label in (("voltage_accuracy", "voltage"), ("current_accuracy", "current")):
+        a = settings.get(key)
+        bits.append(f"{label} ±({_e(a['text'])})" if a else f"{label}: no accuracy stated")
+    tol = settings.get("load_tolerance_pct")
+    if tol is not None:
+        bits.append(f"load tolerance {tol:g} %")
+    text = (f"<p>Measurement: {'; '.join(bits)}; confidence {100 * acc.confidence:g} %."
+            "</p>")
+    rows = settings.get("instruments") or []
+    if rows:
+        text += ("<table><tr><th>role</th><th>instrument</th><th>spec</th>"
+                 "<th>calibration due</th></tr>")
+        for r in rows:
+            text += (f"<tr><td>{_e(r.get('role', ''))}</td><td>{_e(r.get('identifier', ''))}"
+                     f"</td><td>{_e(r.get('spec', ''))}</td>"
+                     f"<td>{_e(r.get('calibration_due') or '')}</td></tr>")
+        text += "</table>"
+    return text
 
 
 def _rule_text(r, acc) -> str:
