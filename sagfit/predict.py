@@ -68,6 +68,7 @@ class Prediction:
     power: Quantity
     given: str  # "load" or "current"
     level: float
+    extrapolated: bool = False  # the current lies outside the tested range
 
     def to_dict(self) -> dict:
         return {"dut": self.dut, "load_ohm": _f(self.load_ohm) if not math.isinf(self.load_ohm)
@@ -75,7 +76,7 @@ class Prediction:
                 "current_A": self.current.to_dict(),
                 "voltage_V": {"value": None, "ci": None, "pi": None,
                               **self.voltage.to_dict()},
-                "power_W": self.power.to_dict()}
+                "power_W": self.power.to_dict(), "extrapolated": self.extrapolated}
 
 
 @dataclass(frozen=True, slots=True)
@@ -94,6 +95,8 @@ class SourceModel:
     u_slope: float | None
     reading_scale: float        # S² (stated) or s² in V² (OLS) for a new reading
     load_tolerance_pct: float | None
+    tested: tuple[float, float] | None = None  # current range of the fitted readings (A)
+    knee: bool = False                         # the fit found a knee (see diagnostics)
 
 
 def _f(x):
@@ -124,16 +127,25 @@ def prediction_fields(readings, fits) -> "PredictionColumn":
                          np.bincount(g, weights=dx * (uv - my[g]), minlength=m) / sxx, 0.0)
         slope = np.where(np.isfinite(slope), np.maximum(slope, 0.0), 0.0)
         offset = np.maximum(my - slope * mx, 0.0)
-    return PredictionColumn(fits, offset, slope)
+    starts = np.concatenate(([0], np.cumsum(n.astype(np.int64))[:-1]))
+    lo = np.full(m, np.nan)
+    hi = np.full(m, np.nan)
+    ne = n > 0
+    if ne.any():
+        lo[ne] = np.minimum.reduceat(readings.current, starts[ne])
+        hi[ne] = np.maximum.reduceat(readings.current, starts[ne])
+    return PredictionColumn(fits, offset, slope, lo, hi)
 
 
 class PredictionColumn(Sequence):
     """A lazy per-DUT column for ``Fits.extra``: builds each DUT's dict on demand."""
 
-    def __init__(self, fits, offset, slope):
+    def __init__(self, fits, offset, slope, lo, hi):
         self._fits = fits
         self._offset = offset
         self._slope = slope
+        self._lo = lo
+        self._hi = hi
 
     def __len__(self):
         return len(self._fits)
@@ -147,7 +159,9 @@ class PredictionColumn(Sequence):
         ols = str(f.method[i]) == "ols"
         vv, rr, vr = float(f.u_vth[i]) ** 2, float(f.u_rth[i]) ** 2, float(f.cov_vr[i])
         d = {"cov_vth_rth": [[vv, vr], [vr, rr]], "coverage_factor": float(f.k[i]),
-             "dof": int(f.dof[i]), "type_a": ols, "confidence": f.confidence}
+             "dof": int(f.dof[i]), "type_a": ols, "confidence": f.confidence,
+             "tested_current_A": [float(self._lo[i]), float(self._hi[i])],
+             "knee": any(fl.code == "knee" for fl in f.flags[i])}
         if ols:
             d["reading_variance_V2"] = float(f.scale[i])
         else:
@@ -215,6 +229,12 @@ def models_from_document(doc, source: str = "<results>", duts: Sequence[str] | N
                 off = float(_get(um, "offset_V", where + ".prediction.u_voltage_model"))
                 slope = float(_get(um, "per_volt", where + ".prediction.u_voltage_model"))
                 scale = float(p.get("reading_scale", 1.0))
+            tr = p.get("tested_current_A")
+            tested = (float(tr[0]), float(tr[1])) if (
+                isinstance(tr, list) and len(tr) == 2
+                and all(isinstance(t, (int, float)) and not isinstance(t, bool) for t in tr)
+            ) else None
+            knee = bool(p.get("knee", False))
         else:  # an older document: covariance from u and the correlation, no reading model
             uv = float(_get(r["vth"], "u", where + ".vth"))
             ur = float(_get(r["rth"], "u", where + ".rth"))
@@ -226,10 +246,11 @@ def models_from_document(doc, source: str = "<results>", duts: Sequence[str] | N
             level = float(conf)
             off = slope = None
             scale = math.nan
+            tested, knee = None, False
         if not (math.isfinite(vth) and math.isfinite(rth)):
             raise InputError(f"{where}: Vth or Rth is not a finite number")
         models[dut] = SourceModel(dut, vth, rth, ((c[0, 0], c[0, 1]), (c[1, 0], c[1, 1])), k,
-                                  dof, type_a, level, off, slope, scale, tol)
+                                  dof, type_a, level, off, slope, scale, tol, tested, knee)
     if not models:
         raise InputError(f"{source}: the document holds no results")
     names = list(models) if not duts else list(duts)
@@ -318,7 +339,7 @@ def predict(models: Sequence[SourceModel], *, loads: Sequence[float] = (),
                                  f"({-rth:g} Ω); the divider formula does not apply")
             out.append(_point(mdl.dut, float(R[j]), "load", level, k,
                               (i[j], var["i"][j]), (v[j], var["v"][j]), (p[j], var["p"][j]),
-                              var_new[j]))
+                              var_new[j], _outside(mdl, float(i[j]))))
         if Iset.size:
             vI = vth - rth * Iset
             var_v = C[0, 0] + Iset ** 2 * C[1, 1] - 2 * Iset * C[0, 1]
@@ -330,7 +351,7 @@ def predict(models: Sequence[SourceModel], *, loads: Sequence[float] = (),
             for j in range(Iset.size):
                 out.append(_point(mdl.dut, float(rl[j]), "current", level, k,
                                   (Iset[j], 0.0), (vI[j], var_v[j]), (pI[j], var_p[j]),
-                                  var_new_i[j]))
+                                  var_new_i[j], _outside(mdl, float(Iset[j]))))
     return out
 
 
@@ -344,7 +365,16 @@ def _reading_variance(mdl: SourceModel, v):
     return mdl.reading_scale * u * u
 
 
-def _point(dut, load, given, level, k, ci_i, ci_v, ci_p, var_new):
+def _outside(mdl: SourceModel, current: float) -> bool:
+    """True when ``current`` lies beyond the tested range by more than 5 % of its span."""
+    if mdl.tested is None:
+        return False
+    lo, hi = mdl.tested
+    slack = 0.05 * (hi - lo)
+    return not (lo - slack <= current <= hi + slack)
+
+
+def _point(dut, load, given, level, k, ci_i, ci_v, ci_p, var_new, outside=False):
     def q(pair, pi=None):
         val, var = float(pair[0]), max(float(pair[1]), 0.0)
         u = math.sqrt(var)
@@ -355,4 +385,4 @@ def _point(dut, load, given, level, k, ci_i, ci_v, ci_p, var_new):
         return Quantity(val, u, (val - k * u, val + k * u), **extra)
 
     return Prediction(dut=dut, load_ohm=load, current=q(ci_i), voltage=q(ci_v, var_new),
-                      power=q(ci_p), given=given, level=level)
+                      power=q(ci_p), given=given, level=level, extrapolated=outside)

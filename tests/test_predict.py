@@ -126,6 +126,23 @@ class TestUncertainty:
             pytest.approx(2.5758293 / 1.9599640, rel=1e-6)
 
 
+class TestExtrapolation:
+    def test_marks_loads_beyond_the_tested_currents(self):
+        """A load drawing more current than any fitted reading is marked extrapolated."""
+        (m,) = models_from_document(document(fit(pack())))
+        near, far = predict([m], loads=[1.0, 0.05])
+        assert not near.extrapolated and far.extrapolated
+        assert far.to_dict()["extrapolated"] is True
+
+    def test_knee_warning_in_terminal(self, cli, tmp_path):
+        """Predicting from a fit that found a knee warns that it does not hold past it."""
+        out = tmp_path / "bs.json"
+        cli("fit", SAMPLES / "bench_supply_limit.csv", "--bench", SAMPLES / "bench.toml",
+            "--out", out)
+        res = cli("predict", out, "--load", "2.2")
+        assert res.code == 0 and "found a knee" in res.out
+
+
 class TestDocument:
     def test_older_document_without_model_gives_no_pi(self):
         """A results document without the prediction block still predicts, with pi = null."""

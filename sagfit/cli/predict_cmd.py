@@ -43,7 +43,7 @@ def predict_command(
             write_stdout(dumps({"tool": "sagfit", "source": results,
                                 "predictions": [p.to_dict() for p in preds]}))
         else:
-            _print(preds, doc)
+            _print(preds, models)
 
 
 def _resistance(text: str) -> float:
@@ -97,7 +97,7 @@ def _read_document(path: str):
                          f"({exc.msg}); expected the output of `sagfit fit --json`") from None
 
 
-def _print(preds, doc) -> None:
+def _print(preds, models) -> None:
     from rich.table import Table
 
     from ..formatting import format_estimate, format_interval, format_value
@@ -119,6 +119,8 @@ def _print(preds, doc) -> None:
             load = "open" if p.load_ohm == float("inf") else format_value(p.load_ohm, "Ω")
             if p.given == "current":
                 load = f"≈ {load}"
+            if p.extrapolated:
+                load += " *"
             v = p.voltage
             t.add_row(load, format_estimate(p.current.value, p.current.u, "A"),
                       format_estimate(v.value, v.u, "V"),
@@ -126,6 +128,13 @@ def _print(preds, doc) -> None:
                       format_interval(v.pi[0], v.pi[1], "V", v.u_pi) if v.pi else "n/a",
                       format_estimate(p.power.value, p.power.u, "W"))
         console.print(t)
+    if any(p.extrapolated for p in preds):
+        console.print("* beyond the current range of the fitted readings: an extrapolation "
+                      "that holds only if the source stays linear there", markup=False)
+    for m in models:
+        if m.knee:
+            console.print(f"warning: {m.dut}: the fit found a knee (current limit, dropout); "
+                          "predictions past it do not describe the source", markup=False)
     if any(p.voltage.pi is None for p in preds):
         console.print("note: the saved fit carries no model of a new reading's uncertainty "
                       "(an older results file): refit with this version for prediction "
