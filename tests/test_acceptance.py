@@ -215,6 +215,33 @@ class TestSimpleAndRisk:
             assert r["accept_lower"][0] - 1e-9 <= y <= r["accept_upper"][0] + 1e-9
 
 
+class TestRuleProperties:
+    @pytest.mark.reference(ILAC + " (guarded acceptance zone inside the tolerance zone); "
+                           "JCGM 106:2012")
+    @settings(max_examples=300, deadline=None)
+    @given(y=st.lists(st.floats(-3, 3), min_size=1, max_size=20),
+           u=st.floats(1e-6, 1.0), lower=st.one_of(st.just(-math.inf), st.floats(-2, 0)),
+           upper=st.one_of(st.just(math.inf), st.floats(0.0, 2)))
+    def test_rules_are_consistent(self, y, u, lower, upper):
+        """For any shape of input: a guarded pass is a simple pass, a guarded fail is a
+        simple fail, a guarded pass has p_c ≥ Φ(k) against each limit, and p_c is in
+        [0, 1]."""
+        from scipy import stats
+
+        if lower == -math.inf and upper == math.inf:
+            upper = 1.0
+        y = np.array(y)
+        uu = np.full(y.shape, u)
+        g = decide(y, uu, 2 * uu, lower, upper, GUARDED)
+        s_ = decide(y, uu, 2 * uu, lower, upper, SIMPLE)
+        assert np.all((g["decision"] != PASS) | (s_["decision"] == PASS))
+        assert np.all((g["decision"] != FAIL) | (s_["decision"] == FAIL))
+        assert np.all((g["p_c"] >= 0) & (g["p_c"] <= 1))
+        one_side = conformance_probability(y, uu, -math.inf, upper)
+        ok = g["decision"] == PASS
+        assert np.all(one_side[ok] >= stats.norm.cdf(2.0) - 1e-12)
+
+
 class TestDerivedQuantities:
     def test_terminal_voltage_at_load_and_current(self):
         """V = Vth·R/(Rth + R) at a load, Vth − Rth·I at a current, Vth when open
