@@ -63,6 +63,8 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         raise InputError(f"level must be between 0 and 0.5 (got {level!r})")
     notes: dict[int, list[Flag]] = {}
     used = readings
+    rows = np.arange(len(readings))           # rows of ``readings`` still in ``used``
+    reason = np.full(len(readings), "", dtype=object)
     if current_range is not None:
         lo, hi = (float(v) for v in current_range)
         if not lo < hi:
@@ -71,6 +73,8 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         keep = (readings.current >= lo) & (readings.current <= hi)
         dropped = np.bincount(readings.group[~keep], minlength=readings.n_duts)
         used = readings.select(keep)
+        reason[~keep] = "current-range"
+        rows = rows[keep]
         kept = used.counts()
         text = _range_text(lo, hi)
         for k in np.flatnonzero(dropped):
@@ -80,11 +84,16 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
                 "were left out (--current-range)"))
     fits = _fit_checked(used, confidence, level, robust)
     if below_knee:
-        fits, used = _refit_below_knee(used, fits, confidence, level, robust, notes)
+        fits, used, keep = _refit_below_knee(used, fits, confidence, level, robust, notes)
+        reason[rows[~keep]] = "below-knee"
+    extra = dict(fits.extra)
+    if (reason != "").any():
+        extra["excluded_readings"] = _excluded(readings, reason)
     if notes:
         new = [tuple(notes.get(k, ())) for k in range(len(fits))]
         fits = fits.add_flags(new)
-    fits = fits.replace(extra={**fits.extra, "prediction": prediction_fields(used, fits)})
+    extra["prediction"] = prediction_fields(used, fits)
+    fits = fits.replace(extra=extra)
     settings = dict(fits.settings)
     settings.update(level=float(level),
                     current_range=None if current_range is None
@@ -111,7 +120,7 @@ def _fit_checked(readings, confidence, level, robust):
 def _refit_below_knee(readings, fits, confidence, level, robust, notes):
     keep = knee_rows(readings, fits)
     if keep.all():
-        return fits, readings
+        return fits, readings, keep
     g = readings.group
     before = readings.counts()
     kept = np.bincount(g[keep], minlength=readings.n_duts)
@@ -141,7 +150,23 @@ def _refit_below_knee(readings, fits, confidence, level, robust, notes):
     # DUTs that were not refitted keep their first fit: rebuild them from the full set
     if (changed & ~enough).any():
         refit = _merge(refit, fits, use | ~changed)
-    return refit, sub
+    return refit, sub, keep
+
+
+def _excluded(readings: Readings, reason) -> list:
+    """Per DUT, the readings an option left out (None for DUTs with none left out)."""
+    out: list = [None] * readings.n_duts
+    g = readings.group
+    starts = np.concatenate(([0], np.cumsum(readings.counts())[:-1]))
+    for r in np.flatnonzero(reason != ""):  # only the excluded rows
+        k = int(g[r])
+        if out[k] is None:
+            out[k] = []
+        ln = int(readings.line[r])
+        out[k].append({"line": ln or None, "reading": int(r - starts[k] + 1),
+                       "current_A": float(readings.current[r]),
+                       "voltage_V": float(readings.voltage[r]), "reason": reason[r]})
+    return out
 
 
 def _merge(new: Fits, old: Fits, take_new: np.ndarray) -> Fits:

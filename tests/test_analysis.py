@@ -153,6 +153,20 @@ class TestFitCommand:
                   "0:1.4A", "--json")
         assert json.loads(res.out)["results"][0]["n"] == 8
 
+    def test_excluded_readings_named_by_line(self, cli):
+        """The JSON lists each reading an option left out, with its input line and why."""
+        res = cli("fit", SUPPLY, "--bench", SAMPLES / "bench.toml", "--below-knee",
+                  "--current-range", "0.1:", "--json")
+        ex = json.loads(res.out)["results"][0]["excluded_readings"]
+        assert [(e["line"], e["reason"]) for e in ex] == [(8, "current-range")] + [
+            (ln, "below-knee") for ln in range(17, 22)]
+
+    @pytest.mark.parametrize("level", ["0.7", "0", "nan"])
+    def test_bad_level_option(self, cli, level):
+        """--level outside (0, 0.5) is one error line naming the option, exit 2."""
+        res = cli("fit", SUPPLY, "--level", level)
+        assert res.code == 2 and res.err.startswith("error: option --level")
+
     def test_bad_range_is_a_one_line_error(self, cli):
         """A malformed --current-range is one error line and exit 2."""
         res = cli("fit", SUPPLY, "--current-range", "2A:1A")

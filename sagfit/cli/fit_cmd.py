@@ -50,6 +50,11 @@ def fit_command(
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence)
+        if not 0.0 < level < 0.5:
+            from ..errors import OptionError
+
+            raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
+                                         "0.01 is the default, 0.05 is more sensitive")
         if out:
             check_output_path(out, [file] + ([bench] if bench else []))
             if not out.lower().endswith((".csv", ".json")):
