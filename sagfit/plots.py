@@ -396,7 +396,7 @@ def fit_figure(readings, fits, i: int, *, used=None):
     k = float(fits.k[i])
     vth, rth = float(fits.vth[i]), float(fits.rth[i])
     with house_style():
-        fig, ax = new_figure(6.4, 4.2)
+        fig, ax = new_figure(6.4, 5.0)
         ok = fits.error[i] is None and math.isfinite(vth) and math.isfinite(rth)
         span_lo = min(0.0, float(cur.min()))
         span_hi = max(float(cur.max()), 0.0)
@@ -459,7 +459,9 @@ def fit_figure(readings, fits, i: int, *, used=None):
         ax.set_xlim(grid[0], grid[-1])
         si_axis(ax, "x", "A", "Load current")
         si_axis(ax, "y", "V", "Terminal voltage")
-        ax.legend(loc="upper right", fontsize=7.5, handlelength=1.6)
+        # below the axes, so it never hides a reading
+        fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
+                   fontsize=7.5, handlelength=1.6)
     return fig
 
 
@@ -547,7 +549,7 @@ def power_figure(readings, fits, i: int):
     band = float(fits.k[i]) * np.sqrt(np.maximum(var, 0.0))
     fi = fits[i]
     with house_style():
-        fig, ax = new_figure(6.4, 3.8)
+        fig, ax = new_figure(6.4, 4.2)
         ax.set_xscale("log")
         ax.fill_between(grid, p - band, p + band, color=COLORS["band_ci"], alpha=0.25, lw=0,
                         label=f"confidence band ({_level(fits)})")
@@ -561,7 +563,8 @@ def power_figure(readings, fits, i: int):
         ax.set_xlim(lo, hi)
         si_axis(ax, "x", "Ω", "Load resistance")
         si_axis(ax, "y", "W", "Delivered power")
-        ax.legend(loc="upper right", fontsize=7.5)
+        fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
+                   fontsize=7.5)
     return fig
 
 

@@ -441,6 +441,9 @@ def _budget_table(bud, i: int) -> str:
             "<th class='num'>share of u²</th></tr>" + "".join(body) + "</table>")
 
 
+_DIAG_UNITS = {"current": "A", "voltage": "V", "knee_current": "A", "knee_voltage": "V"}
+
+
 def _diagnostics_rows(diag: Mapping) -> str:
     if not diag:
         return ""
@@ -457,8 +460,13 @@ def _diagnostics_rows(diag: Mapping) -> str:
                 v = float(val)
                 if not math.isfinite(v):
                     continue
-                txt = format_p(v) if key.lower() in ("p", "p_value", "pvalue") or \
-                    key.lower().startswith("p_") else f"{v:.4g}"
+                low = key.lower()
+                if low in ("p", "p_value", "pvalue") or low.startswith("p_"):
+                    txt = format_p(v)
+                elif low in _DIAG_UNITS and not isinstance(val, (int, np.integer)):
+                    txt = format_value(v, _DIAG_UNITS[low], 4)
+                else:
+                    txt = f"{v:.4g}"
             elif val is None:
                 continue
             else:

@@ -142,7 +142,7 @@ class TestFigures:
                                               "p_value": np.array([0.001])}})
         fl = fl.add_flags([[Flag("knee", "warning", "knee at 1 A")]])
         fig = plots.fit_figure(rd, fl, 0)
-        texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+        texts = [t.get_text() for t in fig.legends[0].get_texts()]
         assert any(t.startswith("flagged reading") for t in texts)
         assert any(t.startswith("knee at 1.00 A") for t in texts)
         assert any("Vth = " in t and "Rth = " in t for t in texts)
