@@ -247,8 +247,15 @@ class History:
             self.path = str(target)
             if self.path != ":memory:":
                 self._check_file(Path(self.path), create)
+            self._readonly = not create and self.path != ":memory:"
             try:
-                conn = sqlite3.connect(self.path, isolation_level=None, timeout=10.0)
+                if self._readonly:  # reading a history never writes to it (not even WAL)
+                    from urllib.parse import quote
+
+                    uri = "file:" + quote(str(Path(self.path).resolve())) + "?mode=ro"
+                    conn = sqlite3.connect(uri, uri=True, isolation_level=None, timeout=10.0)
+                else:
+                    conn = sqlite3.connect(self.path, isolation_level=None, timeout=10.0)
             except sqlite3.Error as exc:
                 raise HistoryError(f"{self.path}: cannot open the history database ({exc})") \
                     from None
@@ -256,6 +263,7 @@ class History:
             conn = target
             conn.isolation_level = None
             self.path = "<connection>"
+            self._readonly = False
         self._conn = conn
         try:
             self._setup()
@@ -298,11 +306,19 @@ class History:
             raise HistoryError(f"{self.path}: an SQLite database of another program (tables "
                                f"{', '.join(sorted(tables)[:5])}), not a sagfit history")
         version = self._version() if tables else 0
+        if self._readonly and version == 0:
+            raise HistoryError(f"{self.path}: no history recorded in this file; record tests "
+                               f"into it first with 'sagfit record FILE --db {self.path}'")
+        if self._readonly and version < SCHEMA_VERSION:
+            raise HistoryError(f"{self.path}: an older history schema (version {version}); "
+                               "run 'sagfit record' on it once to upgrade it")
         if version > SCHEMA_VERSION:
             raise HistoryError(
                 f"{self.path}: written by a newer sagfit (history schema version {version}; "
                 f"this sagfit reads up to version {SCHEMA_VERSION}); upgrade sagfit to use "
                 "it — the file was not changed")
+        if self._readonly:
+            return
         if self.path != ":memory:" and self._own:
             try:
                 c.execute("PRAGMA journal_mode = WAL")

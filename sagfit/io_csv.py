@@ -258,6 +258,10 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         data = text.encode("utf-8")  # one encoding from here on; BOM already dropped
     elif data.startswith(b"\xef\xbb\xbf"):
         data = data[3:]
+    if b"\r" in data:  # CRLF (Windows) and lone CR (old Mac) line ends become LF
+        data = data.replace(b"\r\n", b"\n")
+        if b"\r" in data:
+            data = data.replace(b"\r", b"\n")
     # ---- comment lines and the header, read by hand from the top of the file
     meta: dict[str, object] = {}
     pos = 0

@@ -43,7 +43,7 @@ _UNIT_SYMBOLS: dict[str, str] = {
     "V": "V", "v": "V", "volt": "V", "volts": "V",
     "A": "A", "a": "A", "amp": "A", "amps": "A", "ampere": "A",
     "ohm": "ohm", "ohms": "ohm", "Ohm": "ohm", "Ohms": "ohm", "OHM": "ohm",
-    "Ω": "ohm", "Ω": "ohm", "R": "ohm",
+    "\u03a9": "ohm", "\u2126": "ohm", "R": "ohm",
     "s": "s", "sec": "s", "S": "s",
     "%": "%", "pct": "%", "percent": "%",
     "C": "degC", "°C": "degC", "degC": "degC", "celsius": "degC",
@@ -52,7 +52,7 @@ _UNIT_SYMBOLS: dict[str, str] = {
 }
 
 _NUMBER = r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"
-_QUANTITY_RE = re.compile(rf"^\s*({_NUMBER})\s*([TGMkKmuµμnp]?)\s*([A-Za-zΩΩ°%]*)\s*$")
+_QUANTITY_RE = re.compile(rf"^\s*({_NUMBER})\s*([TGMkKmuµμnp]?)\s*([A-Za-z\u03a9\u2126°%]*)\s*$")
 _RKM_RE = re.compile(r"^\s*(\d*)([RKMGTLrkm])(\d*)\s*$")
 # IEC 60062 letters; a lower-case 'm' is read as milli, as in SI (common practice).
 _RKM_SCALE = {"R": 1.0, "r": 1.0, "K": 1e3, "k": 1e3, "M": 1e6, "m": 1e-3, "G": 1e9,
@@ -146,7 +146,7 @@ def parse_resistance(text: str, scale: float = 1.0) -> float:
     m = _QUANTITY_RE.match(s)
     if m:
         num, prefix, unit = m.groups()
-        if unit in ("", "Ω", "Ω", "ohm", "ohms", "Ohm", "R", "r", "OHM"):
+        if unit in ("", "\u03a9", "\u2126", "ohm", "ohms", "Ohm", "R", "r", "OHM"):
             return float(num) * PREFIXES[prefix]
         u = unit_dimension(unit)
         if u is not None and u[1] == "ohm" and not prefix:
