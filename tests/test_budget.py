@@ -259,3 +259,45 @@ class TestJson:
         b = budget_arrays(rd, fits, used=used)
         assert not b.valid[0]
         assert "no budget" in b.reason[0]
+
+
+class TestShapes:
+    @pytest.mark.parametrize("mode", ["vi", "rv", "ri"])
+    def test_any_shape_closes_to_the_fit(self, mode):
+        """For random numbers of DUTs and readings, in each column layout, the groups add up
+        to the reported u(Vth) and u(Rth) of every fitted DUT."""
+        from hypothesis import given, settings
+        from hypothesis import strategies as st
+
+        from sagfit.units import parse_accuracy
+
+        @settings(max_examples=25, deadline=None)
+        @given(st.lists(st.integers(3, 9), min_size=1, max_size=6), st.integers(0, 2 ** 31))
+        def check(sizes, seed):
+            rng = np.random.default_rng(seed)
+            cols: dict = {"voltage": [], "current": [], "load": [], "dut": []}
+            for d, n in enumerate(sizes):
+                r = np.geomspace(0.5, 20, n) * (1 + 0.01 * rng.standard_normal(n))
+                vth, rth = 5 + rng.random(), 0.05 + 0.5 * rng.random()
+                i = vth / (r + rth)
+                cols["current"] += list(i * (1 + 1e-3 * rng.standard_normal(n)))
+                cols["voltage"] += list(i * r * (1 + 1e-3 * rng.standard_normal(n)))
+                cols["load"] += list(r)
+                cols["dut"] += [f"D{d}"] * n
+            keys = {"vi": ("voltage", "current"), "rv": ("load", "voltage"),
+                    "ri": ("load", "current")}[mode]
+            rd = Readings.from_arrays(**{k: cols[k] for k in keys}, dut=cols["dut"],
+                                      load_tolerance=1.0,
+                                      voltage_accuracy=parse_accuracy("0.05%+2mV", "V"),
+                                      current_accuracy=parse_accuracy("0.2%+1mA", "A"))
+            fits = fit_lines(rd)
+            b = budget_arrays(rd, fits)
+            ok = fits.ok
+            assert np.all(b.valid == ok)
+            for y, u in (("vth", fits.u_vth), ("rth", fits.u_rth)):
+                tot = np.sqrt(sum(b.contribution[(y, g)] ** 2
+                                  for g in ("voltage", "current", "load", "scale")))
+                np.testing.assert_allclose(tot[ok], u[ok], rtol=1e-9)
+            json.dumps(budgets(rd, fits), allow_nan=False)
+
+        check()
