@@ -26,6 +26,8 @@ __all__ = ["fit"]
 #: E. M. Ronchetti, *Robust Statistics*, 2nd ed. (2009), ch. 4 (value from memory: 1.345).
 HUBER_C = 1.345
 _IRLS_MAX = 50
+#: A weight change below this moves the estimate by well under 0.1 % of its uncertainty.
+_W_TOL = 1e-4
 
 
 def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
@@ -202,7 +204,8 @@ def _robust(readings: Readings, fits: Fits, confidence: float) -> Fits:
     weight = np.ones(len(readings))
     uv0, ui0, cv0 = readings.u_voltage, readings.u_current, readings.cov_iv
     cur = fits
-    rob_scale = np.ones(len(fits))
+    active = ok.copy()
+    m = len(fits)
     for _ in range(_IRLS_MAX):
         b = -np.where(ok, cur.rth, 0.0)
         a = np.where(ok, cur.vth, 0.0)
@@ -210,22 +213,25 @@ def _robust(readings: Readings, fits: Fits, confidence: float) -> Fits:
         with np.errstate(divide="ignore", invalid="ignore"):
             var = uv0 ** 2 + b[g] ** 2 * ui0 ** 2 - 2 * b[g] * cv0
             z = res / np.sqrt(np.where(stated[g], var, 1.0))
-        rob_scale = _mad_scale(np.where(ols[g], z, 0.0), g, len(fits))
+        rob_scale = _mad_scale(np.where(ols[g], z, 0.0), g, m)
         zz = np.where(ols[g], z / rob_scale[g], z)
         with np.errstate(divide="ignore", invalid="ignore"):
             w_new = np.where(np.abs(zz) > HUBER_C, HUBER_C / np.abs(zz), 1.0)
-        w_new = np.where(ok[g] & np.isfinite(w_new), w_new, 1.0)
-        settled = np.max(np.abs(w_new - weight)) < 1e-6 if w_new.size else True
+        w_new = np.where(active[g] & np.isfinite(w_new), w_new, weight)
+        # only DUTs whose weights moved are refitted; a DUT with every |z| ≤ c keeps its
+        # least-squares fit, which is then its Huber estimate
+        moved = np.bincount(g, weights=np.abs(w_new - weight) > _W_TOL, minlength=m) > 0
         weight = w_new
+        if not moved.any():
+            break
         inflate = 1.0 / np.sqrt(weight)
-        # for a fit without stated uncertainties the Huber weights act on a unit scale
+        # for a fit without stated uncertainties the Huber weights act on the robust scale
         uv = np.where(ols[g], rob_scale[g] * inflate, uv0 * inflate)
         ui = np.where(ols[g], 0.0, ui0 * inflate)
         cv = np.where(ols[g], 0.0, cv0 / weight)
         rd = dataclasses.replace(readings, u_voltage=uv, u_current=ui, cov_iv=cv)
-        cur = fit_lines(rd, confidence=confidence)
-        if settled:
-            break
+        cur = _merge(fit_lines(rd.select(moved[g]), confidence=confidence), cur, moved)
+        active = moved
     # the checks judge the robust line against the readings as stated: χ² with the
     # original uncertainties (the plain residual sum of squares without them)
     b = -np.where(ok, cur.rth, 0.0)
@@ -240,20 +246,30 @@ def _robust(readings: Readings, fits: Fits, confidence: float) -> Fits:
     # a fit without stated uncertainties stays Type A: keep its method, Student-t k and scale
     k = np.where(ols, fits.k, cur.k)
     method = np.where(ols, fits.method, cur.method)
-    n_down = np.bincount(g, weights=weight < 1.0, minlength=len(fits))
+    n_down = np.bincount(g, weights=weight < 1.0, minlength=len(fits)).astype(np.int64)
+    cache: dict[tuple[int, int], Flag] = {}
     flags = []
     for i in range(len(fits)):
         kept = tuple(f for f in cur.flags[i] if not (ols[i] and f.code == "scale-applied"))
         if ok[i]:
+            key = (int(n_down[i]), int(fits.n[i]))
+            fl = cache.get(key)
+            if fl is None:
+                fl = cache[key] = Flag(
+                    "robust", "info",
+                    f"robust refit (Huber loss, c = {HUBER_C}): {key[0]} of {key[1]} readings "
+                    "were down-weighted" + ("; the uncertainties are those of the reweighted "
+                                            "fit" if key[0] else
+                                            ", so the fit is the ordinary one"))
             kept = tuple(f for f in fits.flags[i] if f.code == "type-a") + tuple(
-                f for f in kept if f.code != "type-a")
-            kept += (Flag("robust", "info",
-                          f"robust refit (Huber loss, c = {HUBER_C}): {int(n_down[i])} of "
-                          f"{int(fits.n[i])} readings were down-weighted; the uncertainties "
-                          "are those of the reweighted fit"),)
+                f for f in kept if f.code != "type-a") + (fl,)
         flags.append(kept)
+    weights = [None] * len(fits)
+    starts = np.concatenate(([0], np.cumsum(readings.counts())[:-1]))
+    for i in np.flatnonzero(n_down):
+        weights[i] = weight[starts[i]:starts[i] + fits.n[i]].tolist()
     return cur.replace(k=k, method=method, flags=tuple(flags), chi2=chi2, p_value=p_value,
-                       extra={**cur.extra, "robust_weights": _per_dut(weight, g, len(fits))})
+                       extra={**cur.extra, "robust_weights": weights})
 
 
 def _mad_scale(z, g, m):
@@ -269,7 +285,3 @@ def _mad_scale(z, g, m):
     return np.where(s > 0, s, 1.0)
 
 
-def _per_dut(values, g, m):
-    n = np.bincount(g, minlength=m)
-    parts = np.split(values, np.cumsum(n)[:-1])
-    return [p.tolist() for p in parts]
