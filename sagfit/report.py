@@ -471,7 +471,8 @@ def _diagnostics_rows(diag: Mapping) -> str:
                 continue
             else:
                 txt = str(val)
-            parts.append(f"{_e(key)} = {_e(txt)}")
+            sep = " " if txt[:1] in "<>" else " = "  # "p_value < 0.001", not "= < 0.001"
+            parts.append(f"{_e(key)}{sep}{_e(txt)}")
         if parts:
             rows.append(f"<tr><td>{_e(name)}</td><td>{'; '.join(parts)}</td></tr>")
     if not rows:
