@@ -208,6 +208,7 @@ tr.hl td { background: #fdf0e8; }
   table { break-inside: auto; }
   tr { break-inside: avoid; page-break-inside: avoid; }
   .box { background: none; }
+  figure svg { width: 12cm; height: auto; max-width: 100%; }
 }
 @page { margin: 15mm 14mm; }
 """
