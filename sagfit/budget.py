@@ -188,7 +188,7 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
     reason = tuple(None if valid[k] else
                    (fits.error[k] or ("not fitted" if not ok_dut[k] else
                                       "the fit did not use these readings as given "
-                                      "(subset or robust refit); no budget"))
+                                      "(a refit on a subset, or robust weights)"))
                    for k in range(m)) if not valid.all() else (None,) * m
 
     coef = {("vth", "V"): ca_y, ("vth", "I"): -bb * ca_y,

@@ -258,7 +258,7 @@ class TestJson:
         used[-1] = False
         b = budget_arrays(rd, fits, used=used)
         assert not b.valid[0]
-        assert "no budget" in b.reason[0]
+        assert "did not use these readings" in b.reason[0]
 
 
 class TestShapes:
