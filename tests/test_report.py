@@ -147,6 +147,20 @@ class TestSampleRuns:
         assert run.code == 2 and "--figures" in run.err and "Traceback" not in run.err
 
 
+class TestStartUp:
+    def test_fit_without_report_never_imports_matplotlib(self):
+        """`sagfit fit` without --report leaves matplotlib unimported (start-up time)."""
+        import subprocess
+        import sys
+
+        code = ("import sys\nfrom sagfit.cli import main\ntry:\n    main(['fit', %r, '--json'])\n"
+                "except SystemExit:\n    pass\nsys.stderr.write(str('matplotlib' in sys.modules))"
+                % str(SAMPLES / "pack_a.csv"))
+        run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                             timeout=120)
+        assert run.stderr.strip().endswith("False"), run.stderr[-500:]
+
+
 class TestSafety:
     def test_refuses_an_input_file_as_folder(self, cli, tmp_path):
         """--report naming the input file is refused and the file is left unchanged."""
