@@ -17,7 +17,8 @@ from __future__ import annotations
 import datetime as _dt
 from typing import Iterable, Mapping
 
-__all__ = ["date_of_test", "instrument_rows", "calibration_warnings", "DUE_SOON_DAYS"]
+__all__ = ["date_of_test", "instrument_rows", "calibration_warnings", "traceability_record",
+           "DUE_SOON_DAYS"]
 
 DUE_SOON_DAYS = 30  # "due soon" note: sagfit's own choice, a month's notice
 _ROLE_WORDS = {"voltage": "voltmeter", "current": "ammeter", "load": "load resistors"}
@@ -113,3 +114,14 @@ def calibration_warnings(instruments: Iterable, test_date: _dt.date) -> list[str
                    f"{test_date.isoformat()}: the readings it gave are outside its "
                    "calibration interval; have it calibrated and review these results")
     return out
+
+
+def traceability_record(instruments: Iterable, meta: Mapping | None,
+                        today: _dt.date | None = None) -> dict:
+    """Everything above as one JSON-ready dict, for a results document:
+    ``{"test_date", "test_date_source", "instruments": [rows], "warnings": [str]}``."""
+    when, source = date_of_test(meta, today=today)
+    instruments = list(instruments or ())
+    return {"test_date": when.isoformat(), "test_date_source": source,
+            "instruments": instrument_rows(instruments, when),
+            "warnings": calibration_warnings(instruments, when)}

@@ -54,3 +54,16 @@ class TestCalibration:
         as_json = [i.to_dict() for i in self.INST]
         assert calibration_warnings(as_json, D(2026, 11, 3)) == \
             calibration_warnings(self.INST, D(2026, 11, 3))
+
+
+class TestRecord:
+    def test_record_is_json_ready(self):
+        """The record has the test date, its source, the rows and the warnings."""
+        import json
+
+        from sagfit.traceability import traceability_record
+
+        rec = traceability_record(TestCalibration.INST, {"date": "2026-11-03"})
+        assert rec["test_date"] == "2026-11-03" and rec["test_date_source"] == "file"
+        assert len(rec["instruments"]) == 3 and len(rec["warnings"]) == 1
+        json.dumps(rec, allow_nan=False)
