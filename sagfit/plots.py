@@ -347,7 +347,8 @@ def knee_point(fits, i: int) -> tuple[float, float] | None:
 def dut_curves(readings, fits, i: int, currents: np.ndarray) -> dict:
     """Line, confidence and prediction half-widths of DUT ``i`` at ``currents``.
 
-    The confidence band is k·u(V̂(I)) with u²(V̂) = u²(Vth) + I²·u²(Rth) − 2·I·u(Vth, Rth)
+    The confidence band is k·u(V̂(I)) with
+    u²(V̂) = u²(Vth) + I²·u²(Rth) − 2·I·u(Vth, Rth)
     (scale factor included, GUM 5.2.2). The prediction band for one new reading adds the
     variance of that reading's own error e = δV + Rth·δI, u²(e) = u²(V) + Rth²u²(I) +
     2·Rth·u(I, V), interpolated in current from the readings and multiplied by the same

@@ -515,8 +515,8 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
                                  ("Pmax (into R = Rth)", fi.pmax, "W")):
             rows.append(f"<tr><td>{_e(label)}</td>"
                         f"<td class='num'>{_e(format_estimate(est.value, est.u, unit))}</td>"
-                        f"<td class='num'>{_e(format_interval(est.ci_low, est.ci_high, unit, est.u))}"
-                        "</td></tr>")
+                        "<td class='num'>"
+                        f"{_e(format_interval(est.ci_low, est.ci_high, unit, est.u))}</td></tr>")
         p = format_p(fi.p_value)
         parts.append("<table><tr><th>Quantity</th><th class='num'>value ± u</th>"
                      f"<th class='num'>{_e(lvl)} interval (k = {fi.coverage_factor:.3g})</th>"
@@ -627,6 +627,9 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
         sec_note = f"Per-DUT sections for {why}."
 
     methods = "".join(f"<li>{_e(what)} — {_e(src_)}</li>" for what, src_ in METHODS)
+    limiting = ""
+    if len(fits) > 1 and bud.valid.any():
+        limiting = "<h3>Which input limits the result</h3>" + _limiting_table(bud)
     page = f"""<!DOCTYPE html>
 <html lang="en">
 <head>
@@ -651,7 +654,7 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
 <h2>Results</h2>
 {''.join(summary)}
 {hist_html}
-{("<h3>Which input limits the result</h3>" + _limiting_table(bud)) if len(fits) > 1 and bud.valid.any() else ""}
+{limiting}
 <h2>Per-DUT results</h2>
 <p class="muted">{_e(sec_note)}</p>
 {''.join(sections)}

@@ -67,7 +67,8 @@ _MEASURE = r"""<script nonce="sagfit-test">
       var img = new Image();
       img.onload = function () {
         var c = document.createElement("canvas");
-        c.width = 320; c.height = Math.max(1, Math.round(320 * box.height / Math.max(box.width, 1)));
+        c.width = 320;
+        c.height = Math.max(1, Math.round(320 * box.height / Math.max(box.width, 1)));
         var g = c.getContext("2d"); g.fillStyle = "#fff"; g.fillRect(0, 0, c.width, c.height);
         g.drawImage(img, 0, 0, c.width, c.height);
         var d = g.getImageData(0, 0, c.width, c.height).data, ink = 0;
