@@ -10,8 +10,8 @@ import sys
 
 def main() -> None:
     try:
-        from sagfit.cli import main as cli_main
+        from sagfit.cli import run_program
     except KeyboardInterrupt:
         sys.stderr.write("error: interrupted\n")
         sys.exit(130)
-    cli_main()
+    run_program()

@@ -1,5 +1,5 @@
 """``python -m sagfit`` runs the command-line tool."""
-from sagfit.cli import main
+from sagfit.cli import run_program
 
 if __name__ == "__main__":
-    main()
+    run_program()

@@ -349,28 +349,25 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence)
 
 def _basic_flags(readings: Readings, m, bad, stated, scale, dof, converged):
     """Flags the fit itself raises: cross-check notes, Type A fallback, scale applied."""
-    flags: list[tuple[Flag, ...]] = [()] * m  # most DUTs have none: share one empty tuple
-
-    def add(k, flag):
-        flags[k] = flags[k] + (flag,)
-
-    for note in readings.notes:
-        if not bad[note.group]:
-            add(note.group, Flag(note.code, note.severity, note.message))
-    # one shared Flag per kind: a 100 000-DUT batch must not build 100 000 messages
+    # One shared Flag per kind, and one shared tuple per combination of kinds: a
+    # 100,000-DUT batch must not build 100,000 messages or tuples.
     type_a = Flag("type-a", "info",
                   "no measurement uncertainty stated: the uncertainty comes from the scatter "
                   "alone (Type A, Student t with n − 2 degrees of freedom); state the meter "
                   "accuracy and resistor tolerance for an uncertainty a lab can defend")
-    for k in np.flatnonzero(~stated & ~bad).tolist():
-        add(k, type_a)
     scaled = Flag("scale-applied", "info",
                   "scatter exceeds the stated uncertainties (χ²/ν > 1): the covariance was "
                   "enlarged by S² = χ²/ν (PDG convention, never reduced; see scale_factor)")
-    for k in np.flatnonzero(stated & ~bad & (scale > 1.0)).tolist():
-        add(k, scaled)
-    for k in np.flatnonzero(~converged & ~bad).tolist():
-        add(k, Flag("not-converged", "warning",
-                    "the errors-in-variables iteration did not converge; treat the result "
-                    "with caution"))
+    unconverged = Flag("not-converged", "warning",
+                       "the errors-in-variables iteration did not converge; treat the result "
+                       "with caution")
+    kinds = (type_a, scaled, unconverged)
+    with np.errstate(invalid="ignore"):
+        bits = ((~stated & ~bad) * 1 + (stated & ~bad & (scale > 1.0)) * 2
+                + (~converged & ~bad) * 4)
+    combos = [tuple(k for j, k in enumerate(kinds) if c >> j & 1) for c in range(8)]
+    flags = [combos[c] for c in bits.tolist()]
+    for note in readings.notes:
+        if not bad[note.group]:
+            flags[note.group] = (Flag(note.code, note.severity, note.message),) + flags[note.group]
     return tuple(flags)

@@ -137,7 +137,9 @@ def _decode_head(data: bytes, path: str) -> tuple[str, str]:
         raise ReadingsFileError(path, "this is a binary file, not a CSV text file "
                                       "(NUL bytes found); export the readings as CSV")
     try:
-        text = data.decode(enc)
+        # plain ASCII (the usual instrument export) is valid UTF-8: look at the head only
+        text = data[:65536].decode("ascii") if enc == "utf-8" and data.isascii() else \
+            data.decode(enc)
     except UnicodeDecodeError as exc:
         if enc != "utf-8":
             raise ReadingsFileError(path, f"cannot decode the file as {enc}: {exc.reason}") from None
@@ -610,6 +612,9 @@ def table_csv(columns: Mapping[str, object]) -> str:
             if col.dtype.kind in "iub":
                 parts.append(col.astype(np.int64).tolist())
                 fmts.append("%d")
+            elif col.size and np.isfinite(col[0]) and (col == col[0]).all():
+                parts.append(["%.10g" % col[0]] * col.size)  # a constant: format it once
+                fmts.append("%s")
             elif np.isfinite(col).all():
                 parts.append(col.tolist())
                 fmts.append("%.10g")
