@@ -293,6 +293,16 @@ def _curvature(R: _Rows, level):
     return out, test, run
 
 
+def _cumsum_rows(v: np.ndarray) -> np.ndarray:
+    """``np.cumsum(v, axis=1)`` for many short rows: one vector add per column is several
+    times faster than numpy's per-row loop when rows hold only 5–20 readings."""
+    out = np.empty_like(v)
+    out[:, 0] = v[:, 0]
+    for j in range(1, v.shape[1]):
+        np.add(out[:, j - 1], v[:, j], out=out[:, j])
+    return out
+
+
 def _knee(R: _Rows, level):
     """Broken line: search the split on orthogonal distances, refit it with York weights."""
     m, g = R.m, R.g
@@ -341,7 +351,7 @@ def _knee(R: _Rows, level):
         X = np.take_along_axis(X, order, 1)
         Y = np.take_along_axis(Y, order, 1)
         key = np.take_along_axis(key, order, 1)
-        c = [np.cumsum(v, axis=1) for v in (X, Y, X * X, X * Y, Y * Y)]
+        c = [_cumsum_rows(v) for v in (X, Y, X * X, X * Y, Y * Y)]
         tot = [v[:, -1:] for v in c]
         j = np.arange(2, size - 1)  # size of the first segment
         n1 = j[None, :].astype(float)

@@ -250,7 +250,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     """Parse the bytes of a readings CSV (see :func:`read_readings`)."""
     import pandas as pd
 
-    if not data.strip():
+    if not data or data.isspace():
         raise ReadingsFileError(name, "the file is empty")
     import hashlib
 
@@ -557,12 +557,25 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
         "corr_vth_rth": _corr(fits),
         "chi2": fits.chi2, "dof": fits.dof, "p_value": fits.p_value,
         "coverage_factor": k, "confidence": np.full(len(fits), fits.confidence),
-        "flags": [";".join(f.code for f in fl) for fl in fits.flags],
+        "flags": _flag_codes(fits.flags),
         "error": [e or "" for e in fits.error],
     }
     if extra_columns:
         cols.update(extra_columns)
     return cols
+
+
+def _flag_codes(flags) -> list[str]:
+    """'code;code' per DUT; most DUTs share a handful of flag tuples, so join each once."""
+    cache: dict[int, str] = {}
+    out = []
+    for fl in flags:
+        key = id(fl)
+        text = cache.get(key)
+        if text is None:
+            text = cache[key] = ";".join(f.code for f in fl)
+        out.append(text)
+    return out
 
 
 def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
@@ -623,7 +636,10 @@ def table_csv(columns: Mapping[str, object]) -> str:
                 parts.append(["%.10g" % x if f else "" for x, f in zip(col.tolist(), ok.tolist())])
                 fmts.append("%s")
         else:
-            vals = ["" if v is None else str(v) for v in col]
+            if isinstance(col, list) and all(type(v) is str for v in col[:1]):
+                vals = col  # a list of text (homogeneous by construction)
+            else:
+                vals = ["" if v is None else str(v) for v in col]
             parts.append(_csv_text_column(vals))
             fmts.append("%s")
         if nrows is None:

@@ -280,7 +280,9 @@ class Readings:
         # ---- DUT grouping
         if group is not None:
             g = np.asarray(group, dtype=np.int64).ravel()
-            names = tuple(str(d) for d in (duts or ()))
+            names = tuple(duts or ())
+            if names and type(names[0]) is not str:
+                names = tuple(str(d) for d in names)
             if g.size != n or (g.size and (g.min() < 0 or g.max() >= len(names))):
                 raise InputError(f"{source}: group codes do not match the DUT names")
         elif dut is not None:

@@ -311,8 +311,20 @@ class Fits:
 
     def add_flags(self, new_flags) -> "Fits":
         """A new ``Fits`` with ``new_flags[i]`` (a sequence of Flag) appended to DUT i."""
-        merged = tuple(a + tuple(b) if b else a for a, b in zip(self.flags, new_flags))
-        return self.replace(flags=merged)
+        # DUTs share flag tuples (one per combination); keep them shared, so that a large
+        # batch holds a handful of tuples instead of one per DUT
+        cache: dict[tuple[int, int], tuple] = {}
+        merged = []
+        for a, b in zip(self.flags, new_flags):
+            if not b:
+                merged.append(a)
+                continue
+            key = (id(a), id(b))
+            t = cache.get(key)
+            if t is None:
+                t = cache[key] = tuple(a) + tuple(b)
+            merged.append(t)
+        return self.replace(flags=tuple(merged))
 
     def to_dicts(self) -> list[dict]:
         """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit fit --json``).
