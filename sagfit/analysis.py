@@ -95,7 +95,8 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         new = [tuple(notes.get(k, ())) for k in range(len(fits))]
         fits = fits.add_flags(new)
     extra["prediction"] = prediction_fields(used, fits)
-    fits = fits.replace(extra=extra)
+    excluded = reason != ""
+    fits = fits.replace(extra=extra, used_rows=~excluded if excluded.any() else None)
     settings = dict(fits.settings)
     settings.update(level=float(level),
                     current_range=None if current_range is None

@@ -485,6 +485,9 @@ def _diagnostics_rows(diag: Mapping) -> str:
 def used_rows(readings, fits) -> np.ndarray | None:
     """Rows the fit used, where the settings say (``current_range``); None when all were
     used or it cannot be told (the budget then checks the line itself)."""
+    mask = getattr(fits, "used_rows", None)
+    if mask is not None and len(mask) == len(readings):
+        return np.asarray(mask, bool)
     rng = (getattr(fits, "settings", None) or {}).get("current_range")
     if not rng:
         return None

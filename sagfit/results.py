@@ -216,6 +216,9 @@ class Fits:
     confidence : float
     settings : mapping
         The settings used (for reports and the history).
+    used_rows : ndarray of bool or None
+        Over the rows of the readings: which readings the final fit used, when an option
+        (``current_range``, ``below_knee``) left some out; ``None`` when all were used.
     """
 
     duts: tuple[str, ...]
@@ -242,6 +245,7 @@ class Fits:
     diagnostics: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
     extra: Mapping[str, object] = field(default_factory=dict)
     settings: Mapping[str, object] = field(default_factory=dict)
+    used_rows: np.ndarray | None = None
 
     def __post_init__(self):
         for name in _ARRAY_FIELDS:

@@ -113,6 +113,7 @@ class TestOptions:
         (["--bench", "nope.toml"], "nope.toml"),
         (["--current-range", "5"], "--current-range"),
         (["--frobnicate"], "No such option"),
+        (["--report", "rep", "--figures", "some"], "--figures"),
     ])
     def test_bad_options(self, cli, args, words):
         """A bad option value: exit 2 and one error line naming the option."""
@@ -135,6 +136,28 @@ class TestOptions:
                            "--json").out)
         assert b["results"][0]["vth"]["u"] > a["results"][0]["vth"]["u"]
         assert b["settings"]["voltage_accuracy"]["text"] == "1%+10mV"
+
+
+class TestTraceability:
+    def test_past_due_calibration_is_a_warning(self, cli, tmp_path):
+        """A bench instrument whose calibration was due before the file's test date gives a
+        warning in the JSON and on the terminal (traceability, common practice of
+        calibration labs: ISO/IEC 17025 requires calibrated equipment; clause from memory)."""
+        b = tmp_path / "b.toml"
+        b.write_text('[voltage]\naccuracy = "0.015%+2mV"\ninstrument = "DMM-OLD"\n'
+                     'calibration_due = 2026-01-31\n')
+        doc = json.loads(cli("fit", PACK, "--bench", b, "--json").out)
+        assert doc["traceability"]["test_date"] == "2026-11-03"
+        assert len(doc["warnings"]) == 1 and "DMM-OLD" in doc["warnings"][0]
+        assert "warning: calibration" in cli("fit", PACK, "--bench", b).out
+
+    def test_budget_in_json(self, cli):
+        """Each fitted DUT carries an uncertainty budget whose components add up to u(Vth)."""
+        doc = json.loads(cli("fit", PACK, "--bench", BENCH, "--json").out)
+        bud = doc["results"][0]["budget"]["vth"]
+        total = sum(c["contribution"] ** 2 for c in bud["components"]) ** 0.5
+        assert total == pytest.approx(bud["u_combined"], rel=1e-9)
+        assert bud["dominant"] in {"voltage", "current", "load", "scale"}
 
 
 class TestTerminal:

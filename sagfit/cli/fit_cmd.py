@@ -46,20 +46,23 @@ def fit_command(
     short-circuit current and maximum power, with uncertainties."""
     with guarded(file):
         from ..analysis import fit
+        from ..errors import OptionError
         from ..outputs import check_output_path
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence)
         if not 0.0 < level < 0.5:
-            from ..errors import OptionError
-
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
+        if report:
+            from ..report import FIGURE_CHOICES
+
+            if figures not in FIGURE_CHOICES:
+                raise OptionError("--figures", f"{figures!r}: choose one of "
+                                               f"{', '.join(FIGURE_CHOICES)}")
         if out:
             check_output_path(out, [file] + ([bench] if bench else []))
             if not out.lower().endswith((".csv", ".json")):
-                from ..errors import OptionError
-
                 raise OptionError("--out", f"{out}: use a .csv or .json file name")
         show = interactive() and not json_out
         with progress("reading " + file, show) as step:
@@ -69,6 +72,11 @@ def fit_command(
                        current_range=parse_current_range(current_range),
                        below_knee=below_knee, robust=robust)
         need_results = bool(json_out or report or (out and out.lower().endswith(".json")))
+        if need_results:
+            from ..budget import budgets
+
+            fits = fits.replace(extra={**fits.extra,
+                                       "budget": budgets(readings, fits, used=fits.used_rows)})
         doc = fit_document(fits, readings, settings, results=need_results)
         if all(e is not None for e in fits.error):
             from ..errors import ReadingsFileError
@@ -118,7 +126,10 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
     from .. import __version__
     from ..safety import cautions
 
+    from ..traceability import traceability_record
+
     power = readings.voltage * readings.current
+    trace = traceability_record(settings.get("instruments", ()), readings.meta)
     return {
         "tool": "sagfit",
         "version": __version__,
@@ -127,6 +138,8 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
                   "date": readings.meta.get("date"),
                   "duts": len(fits), "readings": len(readings)},
         "settings": settings_record(settings),
+        "traceability": trace,
+        "warnings": trace["warnings"],
         "results": fits.to_dicts() if results else [],
         "cautions": cautions(vth=fits.vth, isc=fits.isc, reading_power=power,
                              voltages=readings.voltage),

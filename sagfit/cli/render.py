@@ -88,6 +88,8 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
             console.print(f"{k.replace('_', ' ')}: {s[k]['text'] if s[k] else 'not stated'}")
         console.print(f"load tolerance: "
                       f"{str(s['load_tolerance_pct']) + ' %' if s['load_tolerance_pct'] is not None else 'not stated'}")
+    for w in doc.get("warnings", []):
+        console.print(f"warning: {w}", markup=False)
     for c in doc.get("cautions", []):
         console.print(f"caution: {c}", markup=False)
 
