@@ -212,3 +212,29 @@ class TestPredictCommand:
         assert res.code == 2
         assert res.err.startswith("error:") and res.err.count("\n") == 1 and text in res.err
         assert "Traceback" not in res.err
+
+
+class TestPredictCautions:
+    def test_beyond_short_circuit_current_and_cautions(self, tmp_path):
+        """A set current beyond Isc is flagged (no passive load draws it), and a short on a
+        high-current pack brings the usual caution (safety practice: compute Isc, never
+        measure it; common practice)."""
+        import json as _json
+
+        from sagfit.cli import main
+
+        saved = tmp_path / "fit.json"
+        with pytest.raises(SystemExit):
+            main(["fit", str(SAMPLES / "pack_a.csv"), "--out", str(saved)])
+        out = tmp_path / "p.json"
+        import contextlib
+        import io as _io
+
+        buf = _io.StringIO()
+        with contextlib.redirect_stdout(buf), pytest.raises(SystemExit) as e:
+            main(["predict", str(saved), "--load", "short", "--current", "1e6", "--json"])
+        assert e.value.code == 0
+        doc = _json.loads(buf.getvalue())
+        assert any("negative" in w for w in doc["warnings"])
+        assert any("Compute Isc" in c for c in doc["cautions"])
+        assert not out.exists()

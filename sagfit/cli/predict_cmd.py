@@ -39,11 +39,42 @@ def predict_command(
         names = [d.strip() for d in dut.split(",") if d.strip()] if dut else None
         models = models_from_document(doc, results, names)
         preds = predict(models, loads=loads, currents=currents, confidence=confidence)
+        warnings, cautions = _warnings_and_cautions(preds, models)
         if json_out:
             write_stdout(dumps({"tool": "sagfit", "source": results,
-                                "predictions": [p.to_dict() for p in preds]}))
+                                "predictions": [p.to_dict() for p in preds],
+                                "warnings": warnings, "cautions": cautions}))
         else:
             _print(preds, models)
+            from .render import _console
+
+            console = _console()
+            for w in warnings:
+                console.print(f"warning: {w}", markup=False)
+            for c in cautions:
+                console.print(f"caution: {c}", markup=False)
+
+
+def _warnings_and_cautions(preds, models) -> tuple[list[str], list[str]]:
+    """Operating points no passive load reaches, and the usual safety cautions."""
+    from ..formatting import format_value
+    from ..safety import cautions
+
+    warnings = []
+    for p in preds:
+        if p.voltage.value < 0:
+            warnings.append(
+                f"{p.dut}: at {format_value(p.current.value, 'A')} the terminal voltage would "
+                "be negative: beyond the short-circuit current no passive load draws this; "
+                "the source would have to be driven by another supply")
+    # dissipation in the predicted load: V·I at the operating point
+    load_power = [p.voltage.value * p.current.value for p in preds
+                  if p.voltage.value > 0 and p.current.value > 0]
+    text = cautions(vth=[m.vth for m in models],
+                    isc=[p.current.value for p in preds if p.load_ohm == 0] +
+                        [m.vth / m.rth for m in models if m.rth > 0],
+                    reading_power=load_power)
+    return warnings, text
 
 
 def _resistance(text: str) -> float:
