@@ -141,9 +141,24 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
         "traceability": trace,
         "warnings": trace["warnings"],
         "results": fits.to_dicts() if results else [],
-        "cautions": cautions(vth=fits.vth, isc=fits.isc, reading_power=power,
+        "cautions": cautions(vth=fits.vth, isc=_prospective_isc(fits), reading_power=power,
                              voltages=readings.voltage),
     }
+
+
+def _prospective_isc(fits):
+    """Isc for the cautions: where a knee showed the source limiting its current (a supply
+    in current limit, foldback), the knee current, not the line's extrapolation."""
+    import numpy as np
+
+    knee_i = np.asarray(fits.diagnostics.get("knee", {}).get("current", np.full(len(fits), np.nan)),
+                        dtype=float)
+    seen: dict[int, bool] = {}  # flag tuples are shared between DUTs: test each once
+    limited = np.fromiter(
+        (seen[id(fl)] if id(fl) in seen else
+         seen.setdefault(id(fl), any(f.code in ("knee", "below-knee") for f in fl))
+         for fl in fits.flags), dtype=bool, count=len(fits))
+    return np.where(limited & np.isfinite(knee_i), np.abs(knee_i), fits.isc)
 
 
 def write_results(out: str, fits, doc, inputs) -> None:
