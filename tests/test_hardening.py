@@ -325,6 +325,42 @@ class TestOutputs:
             assert leftovers == [], leftovers
 
 
+    def test_sigint_during_record_keeps_the_history_consistent(self, tmp_path):
+        """Ctrl-C during `record` of a large file: the earlier records stay, the database
+        passes SQLite's integrity check, and nothing of the interrupted run is half-written."""
+        import sqlite3
+
+        from sagfit.simulate import run_csv_text, simulate
+
+        db = tmp_path / "h.sqlite"
+        small = tmp_path / "small.csv"
+        small.write_text("# date: 2026-10-01\n" + (SAMPLES / "fleet_packs.csv").read_text())
+        first = subprocess.run([sys.executable, "-c", ENTRY, "record", str(small), "--db",
+                                str(db)], capture_output=True, text=True, timeout=120)
+        assert first.returncode == 0, first.stderr
+        before = sqlite3.connect(db).execute("SELECT COUNT(*) FROM results").fetchone()[0]
+        run = simulate(12.6, 0.05, [math.inf, 10, 4.7, 2.2, 1.0], duts=60_000, seed=5,
+                       voltage_accuracy=Accuracy(0.015, 0.002), load_tolerance=1.0)
+        big = tmp_path / "big.csv"
+        big.write_text("# date: 2026-11-01\n" + run_csv_text(run, ["INVENTED test data"]))
+        for delay in (0.5, 1.5, 2.5):
+            proc = subprocess.Popen([sys.executable, "-c", ENTRY, "record", str(big), "--db",
+                                     str(db)], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+            time.sleep(delay)
+            proc.send_signal(signal.SIGINT)
+            _, err = proc.communicate(timeout=180)
+            assert b"Traceback" not in err
+            con = sqlite3.connect(db)
+            assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+            n = con.execute("SELECT COUNT(*) FROM results").fetchone()[0]
+            con.close()
+            if proc.returncode == 0:  # it finished first: all of it is there
+                assert n == before + 60_000
+                break
+            assert proc.returncode == 130, err
+            assert n == before  # the interrupted run left nothing behind
+
+
 # ------------------------------------------------------------------------ numerics
 def divider(vth, rth, r):
     """Closed-form terminal voltage of a Thevenin source into r (r = inf: open circuit)."""
