@@ -338,7 +338,9 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         frame = pd.read_csv(
             io.BytesIO(body), sep=delim, header=None, names=list(range(len(names))),
             usecols=usecols, decimal=decimal,
-            dtype={roles[r].index: str for r in roles if r in text_roles},
+            # text columns as categories: the tokenizer interns the few distinct ids and
+            # load codes, instead of making a Python string per cell (faster, less memory)
+            dtype={roles[r].index: "category" for r in roles if r in text_roles},
             skip_blank_lines=False, engine="c", encoding="utf-8", quotechar='"',
             keep_default_na=True, na_values=[""], low_memory=False)
     except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
@@ -383,21 +385,15 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     if "load_tolerance" in roles:
         kwargs["load_tolerance_pct"] = numeric("load_tolerance")
     if "load" in roles:
-        loads = column("load")
-        if decimal == ",":
-            loads = loads.str.replace(",", ".", regex=False)
-        kwargs["load"] = _parse_loads(loads, roles["load"].scale, name, header_of("load"),
-                                      lines_of_rows)
+        kwargs["load"] = _parse_loads(column("load"), roles["load"].scale, name,
+                                      header_of("load"), lines_of_rows, decimal)
     if "time" in roles:
         kwargs["time"] = _parse_times(column("time"), roles["time"].scale, name,
                                       header_of("time"), lines_of_rows)
     if "dut" in roles:
-        s = column("dut")
-        empty = s.isna().to_numpy()
-        if empty.any():
-            row_error("dut", int(np.flatnonzero(empty)[0]), "empty DUT id")
-        codes, uniques = pd.factorize(s, sort=False)
-        names_u = [str(u) for u in uniques.tolist()]
+        codes, names_u = _categories(column("dut"))
+        if (codes < 0).any():
+            row_error("dut", int(np.flatnonzero(codes < 0)[0]), "empty DUT id")
         stripped = [u.strip() for u in names_u]
         if stripped != names_u:  # ' A' and 'A' are one DUT: merge after stripping
             codes2, names2 = pd.factorize(pd.Series(stripped, dtype=object), sort=False)
@@ -409,8 +405,8 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         kwargs["group"] = np.zeros(lines_of_rows.size, np.int64)
         kwargs["duts"] = [stem or "DUT"]
     if "group" in roles:
-        s = column("group").fillna("")
-        meta["group_labels"] = s.to_numpy(dtype=object)
+        codes, labels = _categories(column("group"))
+        meta["group_labels"] = np.asarray(labels + [""], dtype=object)[codes]
     if "temperature" in roles:
         meta["temperature_C"] = numeric("temperature")
     columns = {r: roles[r].header for r in roles}
@@ -475,25 +471,45 @@ def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int)
     return lines, b"\n".join(body[starts[k]:ends[k]] for k in rows)
 
 
-def _parse_loads(s, scale: float, name: str, header: str, lines) -> np.ndarray:
-    """Load cells → ohms: each distinct spelling is parsed once (a sweep has few loads)."""
-    import pandas as pd
+def _categories(s) -> tuple[np.ndarray, list[str]]:
+    """Codes (−1 for an empty cell) and texts of a categorical column, numbered in order of
+    first appearance in the file (pandas sorts categories; users expect file order)."""
+    codes = np.asarray(s.cat.codes, dtype=np.int64)
+    cats = [str(c) for c in s.cat.categories.tolist()]
+    present = codes >= 0
+    if not present.any():
+        return codes, []
+    # first appearance, found from the runs of equal codes (rows of one DUT are usually
+    # together, so there are about as many runs as DUTs)
+    c = codes[present]
+    starts = np.concatenate(([0], np.flatnonzero(c[1:] != c[:-1]) + 1))
+    seq = c[starts]
+    uniq, first = np.unique(seq, return_index=True)
+    order = uniq[np.argsort(first, kind="stable")]
+    remap = np.full(len(cats), -1, dtype=np.int64)
+    remap[order] = np.arange(order.size)
+    out = np.where(present, remap[np.maximum(codes, 0)], -1)
+    return out, [cats[k] for k in order.tolist()]
 
-    codes, uniques = pd.factorize(s, use_na_sentinel=True)
+
+def _parse_loads(s, scale: float, name: str, header: str, lines, decimal: str = ".") -> np.ndarray:
+    """Load cells → ohms: each distinct spelling is parsed once (a sweep has few loads)."""
+    codes, uniques = _categories(s)
     if (codes < 0).any():
         k = int(np.flatnonzero(codes < 0)[0])
         raise ReadingsFileError(name, "empty load cell (write a resistance such as 4.7k, or "
                                       "'open')", line=int(lines[k]), column=header)
     values = np.empty(len(uniques))
-    for j, text in enumerate(uniques.tolist()):
+    for j, text in enumerate(uniques):
+        spelled = text.replace(",", ".") if decimal == "," else text
         try:
-            values[j] = parse_resistance(str(text), scale)
+            values[j] = parse_resistance(spelled, scale)
         except ValueError as exc:
             k = int(np.flatnonzero(codes == j)[0])
             raise ReadingsFileError(name, str(exc), line=int(lines[k]), column=header) from None
         if math.isnan(values[j]) or values[j] == -math.inf:
             k = int(np.flatnonzero(codes == j)[0])
-            raise ReadingsFileError(name, f"{str(text)[:40]!r} is not a load resistance",
+            raise ReadingsFileError(name, f"{text[:40]!r} is not a load resistance",
                                     line=int(lines[k]), column=header)
     return values[codes]
 
