@@ -17,11 +17,10 @@ Edge module (reads one file). Format, in docs/input-format.md::
 from __future__ import annotations
 
 import datetime as _dt
-import tomllib
 from dataclasses import dataclass, field
-from pathlib import Path
 
 from .errors import InputError, SpecFileError
+from .io_toml import check_layout, read_toml
 from .units import Accuracy, parse_accuracy, parse_percent
 
 __all__ = ["BenchProfile", "Instrument", "read_bench"]
@@ -61,34 +60,8 @@ class BenchProfile:
 
 def read_bench(path: str) -> BenchProfile:
     """Read and strictly validate a bench profile; ``SpecFileError`` names the key."""
-    p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise SpecFileError(path, "no such file") from None
-    except IsADirectoryError:
-        raise SpecFileError(path, "is a folder, not a bench profile") from None
-    except OSError as exc:
-        raise SpecFileError(path, f"cannot read the file ({exc.strerror or exc})") from None
-    if len(raw) > 1 << 20:
-        raise SpecFileError(path, "bench profile larger than 1 MiB; not a bench profile")
-    try:
-        doc = tomllib.loads(raw.decode("utf-8-sig"))
-    except UnicodeDecodeError:
-        raise SpecFileError(path, "not UTF-8 text") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise SpecFileError(path, f"not valid TOML ({exc})") from None
-    for section, body in doc.items():
-        if section not in _ALLOWED:
-            raise SpecFileError(path, f"unknown section (expected one of "
-                                      f"{', '.join(sorted(_ALLOWED))})", key=section)
-        if not isinstance(body, dict):
-            raise SpecFileError(path, "must be a table ([section])", key=section)
-        for key in body:
-            if key not in _ALLOWED[section]:
-                raise SpecFileError(path, f"unknown key (allowed: "
-                                          f"{', '.join(sorted(_ALLOWED[section]))})",
-                                    key=f"{section}.{key}")
+    doc = read_toml(path, "bench profile")
+    check_layout(doc, _ALLOWED, path)
     out: dict = {"path": str(path)}
     instruments = []
     for role, dim in (("voltage", "V"), ("current", "A")):

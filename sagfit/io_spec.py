@@ -40,16 +40,14 @@ from __future__ import annotations
 import hashlib
 import math
 import re
-import tomllib
-from pathlib import Path
 
 from .acceptance import RULES, Check, Condition, DecisionRule, Spec
 from .errors import InputError, SpecFileError
+from .io_toml import check_layout, parse_toml, read_bytes
 from .units import PREFIXES, parse_percent, parse_quantity, parse_resistance
 
 __all__ = ["read_spec", "parse_spec"]
 
-MAX_SPEC_BYTES = 1 << 20
 _SCALAR = {"vth": "V", "rth": "ohm", "isc": "A", "pmax": "W"}
 _LIMIT_KEYS = {"min", "max", "note"}
 _ALLOWED = {
@@ -81,45 +79,14 @@ def read_spec(path: str) -> Spec:
     SpecFileError
         With the file name and the key at fault.
     """
-    p = Path(path)
-    try:
-        if p.is_dir():
-            raise SpecFileError(path, "is a folder, not a spec file")
-        size = p.stat().st_size
-        if size > MAX_SPEC_BYTES:
-            raise SpecFileError(path, "larger than 1 MiB; not an acceptance spec")
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise SpecFileError(path, "no such file") from None
-    except PermissionError:
-        raise SpecFileError(path, "permission denied") from None
-    except OSError as exc:
-        raise SpecFileError(path, f"cannot read the file ({exc.strerror or exc})") from None
-    return parse_spec(raw, str(path))
+    return parse_spec(read_bytes(path, "spec file"), str(path))
 
 
 def parse_spec(raw: bytes | str, path: str = "<spec>") -> Spec:
     """Parse the text of a spec (see :func:`read_spec`)."""
     data = raw.encode("utf-8") if isinstance(raw, str) else raw
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError:
-        raise SpecFileError(path, "not UTF-8 text") from None
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise SpecFileError(path, f"not valid TOML ({exc})") from None
-    for section, body in doc.items():
-        if section not in _ALLOWED:
-            raise SpecFileError(path, "unknown section (expected "
-                                      f"{', '.join(sorted(_ALLOWED))})", key=section)
-        if not isinstance(body, dict):
-            raise SpecFileError(path, f"must be a table ([{section}])", key=section)
-        for key in body:
-            if key not in _ALLOWED[section]:
-                raise SpecFileError(path, "unknown key (allowed: "
-                                          f"{', '.join(sorted(_ALLOWED[section]))})",
-                                    key=f"{section}.{key}")
+    doc = parse_toml(data, path)
+    check_layout(doc, _ALLOWED, path)
     if "limits" not in doc or not doc["limits"]:
         raise SpecFileError(path, "no limits: add at least one table such as [limits.vth] "
                                   "with min and/or max", key="limits")

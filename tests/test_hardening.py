@@ -358,7 +358,11 @@ class TestOutputs:
                 assert n == before + 60_000
                 break
             assert proc.returncode == 130, err
-            assert n == before  # the interrupted run left nothing behind
+            # all or nothing: interrupted before its commit, the run left nothing behind;
+            # after it (while printing), everything is there
+            assert n in (before, before + 60_000)
+            if n != before:
+                break
 
 
 # ------------------------------------------------------------------------ numerics
