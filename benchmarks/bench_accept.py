@@ -42,22 +42,19 @@ rule = "guarded"
 """
 
 
-def make_file(path: Path, duts: int, per: int = 8, seed: int = 20261201) -> None:
-    """Write an invented readings file: ``duts`` boards × ``per`` current steps."""
-    rng = np.random.default_rng(seed)
-    vth = rng.normal(5.02, 0.02, duts)
-    rth = rng.lognormal(np.log(0.02), 0.25, duts)
-    current = np.tile(np.linspace(0.0, 1.5, per), duts) + rng.normal(0, 2e-4, duts * per)
-    v = np.repeat(vth, per) - np.repeat(rth, per) * current + rng.normal(0, 4e-4, duts * per)
-    names = np.repeat(np.char.add("RB-", np.char.zfill(np.arange(duts).astype(str), 6)), per)
-    with open(path, "w", encoding="utf-8") as fh:
-        fh.write("# INVENTED DATA: sagfit benchmark, regulator boards\n")
-        fh.write("dut,current_A,voltage_V\n")
-        body = np.char.add(np.char.add(np.char.add(names, ","),
-                                       np.char.mod("%.5f", current)),
-                           np.char.add(",", np.char.mod("%.5f", v)))
-        fh.write("\n".join(body.tolist()))
-        fh.write("\n")
+def make_file(path: Path, duts: int, seed: int = 20261201) -> None:
+    """Write an invented readings file with sagfit.simulate: ``duts`` 5 V regulator boards,
+    eight loads from open circuit to 1.5 A, voltage and current both read back."""
+    from sagfit.simulate import run_csv_text, simulate
+    from sagfit.units import parse_accuracy
+
+    loads = [float("inf"), 50.0, 20.0, 10.0, 6.8, 4.7, 3.9, 3.3]
+    run = simulate(5.02, 0.02, loads, duts=duts, seed=seed, vth_spread=0.004,
+                   rth_spread=0.25, measure_current=True, dut_prefix="RB-",
+                   voltage_accuracy=parse_accuracy("0.01%+0.5mV", "V"),
+                   current_accuracy=parse_accuracy("0.05%+0.5mA", "A"))
+    path.write_text(run_csv_text(run, ["INVENTED DATA: sagfit benchmark, regulator boards"]),
+                    encoding="utf-8")
 
 
 def run(cmd: list[str], cwd: Path) -> float:

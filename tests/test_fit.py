@@ -273,19 +273,23 @@ class TestDerived:
         assert f.to_dict()["isc"]["value"] is None and f.to_dict()["pmax"]["value"] is None
 
 
-def _simulate(n, rng, vth, rth, loads, uv, tol_pct, uniform_r=True):
-    """Seeded bench runs: each run draws its own resistor errors (invented test data)."""
+def _simulate(n, seed, vth, rth, loads, uv, tol_pct, uniform_r=True):
+    """Seeded bench runs (invented test data), each with its own resistors: sagfit.simulate
+    for rectangular resistor errors; Gaussian resistor errors, which sagfit.simulate does not
+    draw, by hand."""
+    if uniform_r:
+        from sagfit.simulate import simulate
+
+        run = simulate(vth, rth, list(loads), duts=n, seed=seed, per_dut_loads=True,
+                       voltage_accuracy=Accuracy(0.0, uv * math.sqrt(3)),
+                       load_tolerance=tol_pct, error_distribution="normal")
+        return run.load_ohm, run.voltage_V, run.group
+    rng = np.random.default_rng(seed)
     r_nom = np.tile(loads, n)
     g = np.repeat(np.arange(n), loads.size)
-    half = tol_pct / 100 * r_nom
     finite = np.isfinite(r_nom)
-    if uniform_r:
-        dr = rng.uniform(-1, 1, r_nom.size) * np.where(finite, half, 0)
-    else:
-        dr = rng.normal(0, 1, r_nom.size) * np.where(finite, half / math.sqrt(3), 0)
-    r_true = r_nom + dr
-    v_true = vth / (1 + rth / r_true)  # divider; r = inf gives Vth
-    v = v_true + rng.normal(0, uv, r_nom.size)
+    dr = rng.normal(0, 1, r_nom.size) * np.where(finite, tol_pct / 100 * r_nom / math.sqrt(3), 0)
+    v = vth / (1 + rth / (r_nom + dr)) + rng.normal(0, uv, r_nom.size)  # r = inf: Vth
     return r_nom, v, g
 
 
@@ -298,9 +302,8 @@ class TestCoverage:
     @pytest.mark.parametrize("uniform_r", [True, False], ids=["rect-R", "gauss-R"])
     def test_meter_and_tolerance(self, uniform_r):
         """A 12.6 V pack, 50 mΩ, loads open…0.47 Ω, 2 mV meter, 1 % resistors."""
-        rng = np.random.default_rng(2026)
         loads = np.array([np.inf, 10, 4.7, 2.2, 1.0, 0.47])
-        r, v, g = _simulate(self.N, rng, 12.6, 0.05, loads, 0.002, 1.0, uniform_r)
+        r, v, g = _simulate(self.N, 2026, 12.6, 0.05, loads, 0.002, 1.0, uniform_r)
         f = sagfit.fit(Readings.from_arrays(voltage=v, load=r, group=g,
                                             duts=[str(k) for k in range(self.N)],
                                             u_voltage=np.full(v.size, 0.002), load_tolerance=1.0))
@@ -313,10 +316,9 @@ class TestCoverage:
     def test_load_tolerance_dominates(self):
         """Rth comparable to the loads, 5 % resistors: ignoring the load uncertainty covers
         far less than 95 %; sagfit's errors-in-variables fit does not."""
-        rng = np.random.default_rng(4711)
         loads = np.array([np.inf, 10, 4.7, 2.2, 1.0])
         vth, rth = 5.0, 2.0
-        r, v, g = _simulate(self.N, rng, vth, rth, loads, 0.001, 5.0)
+        r, v, g = _simulate(self.N, 4711, vth, rth, loads, 0.001, 5.0)
         duts = [str(k) for k in range(self.N)]
         uv = np.full(v.size, 0.001)
         ours = sagfit.fit(Readings.from_arrays(voltage=v, load=r, group=g, duts=duts, u_voltage=uv,
