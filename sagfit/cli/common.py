@@ -148,13 +148,26 @@ def interactive() -> bool:
 
 
 @contextlib.contextmanager
-def progress(label: str, enabled: bool):
-    """A spinner/progress line on an interactive terminal; silent otherwise."""
+def progress(label: str, enabled: bool, total: int | None = None):
+    """A progress bar on stderr for an interactive terminal; silent otherwise.
+
+    Yields ``step(text)``: the work moved on to ``text`` (one of ``total`` stages when
+    given; a pulsing bar when the number of stages is not known).
+    """
     if not enabled:
         yield lambda text: None
         return
     from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-    console = Console(stderr=True)
-    with console.status(label) as status:
-        yield lambda text: status.update(text)
+    bar = Progress(TextColumn("{task.description}"), BarColumn(), TimeElapsedColumn(),
+                   console=Console(stderr=True), transient=True)
+    with bar:
+        task = bar.add_task(label, total=total)
+
+        def step(text: str) -> None:
+            bar.update(task, description=text, advance=1 if total else 0)
+
+        yield step
+        if total:
+            bar.update(task, completed=total)

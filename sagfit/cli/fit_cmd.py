@@ -64,33 +64,35 @@ def fit_command(
             check_output_path(out, [file] + ([bench] if bench else []))
             if not out.lower().endswith((".csv", ".json")):
                 raise OptionError("--out", f"{out}: use a .csv or .json file name")
-        show = interactive() and not json_out
-        with progress("reading " + file, show) as step:
+        show = interactive() and not json_out and _large(file)
+        with progress("reading " + file, show, total=4) as step:
             readings = load_readings(file, settings, dut)
-            step(f"fitting {readings.n_duts} DUT(s)")
+            step(f"fitting and checking {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"], level=level,
                        current_range=parse_current_range(current_range),
                        below_knee=below_knee, robust=robust)
-        need_results = bool(json_out or report or (out and out.lower().endswith(".json")))
-        if need_results:
-            from ..budget import budgets
+            step("preparing the results")
+            need_results = bool(json_out or report or (out and out.lower().endswith(".json")))
+            if need_results:
+                from ..budget import budgets
 
-            fits = fits.replace(extra={**fits.extra,
-                                       "budget": budgets(readings, fits, used=fits.used_rows)})
-        doc = fit_document(fits, readings, settings, results=need_results)
-        if all(e is not None for e in fits.error):
-            from ..errors import ReadingsFileError
+                fits = fits.replace(extra={**fits.extra, "budget": budgets(
+                    readings, fits, used=fits.used_rows)})
+            doc = fit_document(fits, readings, settings, results=need_results)
+            if all(e is not None for e in fits.error):
+                from ..errors import ReadingsFileError
 
-            first = next(e for e in fits.error)
-            who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
-            raise ReadingsFileError(file, who + first)
-        if out:
-            write_results(out, fits, doc, [file])
-        if report:
-            from ..report import write_report
+                first = next(e for e in fits.error)
+                who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
+                raise ReadingsFileError(file, who + first)
+            step("writing")
+            if out:
+                write_results(out, fits, doc, [file])
+            if report:
+                from ..report import write_report
 
-            write_report(report, fits, readings, doc, settings, figures=figures,
-                         inputs=[file] + ([bench] if bench else []))
+                write_report(report, fits, readings, doc, settings, figures=figures,
+                             inputs=[file] + ([bench] if bench else []))
         if json_out:
             write_stdout(dumps(doc))
         else:
@@ -98,6 +100,16 @@ def fit_command(
 
             print_fits(fits, readings, doc, verbose=verbose)
     raise typer.Exit(3 if any(e is not None for e in fits.error) else 0)
+
+
+def _large(path: str) -> bool:
+    """Worth a progress bar: a file of more than a few megabytes (about 10,000 readings)."""
+    import os
+
+    try:
+        return os.path.getsize(path) > 2_000_000
+    except OSError:
+        return False
 
 
 def parse_current_range(text: str | None):
