@@ -1,4 +1,11 @@
-"""Tests of sagfit.analysis.fit: fit + checks, --current-range, --below-knee, --robust."""
+"""Tests of sagfit.analysis.fit: fit + checks, --current-range, --below-knee, --robust.
+
+Mostly behaviour (plumbing) on invented, seeded data. The robust refit is Huber's
+M-estimator (P. J. Huber, E. M. Ronchetti, *Robust Statistics*, 2nd ed. 2009, ch. 4;
+c = 1.345 from memory) and is checked here against the known truth of the simulated
+source, not against a published value; the diagnostics themselves are checked against
+their references (NIST StRD Pontius, statsmodels) in test_diagnostics.py.
+"""
 
 from __future__ import annotations
 

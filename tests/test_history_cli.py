@@ -1,4 +1,9 @@
-"""Tests of ``sagfit record`` and ``sagfit trend`` on the invented fleet history."""
+"""Tests of ``sagfit record`` and ``sagfit trend`` on the invented fleet history.
+
+Plumbing and end-to-end behaviour; the numbers behind the trends are checked against
+outside references (statsmodels WLS, the closed-form crossing date, Fieller's interval)
+in test_trend.py. The 30 % group limit is common practice (from memory).
+"""
 
 from __future__ import annotations
 
