@@ -23,6 +23,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from ._frozen import freeze_arrays
 from .errors import InputError, ReadingsFileError
 from .units import Accuracy
 
@@ -37,12 +38,6 @@ class Note:
     code: str
     message: str
     severity: str = "warning"
-
-
-def _ro(a: np.ndarray) -> np.ndarray:
-    a = np.ascontiguousarray(a)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True, slots=True)
@@ -95,11 +90,8 @@ class Readings:
     meta: Mapping[str, object] = field(default_factory=dict)
 
     def __post_init__(self):
-        for name in ("group", "current", "voltage", "u_current", "u_voltage", "cov_iv",
-                     "load", "time", "line"):
-            a = getattr(self, name)
-            if a.flags.writeable:
-                object.__setattr__(self, name, _ro(a))
+        freeze_arrays(self, ("group", "current", "voltage", "u_current", "u_voltage", "cov_iv",
+                             "load", "time", "line"))
 
     def __len__(self) -> int:
         return int(self.current.size)

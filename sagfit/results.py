@@ -14,6 +14,7 @@ from typing import Iterator, Mapping
 
 import numpy as np
 
+from ._frozen import freeze_arrays
 from .formatting import format_estimate
 
 __all__ = ["Flag", "Estimate", "FitResult", "Fits"]
@@ -248,12 +249,7 @@ class Fits:
     used_rows: np.ndarray | None = None
 
     def __post_init__(self):
-        for name in _ARRAY_FIELDS:
-            a = getattr(self, name)
-            if isinstance(a, np.ndarray) and a.flags.writeable:
-                a = a.copy()
-                a.setflags(write=False)
-                object.__setattr__(self, name, a)
+        freeze_arrays(self, _ARRAY_FIELDS)
 
     def __len__(self) -> int:
         return len(self.duts)

@@ -44,6 +44,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from ._frozen import freeze_arrays
 from .errors import InputError
 from .readings import Readings
 from .units import Accuracy
@@ -51,12 +52,6 @@ from .units import Accuracy
 __all__ = ["SimulatedRun", "simulate", "run_csv_text"]
 
 _DISTRIBUTIONS = ("rectangular", "normal")
-
-
-def _ro(a: np.ndarray) -> np.ndarray:
-    a = np.ascontiguousarray(a)
-    a.setflags(write=False)
-    return a
 
 
 @dataclass(frozen=True, slots=True)
@@ -104,11 +99,9 @@ class SimulatedRun:
     settings: Mapping[str, object] = field(default_factory=dict)
 
     def __post_init__(self):
-        for name in ("group", "load_ohm", "load_true_ohm", "voltage_V", "current_A",
-                     "true_voltage_V", "true_current_A", "time_s", "limited", "vth", "rth"):
-            a = getattr(self, name)
-            if a is not None and a.flags.writeable:
-                object.__setattr__(self, name, _ro(a))
+        freeze_arrays(self, ("group", "load_ohm", "load_true_ohm", "voltage_V", "current_A",
+                             "true_voltage_V", "true_current_A", "time_s", "limited", "vth",
+                             "rth"), copy=False)
 
     def __len__(self) -> int:
         return int(self.group.size)

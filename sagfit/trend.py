@@ -48,6 +48,7 @@ from typing import Mapping, Sequence
 import numpy as np
 from scipy import special
 
+from ._frozen import freeze_arrays
 from .errors import InputError
 from .fit import york_line
 from .formatting import format_estimate, format_percent, format_value
@@ -217,12 +218,7 @@ class Trends:
     settings: Mapping[str, object] = field(default_factory=dict)
 
     def __post_init__(self):
-        for name in _FIELDS:
-            a = getattr(self, name)
-            if isinstance(a, np.ndarray) and a.flags.writeable:
-                a = a.copy()
-                a.setflags(write=False)
-                object.__setattr__(self, name, a)
+        freeze_arrays(self, _FIELDS)
 
     def __len__(self) -> int:
         return len(self.duts)

@@ -385,3 +385,14 @@ class TestProperties:
         b = sagfit.fit(Readings.from_arrays(current=i * k, voltage=v))[0]
         assert b.vth.value == pytest.approx(a.vth.value, rel=1e-10)
         assert b.rth.value == pytest.approx(a.rth.value / k, rel=1e-9)
+
+
+def test_callers_arrays_are_neither_frozen_nor_shared():
+    """Readings and fits keep private, read-only copies: the caller's arrays stay writeable
+    and changing them later changes no result (plumbing)."""
+    v = np.array([12.7, 12.6, 12.5])
+    r = np.array([np.inf, 10, 4.7])
+    rd = Readings.from_arrays(voltage=v, load=r)
+    v[0] = 1.0
+    assert v.flags.writeable and rd.voltage[0] == 12.7
+    assert not rd.voltage.flags.writeable
