@@ -19,7 +19,6 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 
 SPEC = """\
 # INVENTED benchmark spec: 5 V rail of our own regulator board

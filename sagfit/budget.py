@@ -54,6 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .fit import york_state
 from .readings import Readings
 from .results import Fits
 
@@ -163,23 +164,12 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
     sxy = np.where(ta, 0.0, cv)
     b = -np.asarray(fits.rth, float)
     bb = b[g]
+    st = york_state(g, x, y, sxx, syy, sxy, m, b)
+    w, sw, ua, q, xbar_adj = st["weights"], st["sw"], st["ua"], st["q"], st["xbar_adj"]
+    a_chk, var_a, var_b = st["a"], st["var_a"], st["var_b"]
     with np.errstate(divide="ignore", invalid="ignore"):
-        w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
-        sw = _gsum(g, w, m)
-        xbar = _gsum(g, w * x, m) / sw
-        ybar = _gsum(g, w * y, m) / sw
-        u = x - xbar[g]
-        v = y - ybar[g]
-        beta = w * (u * syy + bb * v * sxx - (bb * u + v) * sxy)
-        xadj = xbar[g] + beta
-        xbar_adj = _gsum(g, w * xadj, m) / sw
-        ua = xadj - xbar_adj[g]
-        q = _gsum(g, w * ua * ua, m)
         cb_y = w * ua / q[g]
         ca_y = w / sw[g] - xbar_adj[g] * cb_y
-        a_chk = ybar - b * xbar
-        var_a = 1.0 / sw + xbar_adj ** 2 / q
-        var_b = 1.0 / q
     # the rows must reproduce the reported line, or the budget would describe another fit
     with np.errstate(invalid="ignore"):
         tol = 1e-6 * np.sqrt(var_a * np.where(type_a, fits.scale, 1.0)) + 1e-12 * np.abs(fits.vth)

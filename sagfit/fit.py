@@ -156,6 +156,20 @@ def _line(g, x, y, sxx, syy, sxy, m):
             b = np.where(better, b_alt, b)
             iters = iters + np.where(again, it_alt, 0)
             conv = np.where(better, conv_alt, conv)
+    out = york_state(g, x, y, sxx, syy, sxy, m, b)
+    out.update(n=n, iterations=iters, converged=conv)
+    return out
+
+
+def york_state(g, x, y, sxx, syy, sxy, m, b) -> dict:
+    """York's quantities at the slope ``b`` (per group): steps 1–8 of York et al. (2004)
+    without iterating. Used for the final estimates and by the uncertainty budget.
+
+    Returns a dict of per-group arrays ``a``, ``b``, ``var_a``, ``var_b``, ``cov_ab``
+    (a priori), ``chi2``, ``sw`` (ΣW), ``xbar``, ``ybar``, ``xbar_adj``, ``q``
+    (ΣW·u², so var_b = 1/q), and per-row ``weights``, ``beta``, ``ua`` (adjusted x about
+    its weighted mean).
+    """
     bb = b[g]
     with np.errstate(divide="ignore", invalid="ignore"):
         w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
@@ -169,14 +183,15 @@ def _line(g, x, y, sxx, syy, sxy, m):
         xadj = xbar[g] + beta
         xbar_adj = _groupsum(g, w * xadj, m) / sw
         ua = xadj - xbar_adj[g]
-        var_b = 1.0 / _groupsum(g, w * ua * ua, m)
+        q = _groupsum(g, w * ua * ua, m)
+        var_b = 1.0 / q
         var_a = 1.0 / sw + xbar_adj ** 2 * var_b
         cov_ab = -xbar_adj * var_b
         res = y - bb * x - a[g]
         chi2 = _groupsum(g, w * res * res, m)
     return {"a": a, "b": b, "var_a": var_a, "var_b": var_b, "cov_ab": cov_ab, "chi2": chi2,
-            "n": n, "iterations": iters, "converged": conv, "xbar_adj": xbar_adj,
-            "weights": w, "beta": beta}
+            "sw": sw, "xbar": xbar, "ybar": ybar, "xbar_adj": xbar_adj, "q": q,
+            "weights": w, "beta": beta, "ua": ua}
 
 
 def _chi2_at(g, x, y, sxx, syy, sxy, m, b):

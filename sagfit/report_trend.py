@@ -56,7 +56,7 @@ def _dut_figure(trends, recs, i, rows, k_show):
     with house_style():
         fig, ax = new_figure(6.4, 3.6)
         ax.errorbar(_dates(t), r, yerr=u, fmt="o", color=COLORS["point"], ecolor=COLORS["muted"],
-                    elinewidth=0.8, label=f"recorded Rth (±U)", zorder=3)
+                    elinewidth=0.8, label="recorded Rth (±U)", zorder=3)
         ax.axhline(trends.baseline_rth[i], color=COLORS["muted"], lw=0.9, ls=":",
                    label=f"baseline {format_value(trends.baseline_rth[i], 'Ω')}")
         ax.axhline(trends.threshold_rth[i], color=COLORS["flag"], lw=1.0, ls="--",

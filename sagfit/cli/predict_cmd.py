@@ -143,7 +143,7 @@ def _print(preds, models) -> None:
         t = Table(title=f"{dut}: predicted operating points ({lvl} intervals)",
                   title_justify="left", show_edge=False)
         for col, just in (("load", "right"), ("current", "right"), ("voltage", "right"),
-                          (f"V interval (mean)", "right"), ("V interval (one reading)", "right"),
+                          ("V interval (mean)", "right"), ("V interval (one reading)", "right"),
                           ("power", "right")):
             t.add_column(col, justify=just)
         for p in rows:
