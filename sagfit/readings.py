@@ -90,8 +90,9 @@ class Readings:
     meta: Mapping[str, object] = field(default_factory=dict)
 
     def __post_init__(self):
+        # from_arrays copies what the caller passed in, so freezing in place is safe
         freeze_arrays(self, ("group", "current", "voltage", "u_current", "u_voltage", "cov_iv",
-                             "load", "time", "line"))
+                             "load", "time", "line"), copy=False)
 
     def __len__(self) -> int:
         return int(self.current.size)
@@ -216,7 +217,7 @@ class Readings:
 
         given = {k: v for k, v in (("voltage", voltage), ("current", current), ("load", load))
                  if v is not None}
-        line_arr = None if line is None else np.asarray(line, dtype=np.int64)
+        line_arr = None if line is None else np.array(line, dtype=np.int64)
         if len(given) < 2:
             have = ", ".join(given) or "none"
             raise ReadingsFileError(
@@ -225,7 +226,7 @@ class Readings:
         arrays = {}
         n = None
         for k, v in given.items():
-            a = np.asarray(v, dtype=np.float64).ravel()
+            a = np.array(v, dtype=np.float64).ravel()  # a private copy (see __post_init__)
             if n is None:
                 n = a.size
             elif a.size != n:
@@ -271,7 +272,7 @@ class Readings:
 
         # ---- DUT grouping
         if group is not None:
-            g = np.asarray(group, dtype=np.int64).ravel()
+            g = np.array(group, dtype=np.int64).ravel()
             names = tuple(duts or ())
             if names and type(names[0]) is not str:
                 names = tuple(str(d) for d in names)
@@ -364,7 +365,7 @@ class Readings:
             row = int(np.flatnonzero(overflow)[0])
             fail("value out of range (overflow when computing current or voltage)", row, "load")
 
-        t = np.full(n, np.nan) if time is None else np.asarray(time, dtype=np.float64).ravel()
+        t = np.full(n, np.nan) if time is None else np.array(time, dtype=np.float64).ravel()
         if t.size != n:
             raise InputError(f"{source}: 'time' has {t.size} values, expected {n}")
         ln = line_arr if line_arr is not None else np.zeros(n, dtype=np.int64)

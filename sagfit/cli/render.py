@@ -124,8 +124,13 @@ def _print_flags(console, fits, verbose):
 
     shown = 0
     counts: Counter = Counter()
-    for fl in fits.flags:
-        counts.update(f.code for f in fl if f.severity == "warning")
+    # DUTs share flag tuples: count each distinct tuple once, then weight by its uses
+    uses = Counter(id(fl) for fl in fits.flags)
+    distinct = {id(fl): fl for fl in fits.flags}
+    for key, fl in distinct.items():
+        for f in fl:
+            if f.severity == "warning":
+                counts[f.code] += uses[key]
     if len(fits) > 1 and counts:
         summary = ", ".join(f"{code} {n}" for code, n in counts.most_common())
         console.print(f"[bold]checks[/bold]: warnings across {len(fits)} DUTs: {summary}",
