@@ -186,6 +186,39 @@ class TestFuzzToml:
         assert f.read_bytes() == data
 
 
+JSON_LEAF = st.one_of(st.none(), st.booleans(), st.integers(-10, 10),
+                     st.floats(allow_nan=False, allow_infinity=False), st.text(max_size=5))
+JSON_ANY = st.recursive(JSON_LEAF, lambda inner: st.one_of(
+    st.lists(inner, max_size=3), st.dictionaries(st.sampled_from(
+        ["results", "dut", "vth", "rth", "value", "u", "ci", "prediction", "cov", "n", "dof",
+         "coverage_factor", "confidence", "x"]), inner, max_size=4)), max_leaves=12)
+
+
+class TestFuzzSavedFit:
+    @FUZZ
+    @given(doc=JSON_ANY)
+    def test_random_json_documents(self, cli, tmp_path, doc):
+        """Random JSON structures as a saved fit for `predict`: one error line, never a crash."""
+        f = tmp_path / "fit.json"
+        f.write_text(json.dumps(doc))
+        check_run(cli("predict", f, "--load", "10,open", "--current", "1"), f)
+
+    @FUZZ
+    @given(field=st.sampled_from(["vth", "rth", "prediction", "dut", "results"]),
+           value=JSON_LEAF)
+    def test_one_field_broken_in_a_real_fit(self, cli, tmp_path, field, value):
+        """A real saved fit with one field replaced by junk."""
+        good = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--bench", SAMPLES / "bench.toml",
+                              "--json").out)
+        if field == "results":
+            good["results"] = value
+        else:
+            good["results"][0][field] = value
+        f = tmp_path / "fit.json"
+        f.write_text(json.dumps(good))
+        check_run(cli("predict", f, "--load", "10"), f)
+
+
 class TestFuzzOptions:
     @FUZZ
     @given(args=st.lists(st.sampled_from(
