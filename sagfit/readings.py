@@ -123,6 +123,21 @@ class Readings:
             current_from=self.current_from, voltage_from=self.voltage_from,
             notes=self.notes, meta=self.meta)
 
+    def dut_range(self, lo: int, hi: int) -> "Readings":
+        """The readings of DUTs ``lo`` … ``hi − 1`` (renumbered from 0), as views: rows of
+        one DUT are contiguous, so this costs nothing on a large batch."""
+        starts = np.searchsorted(self.group, [lo, hi])
+        a, b = int(starts[0]), int(starts[1])
+        notes = tuple(Note(n.group - lo, n.code, n.message, n.severity)
+                      for n in self.notes if lo <= n.group < hi)
+        return Readings(
+            duts=self.duts[lo:hi], group=self.group[a:b] - lo, current=self.current[a:b],
+            voltage=self.voltage[a:b], u_current=self.u_current[a:b],
+            u_voltage=self.u_voltage[a:b], cov_iv=self.cov_iv[a:b], load=self.load[a:b],
+            time=self.time[a:b], line=self.line[a:b], source=self.source,
+            current_from=self.current_from, voltage_from=self.voltage_from, notes=notes,
+            meta=self.meta)
+
     def only_duts(self, names: Sequence[str]) -> "Readings":
         """The readings of the named DUTs, renumbered in the given order."""
         index = {d: i for i, d in enumerate(self.duts)}

@@ -326,6 +326,25 @@ class Fits:
             merged.append(t)
         return self.replace(flags=tuple(merged))
 
+    @classmethod
+    def concat(cls, parts: "list[Fits]") -> "Fits":
+        """The DUTs of several ``Fits`` (same settings) one after the other."""
+        first = parts[0]
+        if len(parts) == 1:
+            return first
+        changes: dict = {"duts": tuple(d for p in parts for d in p.duts),
+                         "error": tuple(e for p in parts for e in p.error),
+                         "flags": tuple(f for p in parts for f in p.flags)}
+        for name in _ARRAY_FIELDS:
+            changes[name] = np.concatenate([getattr(p, name) for p in parts])
+        changes["diagnostics"] = {
+            name: {f: np.concatenate([np.asarray(p.diagnostics[name][f]) for p in parts])
+                   for f in cols}
+            for name, cols in first.diagnostics.items()}
+        changes["extra"] = {name: [x for p in parts for x in p.extra[name]]
+                            for name in first.extra}
+        return dataclasses.replace(first, **changes)
+
     def to_dicts(self) -> list[dict]:
         """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit fit --json``).
 

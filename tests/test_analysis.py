@@ -187,3 +187,28 @@ class TestFitCommand:
         assert res.code == 0
         for r in json.loads(res.out)["results"]:
             assert {"curvature", "knee", "pattern", "drift", "outlier"} <= set(r["diagnostics"])
+
+
+class TestTwoThreads:
+    def test_halves_in_two_threads_equal_one_pass(self, monkeypatch):
+        """A large batch is fitted and checked in two threads; every number, flag and
+        diagnostic equals the one-pass result (plumbing: DUTs are independent)."""
+        import sagfit.analysis as an
+        from sagfit.simulate import simulate
+
+        run = simulate(12.0, 0.05, [math.inf, 10, 4.7, 2.2, 1.0, 0.47, 0.33], duts=300,
+                       seed=8, voltage_accuracy=VA, load_tolerance=1.0, vth_spread=0.01,
+                       rth_spread=0.3, knee_current=20.0)
+        r = run.to_readings(voltage_accuracy=VA, load_tolerance=1.0)
+        monkeypatch.setattr(an, "PARALLEL_DUTS", 10 ** 9)
+        one = an.fit(r)
+        monkeypatch.setattr(an, "PARALLEL_DUTS", 10)
+        two = an.fit(r)
+        assert one.duts == two.duts and one.error == two.error
+        for name in ("vth", "u_vth", "rth", "u_rth", "cov_vr", "chi2", "p_value", "isc"):
+            np.testing.assert_array_equal(getattr(one, name), getattr(two, name))
+        assert [[f.to_dict() for f in fl] for fl in one.flags] == \
+            [[f.to_dict() for f in fl] for fl in two.flags]
+        assert json.dumps(one.to_dicts(), sort_keys=True) == json.dumps(two.to_dicts(),
+                                                                         sort_keys=True)
+        assert any(f.code == "knee" for fl in two.flags for f in fl)
