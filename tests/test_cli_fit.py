@@ -188,3 +188,11 @@ def test_console_script_error_has_no_traceback(tmp_path):
     p = subprocess.run(["sagfit", "fit", str(tmp_path / "missing.csv")], capture_output=True,
                        text=True, timeout=120)
     assert p.returncode == 2 and p.stderr.startswith("error:") and "Traceback" not in p.stderr
+
+
+def test_version(cli):
+    """`sagfit --version` prints the version and exits 0 (plumbing)."""
+    import sagfit
+
+    run = cli("--version")
+    assert run.code == 0 and run.out.strip() == f"sagfit {sagfit.__version__}"

@@ -31,8 +31,18 @@ app = typer.Typer(
 
 
 
+def _version(value: bool) -> None:
+    if value:
+        from .. import __version__
+
+        sys.stdout.write(f"sagfit {__version__}\n")
+        raise typer.Exit(0)
+
+
 @app.callback()
-def _root() -> None:
+def _root(version: bool = typer.Option(False, "--version", callback=_version,
+                                       is_eager=True, help="Show the version and exit.")
+          ) -> None:
     """Thevenin/Norton equivalents of DC sources from bench readings, with honest uncertainty.
 
     Exit status: 0 success; 1 a check failed (accept: a unit failed; trend: a DUT
