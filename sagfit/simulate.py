@@ -197,15 +197,17 @@ def simulate(
     dut_prefix: str = "SIM-",
     per_dut_loads: bool = False,
     error_distribution: str = "rectangular",
+    dut_names: Sequence[str] | None = None,
 ) -> SimulatedRun:
     """Draw bench readings of ``duts`` DUTs, each read at every load in ``loads``.
 
     Parameters
     ----------
-    vth : float
-        Nominal open-circuit voltage (V), > 0.
-    rth : float
-        Nominal internal resistance (Ω), > 0.
+    vth : float or array_like
+        Nominal open-circuit voltage (V), > 0; or one value per DUT (a scenario's own
+        fleet; the spreads then apply on top).
+    rth : float or array_like
+        Nominal internal resistance (Ω), > 0; or one value per DUT.
     loads : sequence of float
         Nominal load resistances (Ω) in reading order; ``inf`` = open circuit, ``0`` =
         short (only with ``measure_current``: a short gives no voltage to compute I from).
@@ -235,6 +237,8 @@ def simulate(
         Draw the resistor tolerance error per DUT instead of once per resistor.
     error_distribution : {"rectangular", "normal"}
         Distribution of the meter errors (same standard uncertainty a/√3 either way).
+    dut_names : sequence of str, optional
+        Names of the DUTs instead of ``dut_prefix`` + number.
 
     Returns
     -------
@@ -246,8 +250,21 @@ def simulate(
     InputError
         A parameter out of range.
     """
-    vth = _finite(vth, "vth", positive=True)
-    rth = _finite(rth, "rth", positive=True)
+    vth_nom, rth_nom = np.asarray(vth, dtype=np.float64), np.asarray(rth, dtype=np.float64)
+    per_dut = max(vth_nom.size if vth_nom.ndim else 1, rth_nom.size if rth_nom.ndim else 1)
+    if vth_nom.ndim or rth_nom.ndim:  # per-DUT nominal values (a scenario's own fleet)
+        for a, name in ((vth_nom, "vth"), (rth_nom, "rth")):
+            if a.ndim > 1 or (a.ndim == 1 and a.size != per_dut):
+                raise InputError(f"{name}: give one value or one per DUT ({per_dut})")
+            if not (np.isfinite(a).all() and (a > 0).all()):
+                raise InputError(f"{name}: every value must be finite and > 0")
+        if duts not in (1, per_dut):
+            raise InputError(f"duts: {duts} does not match the {per_dut} per-DUT values")
+        duts = per_dut
+        vth, rth = np.broadcast_to(vth_nom, (per_dut,)), np.broadcast_to(rth_nom, (per_dut,))
+    else:
+        vth = _finite(vth, "vth", positive=True)
+        rth = _finite(rth, "rth", positive=True)
     vth_spread = _finite(vth_spread, "vth_spread", nonneg=True)
     rth_spread = _finite(rth_spread, "rth_spread", nonneg=True)
     curvature = _finite(curvature, "curvature", nonneg=True)
@@ -321,7 +338,8 @@ def simulate(
         current = i_true + _meter_error(rng, current_accuracy, i_true, error_distribution)
 
     settings = {
-        "vth": vth, "rth": rth, "loads": tuple(float(x) for x in nominal), "duts": m,
+        "vth": vth if np.ndim(vth) == 0 else "per DUT", "rth": rth if np.ndim(rth) == 0
+        else "per DUT", "loads": tuple(float(x) for x in nominal), "duts": m,
         "seed": seed, "voltage_accuracy": voltage_accuracy.text if voltage_accuracy else None,
         "current_accuracy": current_accuracy.text if current_accuracy else None,
         "load_tolerance": load_tolerance, "measure_current": bool(measure_current),
@@ -329,8 +347,14 @@ def simulate(
         "curvature": curvature, "drift": drift, "interval_s": interval_s,
         "per_dut_loads": bool(per_dut_loads), "error_distribution": error_distribution,
     }
+    if dut_names is not None:
+        names = tuple(str(d) for d in dut_names)
+        if len(names) != m or len(set(names)) != m:
+            raise InputError(f"dut_names: give {m} distinct names")
+    else:
+        names = _dut_names(str(dut_prefix), m)
     return SimulatedRun(
-        duts=_dut_names(str(dut_prefix), m), group=group, load_ohm=r_nom, load_true_ohm=r_true,
+        duts=names, group=group, load_ohm=r_nom, load_true_ohm=r_true,
         voltage_V=voltage, current_A=current, true_voltage_V=v_true, true_current_A=i_true,
         time_s=time_s, limited=limited, vth=vth_d, rth=rth_d, settings=settings)
 

@@ -303,3 +303,35 @@ class TestSimulateCommand:
         assert code == 2
         assert err.startswith(f"error: option {option}") and err.count("\n") == 1
         assert not (tmp_path / "y.csv").exists()
+
+
+class TestPerDutValues:
+    def test_per_dut_nominal_values_and_names(self):
+        """A scenario's own fleet: one Vth and Rth per DUT, named DUTs; the truth is kept
+        and a noise-free run gives exactly the divider voltages (textbook Thevenin)."""
+        import math
+
+        import numpy as np
+
+        from sagfit.simulate import simulate
+
+        run = simulate([12.7, 12.5], [0.02, 0.04], [math.inf, 10.0, 1.0], seed=3,
+                       dut_names=["PK-A", "PK-B"])
+        assert run.duts == ("PK-A", "PK-B")
+        np.testing.assert_allclose(run.vth, [12.7, 12.5])
+        np.testing.assert_allclose(run.rth, [0.02, 0.04])
+        expect = np.array([12.7, 12.7 * 10 / 10.02, 12.7 / 1.02,
+                           12.5, 12.5 * 10 / 10.04, 12.5 / 1.04])
+        np.testing.assert_allclose(run.voltage_V, expect, rtol=1e-12)
+
+    def test_mismatched_lengths_are_refused(self):
+        """Per-DUT arrays of different lengths, or names that do not match, are refused."""
+        import pytest
+
+        from sagfit.errors import InputError
+        from sagfit.simulate import simulate
+
+        with pytest.raises(InputError):
+            simulate([1.0, 2.0], [0.1, 0.2, 0.3], [10.0])
+        with pytest.raises(InputError):
+            simulate(1.0, 0.1, [10.0], duts=2, dut_names=["a", "a"])
