@@ -5,7 +5,7 @@
 ...                                 voltage_accuracy=sagfit.parse_accuracy("0.015%+2mV", "V"))
 >>> fits = sagfit.fit(readings)
 >>> fits[0]                                                        # doctest: +SKIP
-<FitResult pack_a Vth=12.7386±0.0013 V Rth=21.52±0.15 mΩ york>
+<FitResult pack_a Vth=12.7396±0.0013 V Rth=21.53±0.15 mΩ york>
 """
 
 from .acceptance import accept

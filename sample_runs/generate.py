@@ -1,0 +1,67 @@
+"""Regenerate the INVENTED demo readings in this folder with sagfit.simulate (seeded).
+
+Scenario (our own, invented): a field technician's monthly check of the 12 V lead-acid
+packs on the depot's standby trolleys, and the 5 V output of our sensor-hub board.
+Not measurements of any real product.
+
+    python sample_runs/generate.py        # rewrites pack_a.csv, fleet_packs.csv, reg5v_board.csv
+"""
+
+from __future__ import annotations
+
+import math
+import pathlib
+
+from sagfit.simulate import simulate
+from sagfit.units import parse_accuracy
+
+HERE = pathlib.Path(__file__).resolve().parent
+HEAD = ("# INVENTED DATA for sagfit demos: a field technician's monthly check of 12 V\n"
+        "# lead-acid packs on the depot's standby trolleys. Not measurements of any real\n"
+        "# product. Regenerate with sample_runs/generate.py (sagfit.simulate, seeded).\n"
+        "# date: 2026-11-03\n# temperature_C: 21.5\n")
+LOADS = [math.inf, 10.0, 4.7, 2.2, 1.0, 0.47]          # E12 values, 1 % wire-wound
+RKM = {math.inf: "open", 10.0: "10R", 4.7: "4R7", 2.2: "2R2", 1.0: "1R0", 0.47: "R47"}
+DMM = parse_accuracy("0.015%+2mV", "V")               # the depot's bench DMM spec
+PACKS = {"PK-07": (12.74, 0.0215), "PK-08": (12.71, 0.0232), "PK-09": (12.76, 0.0208),
+         "PK-10": (12.69, 0.0241), "PK-11": (12.73, 0.0219), "PK-12": (12.52, 0.0415)}
+
+
+def packs() -> None:
+    one = simulate(12.74, 0.0215, LOADS, seed=7, voltage_accuracy=DMM, load_tolerance=1.0)
+    lines = [f"{'open' if math.isinf(r) else f'{r:g}'},{v:.4f}"
+             for r, v in zip(one.load_ohm.tolist(), one.voltage_V.tolist())]
+    (HERE / "pack_a.csv").write_text(
+        HEAD + "# one pack, PK-07, load resistors from the E12 series, 1 % tolerance\n"
+        "load_ohm,voltage_V\n" + "\n".join(lines) + "\n", encoding="utf-8")
+
+    names = list(PACKS)
+    run = simulate([PACKS[n][0] for n in names], [PACKS[n][1] for n in names], LOADS,
+                   seed=11, voltage_accuracy=DMM, load_tolerance=1.0, dut_names=names)
+    lines = [f"{run.duts[g]},{RKM[r]},{v:.4f}" for g, r, v in
+             zip(run.group.tolist(), run.load_ohm.tolist(), run.voltage_V.tolist())]
+    (HERE / "fleet_packs.csv").write_text(
+        HEAD + "# six packs of trolley string B; PK-12 is an older pack\n"
+        "dut,load,voltage_V\n" + "\n".join(lines) + "\n", encoding="utf-8")
+
+
+def regulator() -> None:
+    # an electronic load in constant-resistance steps, current and voltage both read back;
+    # written as a spreadsheet in a decimal-comma locale would save it
+    loads = [math.inf, 50.0, 20.0, 10.0, 6.8, 5.0, 4.0, 3.3]
+    run = simulate(5.021, 0.038, loads, seed=13, measure_current=True,
+                   voltage_accuracy=parse_accuracy("0.012%+0.5mV", "V"),
+                   current_accuracy=parse_accuracy("0.05%+0.3mA", "A"))
+    lines = [f"{i * 1e3:.1f};{v:.4f}".replace(".", ",")
+             for i, v in zip(run.current_A.tolist(), run.voltage_V.tolist())]
+    (HERE / "reg5v_board.csv").write_text(
+        "# INVENTED DATA for sagfit demos: 5 V regulator output of our sensor hub board,\n"
+        "# rev C, serial RB-0113, swept with an electronic load (both read back).\n"
+        "# Regenerate with sample_runs/generate.py (sagfit.simulate, seeded).\n"
+        "# date: 2026-11-04\n"
+        "Current [mA];Voltage [V]\n" + "\n".join(lines) + "\n", encoding="utf-8")
+
+
+if __name__ == "__main__":
+    packs()
+    regulator()
