@@ -20,19 +20,15 @@ import numpy as np
 
 
 def make(duts: int, seed: int = 3):
-    from sagfit.readings import Readings
+    """Invented readings drawn with sagfit.simulate: 12.7 V packs, 22 mΩ, eight loads."""
+    from sagfit.simulate import simulate
     from sagfit.units import parse_accuracy
 
-    rng = np.random.default_rng(seed)
-    loads = np.array([np.inf, 47, 22, 10, 4.7, 2.2, 1.0, 0.47])
-    R = np.tile(loads, duts)
-    with np.errstate(invalid="ignore"):
-        v = np.where(np.isinf(R), 12.7, 12.7 * R / (R + 0.022))
     va = parse_accuracy("0.05%+2mV", "V")
-    v = v + rng.normal(size=v.size) * va.standard_uncertainty(v)
-    return Readings.from_arrays(voltage=v, load=R, group=np.repeat(np.arange(duts), 8),
-                                duts=[f"D{k}" for k in range(duts)], voltage_accuracy=va,
-                                load_tolerance=1.0)
+    run = simulate(12.7, 0.022, [np.inf, 47, 22, 10, 4.7, 2.2, 1.0, 0.47], duts=duts, seed=seed,
+                   voltage_accuracy=va, load_tolerance=1.0, error_distribution="normal",
+                   dut_prefix="D")
+    return run.to_readings(voltage_accuracy=va, load_tolerance=1.0, with_time=False)
 
 
 def main() -> None:
