@@ -44,7 +44,7 @@ _UNIT_SYMBOLS: dict[str, str] = {
     "A": "A", "a": "A", "amp": "A", "amps": "A", "ampere": "A",
     "ohm": "ohm", "ohms": "ohm", "Ohm": "ohm", "Ohms": "ohm", "OHM": "ohm",
     "\u03a9": "ohm", "\u2126": "ohm", "R": "ohm",
-    "s": "s", "sec": "s", "S": "s",
+    "s": "s", "sec": "s",
     "%": "%", "pct": "%", "percent": "%",
     "C": "degC", "°C": "degC", "degC": "degC", "celsius": "degC",
     "W": "W",
