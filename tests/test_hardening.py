@@ -358,6 +358,47 @@ class TestOutputs:
             assert leftovers == [], leftovers
 
 
+    @pytest.mark.parametrize("command", ["simulate", "accept"])
+    def test_sigint_in_other_writing_commands(self, tmp_path, command):
+        """Ctrl-C during `simulate --out` and `accept --out --report`: no partial output,
+        no temporary file, exit 130 (or a complete output if it finished first)."""
+        out = tmp_path / "out"
+        out.mkdir()
+        if command == "simulate":
+            args = ["simulate", "--vth", "12.6", "--rth", "0.05", "--loads",
+                    "open,10,4.7,2.2,1", "--duts", "150000", "--voltage-accuracy",
+                    "0.015%+2mV", "--out", str(out / "sim.csv")]
+        else:
+            from sagfit.simulate import run_csv_text, simulate
+
+            run = simulate(5.02, 0.02, [math.inf, 50, 20, 10, 6.8, 4.7, 3.9, 3.3],
+                           duts=40_000, seed=4, measure_current=True,
+                           voltage_accuracy=Accuracy(0.01, 0.0005),
+                           current_accuracy=Accuracy(0.05, 0.0005))
+            src = tmp_path / "reel.csv"
+            src.write_text(run_csv_text(run, ["INVENTED test data"]))
+            args = ["accept", str(src), "--spec", str(SAMPLES / "accept_spec.toml"),
+                    "--voltage-accuracy", "0.01%+0.5mV", "--current-accuracy", "0.05%+0.5mA",
+                    "--out", str(out / "d.csv"), "--report", str(out / "rep")]
+        proc = subprocess.Popen([sys.executable, "-c", ENTRY, *args],
+                                stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        time.sleep(1.2)
+        proc.send_signal(signal.SIGINT)
+        _, err = proc.communicate(timeout=180)
+        assert b"Traceback" not in err
+        leftovers = [p for p in out.rglob("*") if p.name.endswith(".part")]
+        assert leftovers == []
+        assert proc.returncode in (0, 1, 3, 130), err
+        import csv as _csv
+
+        for f in (out / "sim.csv", out / "d.csv"):  # written whole, or not at all
+            if f.exists():
+                text = f.read_text()
+                assert text.endswith("\n")
+                rows = [r for r in _csv.reader(ln for ln in text.splitlines()
+                                               if not ln.startswith("#"))]
+                assert len({len(r) for r in rows}) == 1
+
     def test_sigint_during_record_keeps_the_history_consistent(self, tmp_path):
         """Ctrl-C during `record` of a large file: the earlier records stay, the database
         passes SQLite's integrity check, and nothing of the interrupted run is half-written."""
