@@ -354,7 +354,9 @@ class TestOutputs:
                 (out_dir / "r.json").unlink()
                 continue
             assert proc.returncode == 130, err
-            assert b"Traceback" not in err and err.decode().startswith("error:")
+            # one error line; or nothing at all when the signal landed while the Python
+            # interpreter itself was still starting, before any sagfit code ran
+            assert b"Traceback" not in err and (err == b"" or err.decode().startswith("error:"))
             assert leftovers == [], leftovers
 
 
