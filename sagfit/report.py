@@ -28,7 +28,7 @@ from .budget import GROUP_LABELS, budget_arrays
 from .errors import OptionError
 from .formatting import format_estimate, format_interval, format_p, format_value
 from .outputs import atomic_write, prepare_folder, safe_filename
-from .safety import DEFERRAL, HAZARDOUS_V, HIGH_CURRENT_A, HOT_RESISTOR_W, cautions
+from .safety import DEFERRAL, HAZARDOUS_V, HIGH_CURRENT_A, HOT_RESISTOR_W, fit_cautions
 from .traceability import calibration_warnings, date_of_test, instrument_rows
 
 __all__ = ["write_report", "build_html", "MAX_TABLE_ROWS", "MAX_DUT_SECTIONS",
@@ -274,9 +274,7 @@ def _temperature(meta: Mapping) -> str | None:
 
 
 def _cautions_box(fits, readings) -> str:
-    raised = cautions(vth=fits.vth, isc=fits.isc,
-                      reading_power=np.asarray(readings.voltage) * np.asarray(readings.current),
-                      voltages=readings.voltage)
+    raised = fit_cautions(fits, readings)
     raised = [c for c in raised if c != DEFERRAL]
     standing = [
         "Battery packs and stiff supplies can deliver hundreds of amperes into a short: "

@@ -13,7 +13,8 @@ import numpy as np
 
 from .formatting import format_value
 
-__all__ = ["cautions", "DEFERRAL", "HAZARDOUS_V", "HIGH_CURRENT_A", "HOT_RESISTOR_W"]
+__all__ = ["cautions", "fit_cautions", "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
+           "HIGH_CURRENT_A", "HOT_RESISTOR_W"]
 
 HAZARDOUS_V = 60.0
 HIGH_CURRENT_A = 10.0
@@ -55,3 +56,28 @@ def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
     if out or always:
         out.append(DEFERRAL)
     return out
+
+
+def prospective_isc(fits) -> np.ndarray:
+    """Short-circuit current each source could deliver, for the cautions.
+
+    The fitted Isc = Vth/Rth, except where a knee showed the source limiting its current
+    (a supply in current limit, foldback): there the knee current, not the line's
+    extrapolation.
+    """
+    knee_i = np.asarray(fits.diagnostics.get("knee", {}).get("current",
+                                                            np.full(len(fits), np.nan)),
+                        dtype=float)
+    seen: dict[int, bool] = {}  # flag tuples are shared between DUTs: test each once
+    limited = np.fromiter(
+        (seen[id(fl)] if id(fl) in seen else
+         seen.setdefault(id(fl), any(f.code in ("knee", "below-knee") for f in fl))
+         for fl in fits.flags), dtype=bool, count=len(fits))
+    return np.where(limited & np.isfinite(knee_i), np.abs(knee_i), fits.isc)
+
+
+def fit_cautions(fits, readings, *, always: bool = False) -> list[str]:
+    """The cautions for fitted readings: voltages, prospective Isc, load dissipation."""
+    v = np.asarray(readings.voltage)
+    return cautions(vth=fits.vth, isc=prospective_isc(fits),
+                    reading_power=v * np.asarray(readings.current), voltages=v, always=always)

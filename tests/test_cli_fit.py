@@ -160,6 +160,32 @@ class TestTraceability:
         assert bud["dominant"] in {"voltage", "current", "load", "scale"}
 
 
+class TestCautions:
+    def test_current_limited_supply_has_no_high_isc_caution(self, cli):
+        """A supply seen in current limit (knee near 1.5 A) is not warned about hundreds of
+        amperes its line would extrapolate to; a 12 V pack is (safety: compute Isc, never
+        measure it; common practice)."""
+        supply = SAMPLES / "bench_supply_limit.csv"
+        for args in (("fit", supply, "--bench", BENCH, "--json"),
+                     ("fit", supply, "--bench", BENCH, "--below-knee", "--json")):
+            doc = json.loads(cli(*args).out)
+            assert not any("short-circuit current" in c for c in doc["cautions"])
+        doc = json.loads(cli("fit", PACK, "--bench", BENCH, "--json").out)
+        assert any("short-circuit current" in c for c in doc["cautions"])
+
+    def test_accept_and_record_use_the_same_cautions(self, cli, tmp_path):
+        """accept and record raise the cautions that fit raises for the same readings."""
+        supply = SAMPLES / "bench_supply_limit.csv"
+        spec = tmp_path / "s.toml"
+        spec.write_text("[limits.vth]\nmin = 11\nmax = 13\n")
+        fit_doc = json.loads(cli("fit", supply, "--bench", BENCH, "--json").out)
+        acc_doc = json.loads(cli("accept", supply, "--spec", spec, "--bench", BENCH,
+                                 "--json").out)
+        rec_doc = json.loads(cli("record", supply, "--bench", BENCH, "--db",
+                                 tmp_path / "h.sqlite", "--date", "2026-11-03", "--json").out)
+        assert fit_doc["cautions"] == acc_doc["cautions"] == rec_doc["cautions"]
+
+
 class TestTerminal:
     def test_summary(self, cli):
         """The terminal summary shows SI-prefixed values with units and the cautions."""

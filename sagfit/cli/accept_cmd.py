@@ -13,8 +13,8 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, dumps, fit_settings, guarded, interactive,
-                     load_readings, progress, settings_record, write_stdout)
+                     VerboseOpt, VoltageAccOpt, check_out_option, dumps, fit_settings, guarded,
+                     load_readings, progress, settings_record, show_progress, write_stdout)
 
 MAX_TABLE_ROWS = 40
 
@@ -48,7 +48,6 @@ def accept_command(
         from ..analysis import fit
         from ..errors import OptionError
         from ..io_spec import read_spec
-        from ..outputs import check_output_path
 
         if rule is not None and rule not in RULES:
             raise OptionError("--rule", f"{rule!r}: use one of {', '.join(RULES)}")
@@ -58,12 +57,8 @@ def accept_command(
             confidence = the_spec.decision.confidence
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence)
-        if out:
-            check_output_path(out, inputs)
-            if not out.lower().endswith((".csv", ".json")):
-                raise OptionError("--out", f"{out}: use a .csv or .json file name")
-        show = interactive() and not json_out
-        with progress("reading " + file, show) as step:
+        check_out_option(out, inputs)
+        with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             readings = load_readings(file, settings, dut)
             step(f"fitting {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"])
@@ -94,7 +89,7 @@ def accept_document(acc, fits, readings, settings) -> dict:
     """The JSON document of ``sagfit accept --json``."""
     from .. import __version__
     from ..acceptance import DECISIONS
-    from ..safety import cautions
+    from ..safety import fit_cautions
 
     spec = acc.spec
     r = acc.rule
@@ -116,9 +111,7 @@ def accept_document(acc, fits, readings, settings) -> dict:
         "settings": settings_record(settings),
         "results": acc.to_dicts(),
         "summary": acc.summary(),
-        "cautions": cautions(vth=fits.vth, isc=fits.isc,
-                             reading_power=readings.voltage * readings.current,
-                             voltages=readings.voltage),
+        "cautions": fit_cautions(fits, readings),
     }
 
 
@@ -148,7 +141,7 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
     from rich.console import Console
 
     from ..acceptance import ERROR
-    from ..safety import cautions
+    from ..safety import fit_cautions
 
     tty = sys.stdout.isatty()
     console = Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
@@ -190,9 +183,7 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
         for i in list(acc.warning_codes)[:MAX_TABLE_ROWS]:
             console.print(f"flagged {acc.duts[i]}: {', '.join(acc.warning_codes[i])}",
                           markup=False)
-    for c in cautions(vth=fits.vth, isc=fits.isc,
-                      reading_power=readings.voltage * readings.current,
-                      voltages=readings.voltage):
+    for c in fit_cautions(fits, readings):
         console.print(f"caution: {c}", markup=False)
 
 

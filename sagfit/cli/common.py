@@ -125,6 +125,39 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
     return readings
 
 
+def check_out_option(out: str | None, inputs) -> None:
+    """``--out``: a .csv or .json file name in an existing folder, never an input file."""
+    if not out:
+        return
+    from ..outputs import check_output_path
+
+    check_output_path(out, inputs)
+    if not out.lower().endswith((".csv", ".json")):
+        raise OptionError("--out", f"{out}: use a .csv or .json file name")
+
+
+def require_some_fit(file: str, fits) -> None:
+    """A file in which no DUT could be fitted is bad input (exit 2), with the reason."""
+    if len(fits) and all(e is not None for e in fits.error):
+        from ..errors import ReadingsFileError
+
+        who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
+        raise ReadingsFileError(file, who + str(fits.error[0]))
+
+
+def show_progress(file: str, json_out: bool) -> bool:
+    """A progress bar is worth it on a terminal, without --json, for a file of more than
+    a few megabytes (about 10,000 readings)."""
+    import os
+
+    if json_out or not interactive():
+        return False
+    try:
+        return os.path.getsize(file) > 2_000_000
+    except OSError:
+        return False
+
+
 def dumps(doc) -> str:
     """JSON text; indented for people, compact (C encoder, 10× faster) for big batches."""
     big = len(doc.get("results", ())) > 2000 if isinstance(doc, dict) else False

@@ -8,8 +8,9 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, dumps, fit_settings, guarded, interactive,
-                     load_readings, progress, settings_record, write_stdout)
+                     VerboseOpt, VoltageAccOpt, check_out_option, dumps, fit_settings, guarded,
+                     load_readings, progress, require_some_fit, settings_record, show_progress,
+                     write_stdout)
 
 MAX_TABLE_ROWS = 40
 
@@ -47,7 +48,6 @@ def fit_command(
     with guarded(file):
         from ..analysis import fit
         from ..errors import OptionError
-        from ..outputs import check_output_path
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence)
@@ -60,12 +60,8 @@ def fit_command(
             if figures not in FIGURE_CHOICES:
                 raise OptionError("--figures", f"{figures!r}: choose one of "
                                                f"{', '.join(FIGURE_CHOICES)}")
-        if out:
-            check_output_path(out, [file] + ([bench] if bench else []))
-            if not out.lower().endswith((".csv", ".json")):
-                raise OptionError("--out", f"{out}: use a .csv or .json file name")
-        show = interactive() and not json_out and _large(file)
-        with progress("reading " + file, show, total=4) as step:
+        check_out_option(out, [file] + ([bench] if bench else []))
+        with progress("reading " + file, show_progress(file, json_out), total=4) as step:
             readings = load_readings(file, settings, dut)
             step(f"fitting and checking {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"], level=level,
@@ -79,12 +75,7 @@ def fit_command(
                 fits = fits.replace(extra={**fits.extra, "budget": budgets(
                     readings, fits, used=fits.used_rows)})
             doc = fit_document(fits, readings, settings, results=need_results)
-            if all(e is not None for e in fits.error):
-                from ..errors import ReadingsFileError
-
-                first = next(e for e in fits.error)
-                who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
-                raise ReadingsFileError(file, who + first)
+            require_some_fit(file, fits)
             step("writing")
             if out:
                 write_results(out, fits, doc, [file])
@@ -100,16 +91,6 @@ def fit_command(
 
             print_fits(fits, readings, doc, verbose=verbose)
     raise typer.Exit(3 if any(e is not None for e in fits.error) else 0)
-
-
-def _large(path: str) -> bool:
-    """Worth a progress bar: a file of more than a few megabytes (about 10,000 readings)."""
-    import os
-
-    try:
-        return os.path.getsize(path) > 2_000_000
-    except OSError:
-        return False
 
 
 def parse_current_range(text: str | None):
@@ -136,11 +117,10 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
     """The JSON document of ``sagfit fit --json`` (``results=False``: everything but the
     per-DUT results, which cost time on a large batch and the terminal view does not need)."""
     from .. import __version__
-    from ..safety import cautions
+    from ..safety import fit_cautions
 
     from ..traceability import traceability_record
 
-    power = readings.voltage * readings.current
     trace = traceability_record(settings.get("instruments", ()), readings.meta)
     return {
         "tool": "sagfit",
@@ -153,24 +133,8 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
         "traceability": trace,
         "warnings": trace["warnings"],
         "results": fits.to_dicts() if results else [],
-        "cautions": cautions(vth=fits.vth, isc=_prospective_isc(fits), reading_power=power,
-                             voltages=readings.voltage),
+        "cautions": fit_cautions(fits, readings),
     }
-
-
-def _prospective_isc(fits):
-    """Isc for the cautions: where a knee showed the source limiting its current (a supply
-    in current limit, foldback), the knee current, not the line's extrapolation."""
-    import numpy as np
-
-    knee_i = np.asarray(fits.diagnostics.get("knee", {}).get("current", np.full(len(fits), np.nan)),
-                        dtype=float)
-    seen: dict[int, bool] = {}  # flag tuples are shared between DUTs: test each once
-    limited = np.fromiter(
-        (seen[id(fl)] if id(fl) in seen else
-         seen.setdefault(id(fl), any(f.code in ("knee", "below-knee") for f in fl))
-         for fl in fits.flags), dtype=bool, count=len(fits))
-    return np.where(limited & np.isfinite(knee_i), np.abs(knee_i), fits.isc)
 
 
 def write_results(out: str, fits, doc, inputs) -> None:

@@ -11,7 +11,7 @@ import typer
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
                      VoltageAccOpt, dumps, fit_settings, guarded, interactive, load_readings,
-                     progress, settings_record, write_stdout)
+                     progress, require_some_fit, settings_record, show_progress, write_stdout)
 
 MAX_TABLE_ROWS = 40
 DEFAULT_DB = "sagfit-history.sqlite"  # the same name as sagfit.history.DEFAULT_DB
@@ -42,14 +42,13 @@ def record_command(
         from .. import __version__
         from ..analysis import fit
         from ..history import History, check_db_path, dut_group_labels, dut_test_times
-        from ..safety import cautions
+        from ..safety import fit_cautions
 
         inputs = [file] + ([bench] if bench else [])
         check_db_path(db, inputs)
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence)
-        show = interactive() and not json_out
-        with progress("reading " + file, show) as step:
+        with progress("reading " + file, show_progress(file, json_out), total=2) as step:
             readings = load_readings(file, settings, None)
             labels = dict(zip(readings.duts, dut_group_labels(readings)))
             if dut:
@@ -57,11 +56,7 @@ def record_command(
             times, date_source = dut_test_times(readings, date)
             step(f"fitting {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"])
-        if all(e is not None for e in fits.error):
-            from ..errors import ReadingsFileError
-
-            who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
-            raise ReadingsFileError(file, who + str(fits.error[0]))
+        require_some_fit(file, fits)
         srec = settings_record(settings)
         with History(db, create=True) as hist:
             outcome = hist.record(
@@ -81,9 +76,7 @@ def record_command(
                "already_recorded": list(outcome.skipped),
                "not_fitted": [{"dut": d, "error": e} for d, e in failed],
                "records_in_database": total,
-               "cautions": cautions(vth=fits.vth, isc=fits.isc,
-                                    reading_power=readings.voltage * readings.current,
-                                    voltages=readings.voltage)}
+               "cautions": fit_cautions(fits, readings)}
         if json_out:
             write_stdout(dumps(doc))
         else:
