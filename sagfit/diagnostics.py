@@ -38,7 +38,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _york_kernel
+from .fit import _york_kernel, york_state
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -415,14 +415,8 @@ def _knee(R: _Rows, level):
         x, y = R.x[rows], R.y[rows]
         sxx, syy, sxy = sxx_k[rows], R.syy[rows], R.sxy[rows]
         b, _, conv = _york_kernel(gv, x, y, sxx, syy, sxy, mv, b0.reshape(-1))
-        bb = b[gv]
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
-            sw = _gsum(gv, w, mv)
-            xbar = _gsum(gv, w * x, mv) / sw
-            ybar = _gsum(gv, w * y, mv) / sw
-            r = (y - ybar[gv]) - bb * (x - xbar[gv])
-            chi = _gsum(gv, w * r * r, mv).reshape(m, 2).sum(axis=1)
+            chi = york_state(gv, x, y, sxx, syy, sxy, mv, b)["chi2"].reshape(m, 2).sum(axis=1)
             delta_y = R.chi2 - chi
         # keep the search's metric where York did not settle on a better fit than the line
         good = (refine & conv.reshape(m, 2).all(axis=1) & np.isfinite(chi)
@@ -453,6 +447,8 @@ def _knee_p(delta, chi_br, n, stated, splits, mask=None):
     """p-value of the two-segment model, Bonferroni-corrected for the breakpoint search."""
     nu = np.maximum(n - 4, 1).astype(float)
     mask = np.isfinite(delta) if mask is None else mask
+    # the two-segment model contains the line, so Δχ² < 0 is round-off (exact data)
+    delta = np.maximum(delta, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         p_br = _on(mask & stated, special.chdtrc, nu, chi_br)
         known = stated & (p_br >= CONSISTENT_P)

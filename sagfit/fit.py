@@ -46,18 +46,10 @@ def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
     b = b0.astype(np.float64).copy()
     iters = np.zeros(m, dtype=np.int64)
     done = np.zeros(m, dtype=bool)
-    rows = slice(None)
     gg, xx, yy, a_sxx, a_syy, a_sxy = g, x, y, sxx, syy, sxy
     for _ in range(_MAXITER):
-        bb = b[gg]
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = 1.0 / (a_syy + bb * bb * a_sxx - 2.0 * bb * a_sxy)
-            sw = _groupsum(gg, w, m)
-            xbar = _groupsum(gg, w * xx, m) / sw
-            ybar = _groupsum(gg, w * yy, m) / sw
-            u = xx - xbar[gg]
-            v = yy - ybar[gg]
-            beta = w * (u * a_syy + bb * v * a_sxx - (bb * u + v) * a_sxy)
+            w, _, _, _, u, v, beta = _york_step(gg, xx, yy, a_sxx, a_syy, a_sxy, m, b)
             b_new = _groupsum(gg, w * beta * v, m) / _groupsum(gg, w * beta * u, m)
             sb = 1.0 / np.sqrt(_groupsum(gg, w * u * u, m))
         step = np.abs(b_new - b)
@@ -75,8 +67,21 @@ def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
             keep = ~done[gg]
             gg, xx, yy = gg[keep], xx[keep], yy[keep]
             a_sxx, a_syy, a_sxy = a_sxx[keep], a_syy[keep], a_sxy[keep]
-    del rows
     return b, iters, done
+
+
+def _york_step(g, x, y, sxx, syy, sxy, m, b):
+    """Steps 1–3 of York et al. (2004) at the slope ``b``: weights W, ΣW, the weighted
+    means X̄, Ȳ, the deviations U, V and York's β (variance form)."""
+    bb = b[g]
+    w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
+    sw = _groupsum(g, w, m)
+    xbar = _groupsum(g, w * x, m) / sw
+    ybar = _groupsum(g, w * y, m) / sw
+    u = x - xbar[g]
+    v = y - ybar[g]
+    beta = w * (u * syy + bb * v * sxx - (bb * u + v) * sxy)
+    return w, sw, xbar, ybar, u, v, beta
 
 
 def york_line(x, y, sx, sy, r=None, *, group=None):
@@ -172,13 +177,7 @@ def york_state(g, x, y, sxx, syy, sxy, m, b) -> dict:
     """
     bb = b[g]
     with np.errstate(divide="ignore", invalid="ignore"):
-        w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
-        sw = _groupsum(g, w, m)
-        xbar = _groupsum(g, w * x, m) / sw
-        ybar = _groupsum(g, w * y, m) / sw
-        u = x - xbar[g]
-        v = y - ybar[g]
-        beta = w * (u * syy + bb * v * sxx - (bb * u + v) * sxy)
+        w, sw, xbar, ybar, _, _, beta = _york_step(g, x, y, sxx, syy, sxy, m, b)
         a = ybar - b * xbar
         xadj = xbar[g] + beta
         xbar_adj = _groupsum(g, w * xadj, m) / sw

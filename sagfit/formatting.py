@@ -75,6 +75,8 @@ def format_estimate(value: float, u: float | None, unit: str = "") -> str:
     scale, prefix = si_prefix(value if abs(value) >= u else u)
     v, uu = value / scale, u / scale
     d = _decimals_for(uu)
+    if v != 0:  # an uncertainty at float round-off: no more digits than float64 holds
+        d = min(d, 14 - int(math.floor(math.log10(abs(v)))))
     return f"{_fmt_fixed(v, d)} ± {_fmt_fixed(uu, d)} {prefix}{unit}".rstrip()
 
 

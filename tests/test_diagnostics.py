@@ -384,3 +384,15 @@ class TestVectorisation:
             for col in cols.values():
                 assert len(col) == len(sizes)
         json.dumps([x.to_dict() for x in f], allow_nan=False)
+
+
+def test_exact_line_raises_no_numeric_warning():
+    """Noise-free readings (Δχ² at round-off, possibly below zero) give p = 1 for the knee,
+    without an overflow warning (regression: found by the hypothesis property test)."""
+    from sagfit.analysis import fit as full_fit
+    from sagfit.readings import Readings
+
+    vth, rth = 5627.0, 1.0
+    i = np.concatenate(([0.0], np.array([0.9375, 0.95, 0.95 - 2e-16, 0.25, 0.01]) * vth / rth))
+    f = full_fit(Readings.from_arrays(current=i, voltage=vth - rth * i))[0]
+    assert f.diagnostics["knee"]["p_value"] == 1.0

@@ -24,6 +24,10 @@ class TestEstimate:
         """SI prefix chosen from the value, u to two digits, the value to the same place."""
         assert format_estimate(v, u, unit) == text
 
+    def test_round_off_uncertainty_is_capped_at_float_precision(self):
+        """u at float64 round-off (noise-free data) shows no more than 15 significant digits."""
+        assert format_estimate(5.627, 5.0e-16, "kV") == "5.62700000000000 ± 0.00000000000000 kV"
+
     def test_missing_uncertainty(self):
         """Without an uncertainty the value gets five significant digits."""
         assert format_estimate(4.7e3, None, "Ω") == "4.7000 kΩ"
