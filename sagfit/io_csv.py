@@ -452,7 +452,8 @@ def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int)
     rows = np.flatnonzero(keep)
     if rows.size and b'"' not in body:
         dpos = np.flatnonzero(arr == ord(delim))
-        per_line = np.bincount(np.searchsorted(nl, dpos, side="left"), minlength=lengths.size)
+        # delimiters before each line end, differenced (a newline is never a delimiter)
+        per_line = np.diff(np.searchsorted(dpos, ends), prepend=0)
         wrong = keep & (per_line != ncols - 1)
         if wrong.any():
             k = int(np.flatnonzero(wrong)[0])
@@ -583,15 +584,9 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
 
 def _flag_codes(flags) -> list[str]:
     """'code;code' per DUT; most DUTs share a handful of flag tuples, so join each once."""
-    cache: dict[int, str] = {}
-    out = []
-    for fl in flags:
-        key = id(fl)
-        text = cache.get(key)
-        if text is None:
-            text = cache[key] = ";".join(f.code for f in fl)
-        out.append(text)
-    return out
+    distinct = {id(fl): fl for fl in flags}
+    text = {key: ";".join(f.code for f in fl) for key, fl in distinct.items()}
+    return list(map(text.__getitem__, map(id, flags)))
 
 
 def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
@@ -605,9 +600,9 @@ def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
     return pd.DataFrame(cols)
 
 
-def fits_csv(fits, extra_columns: Mapping[str, object] | None = None) -> str:
-    """The results as CSV text (see :func:`table_csv`)."""
-    return table_csv(fits_columns(fits, extra_columns))
+def fits_csv(fits, extra_columns: Mapping[str, object] | None = None) -> bytes:
+    """The results as UTF-8 CSV bytes (see :func:`table_csv_bytes`), ready to write."""
+    return table_csv_bytes(fits_columns(fits, extra_columns))
 
 
 def _csv_text_cell(text: str) -> str:
@@ -619,51 +614,83 @@ def _csv_text_cell(text: str) -> str:
 
 def _csv_text_column(vals: list[str]) -> list[str]:
     """Neutralise and quote a text column; a quick whole-column check skips clean columns."""
-    joined = "\x00".join(vals)
-    if not any(c in joined for c in ',"\n\r') and not ({v[:1] for v in vals} & set(_FORMULA_START)):
+    joined = "\x00" + "\x00".join(vals)
+    if not any(c in joined for c in ',"\n\r') and not any("\x00" + c in joined
+                                                           for c in _FORMULA_START):
         return vals
     return [_csv_text_cell(v) for v in vals]
 
 
-def table_csv(columns: Mapping[str, object]) -> str:
-    """Columns → CSV text, fast for 100 000 rows: one '%'-format per row.
+def _text_block(vals: list[str]) -> np.ndarray:
+    """A text column as a padded byte matrix; a column of few distinct values (method,
+    flags, errors) is encoded once per value and gathered."""
+    from .io_numtext import text_matrix
 
-    Floats keep 10 significant digits, NaN and ±inf become empty cells, integers stay
-    integers; text cells are formula-neutralised (:func:`neutralise`) and quoted where
-    needed, so numeric columns stay numeric for a spreadsheet.
+    distinct = dict.fromkeys(vals)
+    if len(distinct) * 4 > len(vals):
+        return text_matrix(vals)
+    index = {v: i for i, v in enumerate(distinct)}
+    codes = np.fromiter(map(index.__getitem__, vals), dtype=np.intp, count=len(vals))
+    return text_matrix(list(distinct))[codes]
+
+
+#: From this many rows on, the two halves of a table are formatted in two threads (numpy
+#: releases the GIL in its array operations; the halves are independent).
+PARALLEL_ROWS = 40_000
+
+
+def table_csv_bytes(columns: Mapping[str, object]) -> bytes:
+    """Columns → UTF-8 CSV bytes, fast for 100,000 rows (whole columns at a time, see
+    :mod:`sagfit.io_numtext`).
+
+    Floats are written as ``'%.10g'`` writes them (10 significant digits), NaN and ±inf
+    become empty cells, integers stay integers; text cells are formula-neutralised
+    (:func:`neutralise`) and quoted where needed, so numeric columns stay numeric for a
+    spreadsheet.
     """
     names = list(columns)
-    parts, fmts = [], []
-    nrows = None
-    for name in names:
-        col = columns[name]
+    header = (",".join(_csv_text_cell(n) for n in names) + "\n").encode("utf-8")
+    if not names:
+        return header
+    n = len(columns[names[0]])
+    if n >= PARALLEL_ROWS and (os.cpu_count() or 1) >= 2:
+        from concurrent.futures import ThreadPoolExecutor
+
+        half = n // 2
+        parts = [{k: v[a:b] for k, v in columns.items()} for a, b in ((0, half), (half, n))]
+        with ThreadPoolExecutor(2) as pool:
+            return b"".join([header, *pool.map(_csv_body, parts)])
+    return b"".join([header, _csv_body(columns)])
+
+
+def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
+    from .io_numtext import g10_matrix, join_rows, small_set_matrix, text_matrix
+
+    blocks = []
+    for col in columns.values():
         if isinstance(col, np.ndarray) and col.dtype.kind in "fiub":
+            col = col.reshape(-1)
             if col.dtype.kind in "iub":
-                parts.append(col.astype(np.int64).tolist())
-                fmts.append("%d")
+                blocks.append(small_set_matrix(col.astype(np.int64), str))
             elif col.size and np.isfinite(col[0]) and (col == col[0]).all():
-                parts.append(["%.10g" % col[0]] * col.size)  # a constant: format it once
-                fmts.append("%s")
-            elif np.isfinite(col).all():
-                parts.append(col.tolist())
-                fmts.append("%.10g")
+                one = text_matrix(["%.10g" % col[0]])  # a constant: format it once
+                blocks.append(np.broadcast_to(one, (col.size, one.shape[1])))
             else:
-                ok = np.isfinite(col)
-                parts.append(["%.10g" % x if f else "" for x, f in zip(col.tolist(), ok.tolist())])
-                fmts.append("%s")
+                blocks.append(g10_matrix(col))
         else:
             if isinstance(col, list) and all(type(v) is str for v in col[:1]):
                 vals = col  # a list of text (homogeneous by construction)
             else:
                 vals = ["" if v is None else str(v) for v in col]
-            parts.append(_csv_text_column(vals))
-            fmts.append("%s")
-        if nrows is None:
-            nrows = len(parts[-1])
-    header = ",".join(_csv_text_cell(n) for n in names)
-    fmt = ",".join(fmts)
-    body = [fmt % row for row in zip(*parts)]
-    return header + "\n" + ("\n".join(body) + "\n" if body else "")
+            blocks.append(_text_block(_csv_text_column(vals)))
+    if not blocks[0].shape[0]:
+        return b""
+    return join_rows(blocks)
+
+
+def table_csv(columns: Mapping[str, object]) -> str:
+    """:func:`table_csv_bytes` as text."""
+    return table_csv_bytes(columns).decode("utf-8")
 
 
 def _corr(fits):

@@ -128,11 +128,7 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
                  inputs=inputs, within=root, option="--report")
     from . import io_csv
 
-    if hasattr(io_csv, "fits_csv"):
-        csv_text = io_csv.fits_csv(fits)
-    else:
-        csv_text = io_csv.fits_table(fits).to_csv(index=False, float_format="%.10g")
-    atomic_write(root / "results.csv", csv_text, inputs=inputs, within=root,
+    atomic_write(root / "results.csv", io_csv.fits_csv(fits), inputs=inputs, within=root,
                  option="--report")
     return atomic_write(root / "report.html", page, inputs=inputs, within=root,
                         option="--report")
