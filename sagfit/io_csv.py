@@ -326,8 +326,8 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
             name, f"need two of load, voltage and current columns; found headers {found} "
                   "(name them e.g. load_ohm, voltage_V, current_A)", line=header_line)
 
-    body = data[pos:]
-    lines_of_rows, body = _data_rows(body, header_line, name, delim, len(names))
+    lines_of_rows, (body, body_pos) = _data_rows(data, pos, header_line, name, delim,
+                                                 len(names))
     if lines_of_rows.size == 0:
         raise ReadingsFileError(name, "no readings (the table has a header but no rows)",
                                 line=header_line)
@@ -335,8 +335,10 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     usecols = [roles[r].index for r in roles]
     text_roles = {"dut", "load", "group"}
     try:
+        stream = io.BytesIO(body)  # shares the bytes (no copy)
+        stream.seek(body_pos)
         frame = pd.read_csv(
-            io.BytesIO(body), sep=delim, header=None, names=list(range(len(names))),
+            stream, sep=delim, header=None, names=list(range(len(names))),
             usecols=usecols, decimal=decimal,
             # text columns as categories: the tokenizer interns the few distinct ids and
             # load codes, instead of making a Python string per cell (faster, less memory)
@@ -422,14 +424,44 @@ def _short(exc: Exception) -> str:
     return s[-1][:200] if s else type(exc).__name__
 
 
-def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int):
-    """Line numbers of the data rows, and the body with blank and comment lines removed.
+#: Byte slices of this size bound the temporaries of the line scan (a 27 MB file would
+#: otherwise need two 27 MB masks: fresh memory, and page faults cost time).
+_SCAN_BYTES = 1 << 20
+
+
+def _scan(arr: np.ndarray, delim: int):
+    """Newline positions of ``arr`` and the number of ``delim`` bytes on each line (the
+    last line may lack its newline), computed slice by slice."""
+    nls, counts = [np.empty(0, dtype=np.intp)], []
+    carry = 0  # delimiters seen since the last newline, in earlier slices
+    for a in range(0, arr.size, _SCAN_BYTES):
+        part = arr[a:a + _SCAN_BYTES]
+        nl = np.flatnonzero(part == 10)
+        dpos = np.flatnonzero(part == delim)
+        # delimiters before each newline of the slice, differenced
+        before = np.searchsorted(dpos, nl)
+        per = np.diff(before, prepend=0)
+        if per.size:
+            per[0] += carry
+            carry = dpos.size - int(before[-1])
+        else:
+            carry += dpos.size
+        nls.append(nl + a)
+        counts.append(per)
+    counts.append(np.array([carry]))
+    return np.concatenate(nls), np.concatenate(counts)
+
+
+def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols: int):
+    """Line numbers of the data rows (after byte ``pos``), and what to hand the tokenizer:
+    ``data`` itself read from ``pos`` on when no blank or comment line has to go (no
+    copy), else new bytes without them.
 
     Checks every row's field count against the header (vectorised) when the file has no
     quote characters; with quotes, pandas' tokenizer checks it.
     """
-    arr = np.frombuffer(body, dtype=np.uint8)
-    nl = np.flatnonzero(arr == 10)
+    arr = np.frombuffer(data, dtype=np.uint8)[pos:]
+    nl, per_line = _scan(arr, ord(delim))
     starts = np.concatenate(([0], nl + 1))
     ends = np.concatenate((nl, [arr.size]))
     lengths = ends - starts
@@ -446,14 +478,12 @@ def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int)
     first[ne] = arr[starts[ne]]
     blank = eff == 0
     for k in np.flatnonzero(ne & ((first == 32) | (first == 9))):
-        if not body[starts[k]:starts[k] + eff[k]].strip():
+        a = pos + int(starts[k])
+        if not data[a:a + int(eff[k])].strip():
             blank[k] = True  # spaces and tabs only
     keep = ~blank & (first != 35)
     rows = np.flatnonzero(keep)
-    if rows.size and b'"' not in body:
-        dpos = np.flatnonzero(arr == ord(delim))
-        # delimiters before each line end, differenced (a newline is never a delimiter)
-        per_line = np.diff(np.searchsorted(dpos, ends), prepend=0)
+    if rows.size and data.find(b'"', pos) < 0:
         wrong = keep & (per_line != ncols - 1)
         if wrong.any():
             k = int(np.flatnonzero(wrong)[0])
@@ -465,11 +495,13 @@ def _data_rows(body: bytes, header_line: int, name: str, delim: str, ncols: int)
                                     line=header_line + 1 + k)
     lines = np.asarray(header_line + 1 + rows, dtype=np.int64)
     if rows.size == 0:
-        return lines, b""
+        return lines, (b"", 0)
     last = int(rows[-1])
     if keep[: last + 1].all():
-        return lines, body[: ends[last]]
-    return lines, b"\n".join(body[starts[k]:ends[k]] for k in rows)
+        if last + 1 == lengths.size or (last + 2 == lengths.size and lengths[-1] == 0):
+            return lines, (data, pos)  # nothing after the last row but its line end
+        return lines, (data[pos:pos + int(ends[last])], 0)
+    return lines, (b"\n".join(data[pos + int(starts[k]):pos + int(ends[k])] for k in rows), 0)
 
 
 def _categories(s) -> tuple[np.ndarray, list[str]]:

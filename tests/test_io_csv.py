@@ -226,3 +226,35 @@ def test_sample_runs_read():
     """Every bundled readings sample reads without error."""
     for p in sorted(SAMPLES.glob("*.csv")):
         assert len(read_readings(p)) > 0
+
+
+class TestLineScan:
+    """The line scan works on byte slices; a line split across slices must count as one
+    (plumbing test: the reference is the same file scanned in one piece)."""
+
+    TEXT = ("# bench sweep (invented)\ndut,load_ohm,voltage_V\n"
+            + "".join(f"U{k // 4},{10 + k % 4},{12.0 - 0.01 * (k % 4):.3f}\n" for k in range(40)))
+
+    @pytest.mark.parametrize("slice_bytes", [1, 7, 64, 1 << 20])
+    def test_same_readings_for_any_slice_size(self, tmp_path, monkeypatch, slice_bytes):
+        import sagfit.io_csv as io_csv
+
+        p = write(tmp_path, self.TEXT)
+        whole = read_readings(p)
+        monkeypatch.setattr(io_csv, "_SCAN_BYTES", slice_bytes)
+        part = read_readings(p)
+        assert part.duts == whole.duts
+        np.testing.assert_array_equal(part.voltage, whole.voltage)
+        np.testing.assert_array_equal(part.line, whole.line)
+
+    @pytest.mark.parametrize("slice_bytes", [1, 5, 13, 1 << 20])
+    def test_wrong_field_count_found_on_its_line(self, tmp_path, monkeypatch, slice_bytes):
+        import sagfit.io_csv as io_csv
+
+        lines = self.TEXT.splitlines()
+        lines[17] += ",extra"  # file line 18
+        p = write(tmp_path, "\n".join(lines) + "\n")
+        monkeypatch.setattr(io_csv, "_SCAN_BYTES", slice_bytes)
+        with pytest.raises(ReadingsFileError) as exc:
+            read_readings(p)
+        assert exc.value.line == 18 and "4 fields where the header has 3" in str(exc.value)

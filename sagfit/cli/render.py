@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+from itertools import compress, repeat
+from operator import is_not
+
 import numpy as np
 
 from ..formatting import format_estimate, format_interval, format_p, format_value
@@ -73,7 +76,7 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
         console.print(f"Uncertainties are standard uncertainties; intervals at {lvl} are in "
                       "--json and --out.")
     _print_flags(console, fits, verbose)
-    errors = [(d, e) for d, e in zip(fits.duts, fits.error) if e is not None]
+    errors = list(compress(zip(fits.duts, fits.error), map(is_not, fits.error, repeat(None))))
     for d, e in errors[:MAX_TABLE_ROWS]:
         console.print(f"[bold]error[/bold] {_esc(d)}: {_esc(e)}", markup=True)
     if len(errors) > MAX_TABLE_ROWS:
@@ -125,8 +128,8 @@ def _print_flags(console, fits, verbose):
     shown = 0
     counts: Counter = Counter()
     # DUTs share flag tuples: count each distinct tuple once, then weight by its uses
-    uses = Counter(id(fl) for fl in fits.flags)
-    distinct = {id(fl): fl for fl in fits.flags}
+    uses = Counter(map(id, fits.flags))
+    distinct = dict(zip(map(id, fits.flags), fits.flags))
     for key, fl in distinct.items():
         for f in fl:
             if f.severity == "warning":
@@ -135,9 +138,15 @@ def _print_flags(console, fits, verbose):
         summary = ", ".join(f"{code} {n}" for code, n in counts.most_common())
         console.print(f"[bold]checks[/bold]: warnings across {len(fits)} DUTs: {summary}",
                       markup=True)
-    for i in range(len(fits)):
+
+    def shows(f):
+        return not (f.severity == "info" and not verbose and len(fits) > 1)
+
+    # only DUTs whose flag tuple holds something to show (a C-level scan, not a loop)
+    showable = {key for key, fl in distinct.items() if any(shows(f) for f in fl)}
+    for i in compress(range(len(fits)), map(showable.__contains__, map(id, fits.flags))):
         for f in fits.flags[i]:
-            if f.severity == "info" and not verbose and len(fits) > 1:
+            if not shows(f):
                 continue
             if shown >= MAX_TABLE_ROWS * 2:
                 console.print("… more flags in --json / --out")
