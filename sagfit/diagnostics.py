@@ -38,7 +38,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _york_kernel, york_state
+from .fit import _groupsum, _york_kernel, york_state
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -61,7 +61,7 @@ _NAN = math.nan
 
 
 def _gsum(g, w, m):
-    return np.bincount(g, weights=w, minlength=m)
+    return _groupsum(g, w, m)
 
 
 # ----------------------------------------------------------------------------- quadratic
@@ -213,8 +213,15 @@ def _dense_blocks(n, eligible, minimum):
         yield duts, rows
 
 
-def _tls(sx, sy, sxx, sxy, syy, cnt):
-    """Orthogonal regression from sums: (smallest eigenvalue, mean x, mean y, angle)."""
+def _tls(sx, sy, sxx, sxy, syy, cnt, direction=True):
+    """Orthogonal regression from sums: (smallest eigenvalue, mean x, mean y, and the
+    cosine and sine of the principal direction θ = ½·atan2(2·cxy, cxx − cyy)).
+
+    The direction comes from the half-angle identities, without trigonometric functions
+    (each sum picks the form free of cancellation): cos 2θ = (cxx − cyy)/r,
+    sin 2θ = 2·cxy/r, cos θ = √((1 + cos 2θ)/2), sin θ = sin 2θ/(2·cos θ), or the mirror
+    pair when cos 2θ < 0; θ lies in (−π/2, π/2], so cos θ ≥ 0.
+    """
     with np.errstate(divide="ignore", invalid="ignore"):
         mx, my = sx / cnt, sy / cnt
         cxx = sxx - sx * mx
@@ -223,8 +230,21 @@ def _tls(sx, sy, sxx, sxy, syy, cnt):
         half = 0.5 * (cxx + cyy)
         rad = np.sqrt((0.5 * (cxx - cyy)) ** 2 + cxy ** 2)
         lam = np.maximum(half - rad, 0.0)
-        theta = 0.5 * np.arctan2(2.0 * cxy, cxx - cyy)
-    return lam, mx, my, theta
+        if not direction:
+            return lam, mx, my, None, None
+        d, e = cxx - cyy, 2.0 * cxy
+        r = np.hypot(d, e)
+        c2, s2 = d / r, e / r
+        pos = c2 >= 0.0
+        cp = np.sqrt(0.5 * (1.0 + c2))
+        sn = np.sqrt(0.5 * (1.0 - c2))
+        cos = np.where(pos, cp, np.abs(s2) / (2.0 * sn))
+        sin = np.where(pos, s2 / (2.0 * cp), np.copysign(sn, s2))
+        flat = ~(r > 0)  # all points at one spot, or NaN: the angle as atan2 defines it
+        if flat.any():
+            th = 0.5 * np.arctan2(e[flat], d[flat])
+            cos[flat], sin[flat] = np.cos(th), np.sin(th)
+    return lam, mx, my, cos, sin
 
 
 class _Rows:
@@ -340,13 +360,14 @@ def _knee(R: _Rows, level):
     b0 = np.zeros((m, 2))
     for duts, rows in _dense_blocks(R.n, eligible, 5):
         size = rows.shape[1]
-        X = R.x[rows] / sx[duts, None]
-        Y = R.y[rows] / sy[duts, None]
-        X -= X.mean(axis=1, keepdims=True)
-        Y -= Y.mean(axis=1, keepdims=True)
+        xr, yr = R.x[rows], R.y[rows]
+        xm = xr.mean(axis=1, keepdims=True)
+        ym = yr.mean(axis=1, keepdims=True)
+        X = (xr - xm) / sx[duts, None]
+        Y = (yr - ym) / sy[duts, None]
         # order along the source curve: by the angle atan2(I, V), i.e. by load conductance,
         # which is monotone through a current-limited (vertical) segment as well
-        key = np.arctan2(R.x[rows], R.y[rows])
+        key = np.arctan2(xr, yr)
         order = np.argsort(key, axis=1, kind="stable")
         X = np.take_along_axis(X, order, 1)
         Y = np.take_along_axis(Y, order, 1)
@@ -357,18 +378,15 @@ def _knee(R: _Rows, level):
         n1 = j[None, :].astype(float)
         s1 = [v[:, j - 1] for v in c]
         s2 = [t - v for t, v in zip(tot, s1)]
-        lam1, mx1, my1, th1 = _tls(*s1, n1)
-        lam2, mx2, my2, th2 = _tls(*s2, size - n1)
-        lamL = _tls(*[t[:, 0] for t in tot], float(size))[0]
+        lam1, mx1, my1, d1x, d1y = _tls(*s1, n1)
+        lam2, mx2, my2, d2x, d2y = _tls(*s2, size - n1)
+        lamL = _tls(*[t[:, 0] for t in tot], float(size), direction=False)[0]
         # where the two segment lines meet, along the curve
-        d1x, d1y, d2x, d2y = np.cos(th1), np.sin(th1), np.cos(th2), np.sin(th2)
         cr = d1x * d2y - d1y * d2x
         with np.errstate(divide="ignore", invalid="ignore"):
             s = ((mx2 - mx1) * d2y - (my2 - my1) * d2x) / cr
         kx = mx1 + s * d1x
         ky = my1 + s * d1y
-        xm = R.x[rows].mean(axis=1, keepdims=True)
-        ym = R.y[rows].mean(axis=1, keepdims=True)
         xk = xm + kx * sx[duts, None]
         yk = ym + ky * sy[duts, None]
         kkey = np.arctan2(xk, yk)
@@ -395,10 +413,10 @@ def _knee(R: _Rows, level):
         np.put_along_axis(seg, order, seg_sorted, 1)
         split_row[rows[has]] = seg[has]
         ratio = sy[duts] / sx[duts]
-        for k, th in ((0, th1), (1, th2)):
-            tb = th[ar, best]
-            cb = np.cos(tb)
-            slope = np.where(np.abs(cb) > 1e-12, np.tan(tb), np.sign(np.sin(tb)) * 1e12)
+        for k, (dx, dy) in enumerate(((d1x, d1y), (d2x, d2y))):
+            cb, sb = dx[ar, best], dy[ar, best]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                slope = np.where(np.abs(cb) > 1e-12, sb / cb, np.sign(sb) * 1e12)
             b0[duts, k] = slope * ratio
         tested[duts] &= has
     # The orthogonal-distance sums of the search are in units of each DUT's typical
@@ -491,8 +509,8 @@ def _drift(R: _Rows, level, has_time):
         t = R.time[rows]
         timed = np.isfinite(t).all(axis=1) if has_time else np.zeros(duts.size, bool)
         t = np.where(timed[:, None], t, np.arange(size)[None, :])
-        rt = np.argsort(np.argsort(t, axis=1, kind="stable"), axis=1)
-        rr = np.argsort(np.argsort(R.res[rows], axis=1, kind="stable"), axis=1)
+        rt = _ranks(t)
+        rr = _ranks(R.res[rows])
         d = (rt - rr).astype(float)
         rho = 1.0 - 6.0 * (d * d).sum(axis=1) / (size * (size * size - 1.0))
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -503,6 +521,22 @@ def _drift(R: _Rows, level, has_time):
         basis[duts] = np.where(timed, "time", "reading order")
         run[duts] = True
     return out, basis, run
+
+
+def _ranks(v: np.ndarray) -> np.ndarray:
+    """Ranks 0…size−1 along each row (ties in order of appearance): the inverse of the
+    sorting permutation; rows already in increasing order (readings in time order) skip
+    the sort."""
+    size = v.shape[1]
+    ar = np.broadcast_to(np.arange(size), v.shape)
+    ranks = np.array(ar)
+    unsorted = ~(v[:, 1:] > v[:, :-1]).all(axis=1)
+    if unsorted.any():
+        order = np.argsort(v[unsorted], axis=1, kind="stable")
+        sub = np.empty_like(order)
+        np.put_along_axis(sub, order, ar[: order.shape[0]], 1)
+        ranks[unsorted] = sub
+    return ranks
 
 
 def _lack_of_fit(R: _Rows):
@@ -529,6 +563,9 @@ def _lack_of_fit(R: _Rows):
         offset += duts.size * size
     if offset == 0:
         return out
+    out["levels"] = np.where(R.ok & (levels > 0), levels, _NAN)
+    if not (R.ok & (levels > 2) & (R.n > levels)).any():
+        return out  # no DUT repeats a load: no pure-error estimate, nothing to test
     w, r = R.w, R.res
     inb = levels[R.g] > 0
     c = cell[inb]
@@ -546,7 +583,6 @@ def _lack_of_fit(R: _Rows):
         p = special.fdtrc(np.maximum(df_lof, 1), np.maximum(df_pe, 1), F)
     out["F"] = np.where(run, F, _NAN)
     out["p_value"] = np.where(run, p, _NAN)
-    out["levels"] = np.where(R.ok & (levels > 0), levels, _NAN)
     out["df_lof"] = np.where(run, df_lof, _NAN)
     out["df_pe"] = np.where(run, df_pe, _NAN)
     return out
@@ -626,8 +662,10 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     with np.errstate(divide="ignore", invalid="ignore"):
         rel = np.abs(fits.u_rth / fits.rth)
         zr = fits.rth / fits.u_rth
-        p_neg = np.where(R.stated, special.ndtr(zr),
-                         special.stdtr(np.maximum(fits.dof, 1).astype(float), zr))
+        p_neg = special.ndtr(zr)
+        if R.ols.any():  # Student t only for the Type A fits
+            p_neg[R.ols] = special.stdtr(np.maximum(fits.dof[R.ols], 1).astype(float),
+                                         zr[R.ols])
     p_neg = np.where(R.ok, p_neg, _NAN)
     rel = np.where(R.ok, rel, _NAN)
 

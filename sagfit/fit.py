@@ -24,6 +24,7 @@ References
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 from scipy import special
@@ -37,8 +38,37 @@ __all__ = ["fit_lines", "york_line", "coverage_factors"]
 _MAXITER = 200
 
 
+_SEGMENTS = threading.local()
+
+
 def _groupsum(g, w, m):
-    return np.bincount(g, weights=w, minlength=m)
+    """Σ w per group. Rows of one DUT are contiguous (``g`` sorted), so the sums are
+    segment sums: ``np.add.reduceat`` releases the GIL, which lets the two threads of a
+    large batch run in parallel (``np.bincount`` holds it). The segments of the last
+    ``g`` seen by this thread are kept: the York iteration sums over the same rows six
+    times per step. An unsorted ``g`` falls back to ``np.bincount``."""
+    seg = getattr(_SEGMENTS, "last", None)
+    if seg is None or seg[0] is not g or seg[1] != m:
+        seg = _SEGMENTS.last = (g, m, *_segments(g, m))
+    starts, present, full = seg[2:]
+    if starts is None:
+        return np.bincount(g, weights=w, minlength=m)
+    s = np.add.reduceat(np.asarray(w, dtype=np.float64), starts)
+    if full:
+        return s
+    out = np.zeros(m)
+    out[present] = s
+    return out
+
+
+def _segments(g, m):
+    """(starts, groups present, every group present) of a sorted ``g``; (None, …) when
+    ``g`` is empty or not sorted."""
+    if g.size == 0 or m == 0 or not (g[1:] >= g[:-1]).all() or g[0] < 0 or g[-1] >= m:
+        return None, None, False
+    starts = np.concatenate(([0], np.flatnonzero(g[1:] != g[:-1]) + 1))
+    present = g[starts]
+    return starts, present, present.size == m
 
 
 def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
@@ -208,9 +238,14 @@ def coverage_factors(confidence: float, dof: np.ndarray, type_a: np.ndarray) -> 
     """Coverage factor per DUT: normal quantile, or Student t with ``dof`` for Type A."""
     p = 0.5 * (1.0 + confidence)
     z = float(special.ndtri(p))
-    with np.errstate(invalid="ignore"):
-        t = special.stdtrit(np.maximum(dof, 1).astype(float), p)
-    return np.where(type_a, t, z)
+    type_a = np.asarray(type_a, dtype=bool)
+    out = np.full(type_a.shape, z)
+    if type_a.any():
+        # a batch has a handful of distinct dof: one quantile each, not one per DUT
+        nu, inverse = np.unique(np.maximum(np.asarray(dof)[type_a], 1), return_inverse=True)
+        with np.errstate(invalid="ignore"):
+            out[type_a] = special.stdtrit(nu.astype(float), p)[inverse.reshape(-1)]
+    return out
 
 
 def _validate(readings: Readings, m: int):
