@@ -680,19 +680,30 @@ def table_csv_bytes(columns: Mapping[str, object]) -> bytes:
     (:func:`neutralise`) and quoted where needed, so numeric columns stay numeric for a
     spreadsheet.
     """
+    header = (",".join(_csv_text_cell(n) for n in columns) + "\n").encode("utf-8")
+    return b"".join([header, *csv_rows(columns)])
+
+
+class Encoded(list):
+    """A text column whose cells are already CSV-encoded (quoted as the writer wants):
+    :func:`csv_rows` writes them as they are."""
+
+
+def csv_rows(columns: Mapping[str, object]) -> list:
+    """The data rows of :func:`table_csv_bytes` (no header), as a list of byte chunks."""
     names = list(columns)
-    header = (",".join(_csv_text_cell(n) for n in names) + "\n").encode("utf-8")
     if not names:
-        return header
+        return []
     n = len(columns[names[0]])
     if n >= PARALLEL_ROWS and (os.cpu_count() or 1) >= 2:
         from concurrent.futures import ThreadPoolExecutor
 
         half = n // 2
-        parts = [{k: v[a:b] for k, v in columns.items()} for a, b in ((0, half), (half, n))]
+        parts = [{k: (Encoded(v[a:b]) if isinstance(v, Encoded) else v[a:b])
+                  for k, v in columns.items()} for a, b in ((0, half), (half, n))]
         with ThreadPoolExecutor(2) as pool:
-            return b"".join([header, *pool.map(_csv_body, parts)])
-    return b"".join([header, _csv_body(columns)])
+            return list(pool.map(_csv_body, parts))
+    return [_csv_body(columns)]
 
 
 def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
@@ -709,6 +720,8 @@ def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
                 blocks.append(np.broadcast_to(one, (col.size, one.shape[1])))
             else:
                 blocks.append(g10_matrix(col))
+        elif isinstance(col, Encoded):
+            blocks.append(_text_block(col))
         else:
             if isinstance(col, list) and all(type(v) is str for v in col[:1]):
                 vals = col  # a list of text (homogeneous by construction)

@@ -111,28 +111,22 @@ def acceptance_csv(acc) -> str:
     """The CSV text of :func:`acceptance_table`: one row per DUT, numbers as ``%.10g``
     (unquoted, so they stay numeric), user text quoted, NaN and ±inf as empty cells.
 
-    Written row-wise with one format string per row rather than with
-    ``DataFrame.to_csv``: about three times faster on 100 000 DUTs with a few checks.
+    Written whole columns at a time by the same writer as ``fit --out``
+    (:func:`sagfit.io_csv.csv_rows`), not with ``DataFrame.to_csv``.
     """
-    cols, fmts, header = [], [], []
-    for name, kind, data in _columns(acc):
+    from .io_csv import Encoded, csv_rows
+
+    cols, header = {}, []
+    for j, (name, kind, data) in enumerate(_columns(acc)):
         header.append(_quote(name) if any(ch in name for ch in ',"\n') else name)
         if kind == "num":
-            cols.append(np.asarray(data, float).tolist())
-            fmts.append("%.10g")
+            cols[j] = np.asarray(data, float)
         elif kind == "word":
-            cols.append(np.asarray(data).tolist())
-            fmts.append("%s")
+            cols[j] = Encoded(str(x) for x in np.asarray(data).tolist())
         else:
-            cols.append([_quote(x) for x in data])
-            fmts.append("%s")
-    fmt = ",".join(fmts)
-    body = "\n".join(fmt % row for row in zip(*cols))
-    # "%.10g" writes NaN and ±inf as words: make them empty cells. User text is quoted,
-    # the first column is text and our own words never start with "nan" or "inf", so
-    # ",nan" / ",inf" can only be a whole numeric cell.
-    body = body.replace(",nan", ",").replace(",-inf", ",").replace(",inf", ",")
-    return ",".join(header) + "\n" + (body + "\n" if body else "")
+            cols[j] = Encoded(_quote(x) for x in data)
+    body = b"".join(csv_rows(cols)).decode("utf-8")
+    return ",".join(header) + "\n" + body
 
 
 # ---------------------------------------------------------------------- figures

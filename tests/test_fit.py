@@ -396,3 +396,30 @@ def test_callers_arrays_are_neither_frozen_nor_shared():
     v[0] = 1.0
     assert v.flags.writeable and rd.voltage[0] == 12.7
     assert not rd.voltage.flags.writeable
+
+
+class TestGroupSums:
+    """Segment sums (np.add.reduceat) against np.bincount, the plain definition (plumbing
+    test: numpy itself is the reference)."""
+
+    @pytest.mark.parametrize("seed", range(4))
+    def test_sorted_with_gaps_unsorted_and_empty(self, seed):
+        import sys
+
+        F = sys.modules["sagfit.fit"]
+        rng = np.random.default_rng(seed)
+        m = 50
+        g = np.sort(rng.integers(0, m, 400))  # some groups absent
+        w = rng.normal(size=g.size)
+        np.testing.assert_allclose(F._groupsum(g, w, m), np.bincount(g, w, m), rtol=1e-12,
+                                   atol=1e-12)
+        full = np.repeat(np.arange(m), 3)
+        wf = rng.normal(size=full.size)
+        np.testing.assert_allclose(F._groupsum(full, wf, m), np.bincount(full, wf, m),
+                                   rtol=1e-12, atol=1e-12)
+        shuffled = rng.permutation(g)
+        np.testing.assert_allclose(F._groupsum(shuffled, w, m), np.bincount(shuffled, w, m),
+                                   rtol=1e-12, atol=1e-12)
+        assert F._groupsum(np.zeros(0, np.int64), np.zeros(0), 3).tolist() == [0, 0, 0]
+        bools = rng.random(g.size) > 0.5
+        np.testing.assert_array_equal(F._groupsum(g, bools, m), np.bincount(g, bools, m))
