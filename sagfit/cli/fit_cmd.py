@@ -77,48 +77,20 @@ def fit_command(
             doc = fit_document(fits, readings, settings, results=need_results)
             require_some_fit(file, fits)
             step("writing")
-            writer = in_background(write_results, out, fits, doc, [file]) if out else None
-            try:
-                if report:
-                    from ..report import write_report
+            if out:
+                write_results(out, fits, doc, [file])
+            if report:
+                from ..report import write_report
 
-                    write_report(report, fits, readings, doc, settings, figures=figures,
-                                 inputs=[file] + ([bench] if bench else []))
-            except BaseException:
-                if writer is not None:  # let the file be finished (or removed) first
-                    from concurrent.futures import wait
-
-                    wait([writer])
-                raise
-            if writer is not None and json_out:
-                writer.result()  # the file first, then the document on stdout
+                write_report(report, fits, readings, doc, settings, figures=figures,
+                             inputs=[file] + ([bench] if bench else []))
         if json_out:
             write_stdout(dumps(doc))
         else:
             from .render import print_fits
 
-            try:
-                print_fits(fits, readings, doc, verbose=verbose)
-            finally:  # a failed write still ends in its error line and status 2
-                if writer is not None:
-                    writer.result()
-    raise typer.Exit(3 if any(e is not None for e in fits.error) else 0)
-
-
-def in_background(fn, *args):
-    """Run ``fn(*args)`` in a worker thread; ``.result()`` waits and re-raises its error.
-
-    Writing ``--out`` (formatting in numpy, then an fsync that releases the GIL) overlaps
-    the terminal summary this way; the command waits for it before it exits, so the file
-    is always complete (or, on an error, absent) when the command returns.
-    """
-    from concurrent.futures import ThreadPoolExecutor
-
-    pool = ThreadPoolExecutor(1)
-    try:
-        return pool.submit(fn, *args)
-    finally:
-        pool.shutdown(wait=False)
+            print_fits(fits, readings, doc, verbose=verbose)
+    raise typer.Exit(3 if fits.error.count(None) != len(fits.error) else 0)
 
 
 def parse_current_range(text: str | None):
