@@ -469,10 +469,7 @@ def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, n
         k = int(np.argmax(lengths))
         raise ReadingsFileError(name, f"line longer than {MAX_LINE} bytes; not a readings table",
                                 line=header_line + 1 + k)
-    has_cr = np.zeros(lengths.size, bool)
-    nz = lengths > 0
-    has_cr[nz] = arr[ends[nz] - 1] == 13
-    eff = lengths - has_cr
+    eff = lengths  # no CR is left: parse_table turned CRLF and lone CR into LF
     first = np.full(lengths.size, 32, np.uint8)
     ne = eff > 0
     first[ne] = arr[starts[ne]]
