@@ -396,3 +396,27 @@ def test_exact_line_raises_no_numeric_warning():
     i = np.concatenate(([0.0], np.array([0.9375, 0.95, 0.95 - 2e-16, 0.25, 0.01]) * vth / rth))
     f = full_fit(Readings.from_arrays(current=i, voltage=vth - rth * i))[0]
     assert f.diagnostics["knee"]["p_value"] == 1.0
+
+
+def test_tls_direction_matches_atan2():
+    """The knee search's principal directions from half-angle identities agree with
+    θ = ½·atan2(2·cxy, cxx − cyy) (plumbing test: numpy's trigonometry is the reference),
+    including the axis-aligned and degenerate cases."""
+    import sys
+
+    D = sys.modules["sagfit.diagnostics"]
+    rng = np.random.default_rng(11)
+    n = 20_000
+    sx, sy = rng.normal(size=n), rng.normal(size=n)
+    sxx = np.abs(rng.normal(size=n)) * 10 + sx ** 2 / 5
+    syy = np.abs(rng.normal(size=n)) * 10 + sy ** 2 / 5
+    sxy = rng.normal(size=n) * 3
+    sxx[:4], syy[:4], sxy[:4], sx[:4], sy[:4] = 1.0, 1.0, 0.0, 0.0, 0.0  # one spot
+    sxy[4:8], sx[4:8], sy[4:8] = 0.0, 0.0, 0.0  # axis-aligned
+    sxx[4:6], syy[4:6] = 1.0, 10.0
+    sxx[6:8], syy[6:8] = 10.0, 1.0
+    _, mx, my, c, s = D._tls(sx, sy, sxx, sxy, syy, 5.0)
+    cxx, cyy, cxy = sxx - sx * mx, syy - sy * my, sxy - sx * my
+    th = 0.5 * np.arctan2(2 * cxy, cxx - cyy)
+    np.testing.assert_allclose(c, np.cos(th), atol=1e-14)
+    np.testing.assert_allclose(s, np.sin(th), atol=1e-14)
