@@ -504,22 +504,17 @@ def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, n
 def _categories(s) -> tuple[np.ndarray, list[str]]:
     """Codes (−1 for an empty cell) and texts of a categorical column, numbered in order of
     first appearance in the file (pandas sorts categories; users expect file order)."""
-    codes = np.asarray(s.cat.codes, dtype=np.int64)
-    cats = [str(c) for c in s.cat.categories.tolist()]
-    present = codes >= 0
-    if not present.any():
-        return codes, []
-    # first appearance, found from the runs of equal codes (rows of one DUT are usually
-    # together, so there are about as many runs as DUTs)
-    c = codes[present]
-    starts = np.concatenate(([0], np.flatnonzero(c[1:] != c[:-1]) + 1))
-    seq = c[starts]
-    uniq, first = np.unique(seq, return_index=True)
-    order = uniq[np.argsort(first, kind="stable")]
-    remap = np.full(len(cats), -1, dtype=np.int64)
+    import pandas as pd
+
+    codes = np.asarray(s.cat.codes)
+    cats = s.cat.categories
+    order = pd.unique(codes)  # hash-based, in order of appearance
+    order = order[order >= 0]
+    if order.size == 0:
+        return np.full(codes.size, -1, dtype=np.int64), []
+    remap = np.full(len(cats) + 1, -1, dtype=np.int64)  # code −1 picks the last entry
     remap[order] = np.arange(order.size)
-    out = np.where(present, remap[np.maximum(codes, 0)], -1)
-    return out, [cats[k] for k in order.tolist()]
+    return remap[codes], [str(c) for c in cats[order].tolist()]
 
 
 def _parse_loads(s, scale: float, name: str, header: str, lines, decimal: str = ".") -> np.ndarray:
