@@ -396,7 +396,9 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         codes, names_u = _categories(column("dut"))
         if (codes < 0).any():
             row_error("dut", int(np.flatnonzero(codes < 0)[0]), "empty DUT id")
-        stripped = [u.strip() for u in names_u]
+        joined = "\x00".join(names_u)  # one scan for the (rare) ids with outer blanks
+        padded = joined != joined.strip() or _OUTER_BLANK.search(joined) is not None
+        stripped = [u.strip() for u in names_u] if padded else names_u
         if stripped != names_u:  # ' A' and 'A' are one DUT: merge after stripping
             codes2, names2 = pd.factorize(pd.Series(stripped, dtype=object), sort=False)
             codes = np.asarray(codes2)[codes]
@@ -417,6 +419,9 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
         load_tolerance=load_tolerance, source=name, line=lines_of_rows, columns=columns,
         meta=meta, **kwargs)
+
+
+_OUTER_BLANK = re.compile(r"\s\x00|\x00\s")
 
 
 def _short(exc: Exception) -> str:
@@ -624,9 +629,11 @@ def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
     return pd.DataFrame(cols)
 
 
-def fits_csv(fits, extra_columns: Mapping[str, object] | None = None) -> bytes:
-    """The results as UTF-8 CSV bytes (see :func:`table_csv_bytes`), ready to write."""
-    return table_csv_bytes(fits_columns(fits, extra_columns))
+def fits_csv(fits, extra_columns: Mapping[str, object] | None = None) -> list:
+    """The results as UTF-8 CSV, a list of byte chunks in file order (see
+    :func:`table_csv_bytes`; ``outputs.atomic_write`` writes such a list without joining
+    it, ``b"".join`` makes one bytes object)."""
+    return table_csv_chunks(fits_columns(fits, extra_columns))
 
 
 def _csv_text_cell(text: str) -> str:
@@ -672,8 +679,13 @@ def table_csv_bytes(columns: Mapping[str, object]) -> bytes:
     (:func:`neutralise`) and quoted where needed, so numeric columns stay numeric for a
     spreadsheet.
     """
+    return b"".join(table_csv_chunks(columns))
+
+
+def table_csv_chunks(columns: Mapping[str, object]) -> list:
+    """:func:`table_csv_bytes` as a list of byte chunks in file order (no joined copy)."""
     header = (",".join(_csv_text_cell(n) for n in columns) + "\n").encode("utf-8")
-    return b"".join([header, *csv_rows(columns)])
+    return [header, *csv_rows(columns)]
 
 
 class Encoded(list):

@@ -204,7 +204,6 @@ def join_rows(blocks: list[np.ndarray]) -> memoryview:
     naive concatenate-and-mask took three times as long).
     """
     n = blocks[0].shape[0]
-    blocks = [b for b in blocks]
     width = sum(b.shape[1] for b in blocks) + len(blocks)
     step = max(1, min(n, (4 << 20) // width))
     buf = np.empty((step, width), dtype=np.uint8)
@@ -216,7 +215,7 @@ def join_rows(blocks: list[np.ndarray]) -> memoryview:
         buf[:, col] = ord(",")
         col += 1
     buf[:, width - 1] = ord("\n")
-    out = np.empty(n * width, dtype=np.uint8)
+    out = np.empty(n * width, dtype=np.uint8)  # pages past the packed text stay untouched
     pos = 0
     for start in range(0, n, step):
         rows = min(step, n - start)

@@ -85,11 +85,13 @@ def prepare_folder(path: str | os.PathLike, inputs: Iterable[str | os.PathLike] 
     return p
 
 
-def atomic_write(path: str | os.PathLike, data: bytes | str, *,
+def atomic_write(path: str | os.PathLike, data: bytes | str | list, *,
                  inputs: Iterable[str | os.PathLike] = (), option: str = "--out",
                  within: str | os.PathLike | None = None) -> Path:
     """Write ``data`` to ``path`` atomically (temporary file + rename in the same folder).
 
+    ``data``: text (written as UTF-8), bytes, or a list of bytes-like chunks written one
+    after the other (a large CSV need not be joined into one copy first).
     ``within``: the folder the file must stay inside (checked after resolving links).
     """
     p = check_output_path(path, inputs, option=option)
@@ -99,12 +101,14 @@ def atomic_write(path: str | os.PathLike, data: bytes | str, *,
             raise OutputError(f"{path} is outside the output folder {within}")
     if isinstance(data, str):
         data = data.encode("utf-8")
+    chunks = data if isinstance(data, list) else [data]
     parent = p.parent if str(p.parent) else Path(".")
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(dir=parent, prefix=f".{p.name}.", suffix=".part")
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            for chunk in chunks:
+                fh.write(chunk)
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the user's usual mode

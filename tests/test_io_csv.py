@@ -258,3 +258,13 @@ class TestLineScan:
         with pytest.raises(ReadingsFileError) as exc:
             read_readings(p)
         assert exc.value.line == 18 and "4 fields where the header has 3" in str(exc.value)
+
+
+@pytest.mark.parametrize("first,second", [(" A", "A"), ("A ", "A"), ("A\t", " A"),
+                                          ("A\u00a0", "A")])
+def test_dut_ids_with_outer_blanks_are_one_dut(tmp_path, first, second):
+    """' A' and 'A' name one DUT (spreadsheet exports pad cells; common practice)."""
+    text = ("dut,load_ohm,voltage_V\n"
+            f"{first},open,12.0\n{first},10,11.9\n{second},4.7,11.8\nB,open,5.0\nB,10,4.9\n")
+    r = read_readings(write(tmp_path, text))
+    assert r.duts == ("A", "B") and r.counts().tolist() == [3, 2]
