@@ -67,7 +67,8 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
     notes: dict[int, list[Flag]] = {}
     used = readings
     rows = np.arange(len(readings))           # rows of ``readings`` still in ``used``
-    reason = np.full(len(readings), "", dtype=object)
+    # why a reading was left out: 0 kept, 1 current range, 2 below the knee
+    reason = np.zeros(len(readings), dtype=np.int8)
     if current_range is not None:
         lo, hi = (float(v) for v in current_range)
         if not lo < hi:
@@ -76,7 +77,7 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         keep = (readings.current >= lo) & (readings.current <= hi)
         dropped = np.bincount(readings.group[~keep], minlength=readings.n_duts)
         used = readings.select(keep)
-        reason[~keep] = "current-range"
+        reason[~keep] = 1
         rows = rows[keep]
         kept = used.counts()
         text = _range_text(lo, hi)
@@ -88,15 +89,15 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
     fits = _fit_checked(used, confidence, level, robust)
     if below_knee:
         fits, used, keep = _refit_below_knee(used, fits, confidence, level, robust, notes)
-        reason[rows[~keep]] = "below-knee"
+        reason[rows[~keep]] = 2
     extra = dict(fits.extra)
-    if (reason != "").any():
+    excluded = reason != 0
+    if excluded.any():
         extra["excluded_readings"] = _excluded(readings, reason)
     if notes:
         new = [tuple(notes.get(k, ())) for k in range(len(fits))]
         fits = fits.add_flags(new)
     extra["prediction"] = prediction_fields(used, fits)
-    excluded = reason != ""
     fits = fits.replace(extra=extra, used_rows=~excluded if excluded.any() else None)
     settings = dict(fits.settings)
     settings.update(level=float(level),
@@ -184,19 +185,23 @@ def _refit_below_knee(readings, fits, confidence, level, robust, notes):
     return refit, sub, keep
 
 
+_REASONS = {1: "current-range", 2: "below-knee"}
+
+
 def _excluded(readings: Readings, reason) -> list:
     """Per DUT, the readings an option left out (None for DUTs with none left out)."""
     out: list = [None] * readings.n_duts
     g = readings.group
     starts = np.concatenate(([0], np.cumsum(readings.counts())[:-1]))
-    for r in np.flatnonzero(reason != ""):  # only the excluded rows
+    for r in np.flatnonzero(reason != 0):  # only the excluded rows
         k = int(g[r])
         if out[k] is None:
             out[k] = []
         ln = int(readings.line[r])
         out[k].append({"line": ln or None, "reading": int(r - starts[k] + 1),
                        "current_A": float(readings.current[r]),
-                       "voltage_V": float(readings.voltage[r]), "reason": reason[r]})
+                       "voltage_V": float(readings.voltage[r]),
+                       "reason": _REASONS[int(reason[r])]})
     return out
 
 

@@ -8,6 +8,7 @@ builds the per-DUT view ``FitResult`` with ``Estimate`` fields on demand.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import math
 from dataclasses import dataclass, field
 from typing import Iterator, Mapping
@@ -325,9 +326,10 @@ class Fits:
         first = parts[0]
         if len(parts) == 1:
             return first
-        changes: dict = {"duts": tuple(d for p in parts for d in p.duts),
-                         "error": tuple(e for p in parts for e in p.error),
-                         "flags": tuple(f for p in parts for f in p.flags)}
+        chain = itertools.chain.from_iterable
+        changes: dict = {"duts": tuple(chain(p.duts for p in parts)),
+                         "error": tuple(chain(p.error for p in parts)),
+                         "flags": tuple(chain(p.flags for p in parts))}
         for name in _ARRAY_FIELDS:
             changes[name] = np.concatenate([getattr(p, name) for p in parts])
         changes["diagnostics"] = {
