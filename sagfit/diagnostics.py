@@ -215,12 +215,13 @@ def _dense_blocks(n, eligible, minimum):
 
 def _tls(sx, sy, sxx, sxy, syy, cnt, direction=True):
     """Orthogonal regression from sums: (smallest eigenvalue, mean x, mean y, and the
-    cosine and sine of the principal direction θ = ½·atan2(2·cxy, cxx − cyy)).
+    principal direction as an unnormalised eigenvector (vx, vy) with its squared norm).
 
-    The direction comes from the half-angle identities, without trigonometric functions
-    (each sum picks the form free of cancellation): cos 2θ = (cxx − cyy)/r,
-    sin 2θ = 2·cxy/r, cos θ = √((1 + cos 2θ)/2), sin θ = sin 2θ/(2·cos θ), or the mirror
-    pair when cos 2θ < 0; θ lies in (−π/2, π/2], so cos θ ≥ 0.
+    The eigenvector of the larger eigenvalue λ of [[cxx, cxy], [cxy, cyy]] is
+    (λ − cyy, cxy) or, equivalently, (cxy, λ − cxx); each DUT takes the longer of the two
+    (the better conditioned). Callers use only direction-invariant quantities (where two
+    lines meet, a slope vy/vx), so no normalisation or trigonometry is needed. A point
+    cloud without a direction (all points at one spot) gives the zero vector.
     """
     with np.errstate(divide="ignore", invalid="ignore"):
         mx, my = sx / cnt, sy / cnt
@@ -231,20 +232,13 @@ def _tls(sx, sy, sxx, sxy, syy, cnt, direction=True):
         rad = np.sqrt((0.5 * (cxx - cyy)) ** 2 + cxy ** 2)
         lam = np.maximum(half - rad, 0.0)
         if not direction:
-            return lam, mx, my, None, None
-        d, e = cxx - cyy, 2.0 * cxy
-        r = np.hypot(d, e)
-        c2, s2 = d / r, e / r
-        pos = c2 >= 0.0
-        cp = np.sqrt(0.5 * (1.0 + c2))
-        sn = np.sqrt(0.5 * (1.0 - c2))
-        cos = np.where(pos, cp, np.abs(s2) / (2.0 * sn))
-        sin = np.where(pos, s2 / (2.0 * cp), np.copysign(sn, s2))
-        flat = ~(r > 0)  # all points at one spot, or NaN: the angle as atan2 defines it
-        if flat.any():
-            th = 0.5 * np.arctan2(e[flat], d[flat])
-            cos[flat], sin[flat] = np.cos(th), np.sin(th)
-    return lam, mx, my, cos, sin
+            return lam, mx, my, None, None, None
+        big = half + rad
+        a1, a2 = big - cyy, big - cxx
+        first = np.abs(a1) >= np.abs(a2)
+        vx = np.where(first, a1, cxy)
+        vy = np.where(first, cxy, a2)
+    return lam, mx, my, vx, vy, vx * vx + vy * vy
 
 
 class _Rows:
@@ -378,10 +372,11 @@ def _knee(R: _Rows, level):
         n1 = j[None, :].astype(float)
         s1 = [v[:, j - 1] for v in c]
         s2 = [t - v for t, v in zip(tot, s1)]
-        lam1, mx1, my1, d1x, d1y = _tls(*s1, n1)
-        lam2, mx2, my2, d2x, d2y = _tls(*s2, size - n1)
+        lam1, mx1, my1, d1x, d1y, q1 = _tls(*s1, n1)
+        lam2, mx2, my2, d2x, d2y, q2 = _tls(*s2, size - n1)
         lamL = _tls(*[t[:, 0] for t in tot], float(size), direction=False)[0]
-        # where the two segment lines meet, along the curve
+        # where the two segment lines meet, along the curve (independent of the lengths
+        # and signs of the direction vectors)
         cr = d1x * d2y - d1y * d2x
         with np.errstate(divide="ignore", invalid="ignore"):
             s = ((mx2 - mx1) * d2y - (my2 - my1) * d2x) / cr
@@ -392,7 +387,8 @@ def _knee(R: _Rows, level):
         kkey = np.arctan2(xk, yk)
         lo = key[:, j - 2]
         hi = key[:, np.minimum(j + 1, size - 1)]
-        valid = (np.abs(cr) > 1e-12) & (kkey >= lo) & (kkey <= hi) & np.isfinite(kkey)
+        # |sin| of the angle between the segments above 1e-12 (squared, with the norms)
+        valid = (cr * cr > 1e-24 * q1 * q2) & (kkey >= lo) & (kkey <= hi) & np.isfinite(kkey)
         total = np.where(valid, lam1 + lam2, np.inf)
         best = np.argmin(total, axis=1)
         ar = np.arange(duts.size)
@@ -415,8 +411,12 @@ def _knee(R: _Rows, level):
         ratio = sy[duts] / sx[duts]
         for k, (dx, dy) in enumerate(((d1x, d1y), (d2x, d2y))):
             cb, sb = dx[ar, best], dy[ar, best]
+            # the direction with angle in (−π/2, π/2]: cos ≥ 0 (and sin > 0 when vertical)
+            flip = (cb < 0) | ((cb == 0) & (sb < 0))
+            cb, sb = np.where(flip, -cb, cb), np.where(flip, -sb, sb)
             with np.errstate(divide="ignore", invalid="ignore"):
-                slope = np.where(np.abs(cb) > 1e-12, sb / cb, np.sign(sb) * 1e12)
+                slope = np.where(cb * cb > 1e-24 * (cb * cb + sb * sb), sb / cb,
+                                 np.sign(sb) * 1e12)
             b0[duts, k] = slope * ratio
         tested[duts] &= has
     # The orthogonal-distance sums of the search are in units of each DUT's typical

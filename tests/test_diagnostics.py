@@ -398,10 +398,11 @@ def test_exact_line_raises_no_numeric_warning():
     assert f.diagnostics["knee"]["p_value"] == 1.0
 
 
-def test_tls_direction_matches_atan2():
-    """The knee search's principal directions from half-angle identities agree with
-    θ = ½·atan2(2·cxy, cxx − cyy) (plumbing test: numpy's trigonometry is the reference),
-    including the axis-aligned and degenerate cases."""
+def test_tls_direction_is_the_principal_axis():
+    """The knee search's segment directions are the principal axis θ = ½·atan2(2·cxy,
+    cxx − cyy) of each point cloud (plumbing test: numpy's trigonometry is the
+    reference), including axis-aligned clouds; a cloud without a direction gives the
+    zero vector."""
     import sys
 
     D = sys.modules["sagfit.diagnostics"]
@@ -411,12 +412,15 @@ def test_tls_direction_matches_atan2():
     sxx = np.abs(rng.normal(size=n)) * 10 + sx ** 2 / 5
     syy = np.abs(rng.normal(size=n)) * 10 + sy ** 2 / 5
     sxy = rng.normal(size=n) * 3
-    sxx[:4], syy[:4], sxy[:4], sx[:4], sy[:4] = 1.0, 1.0, 0.0, 0.0, 0.0  # one spot
     sxy[4:8], sx[4:8], sy[4:8] = 0.0, 0.0, 0.0  # axis-aligned
     sxx[4:6], syy[4:6] = 1.0, 10.0
     sxx[6:8], syy[6:8] = 10.0, 1.0
-    _, mx, my, c, s = D._tls(sx, sy, sxx, sxy, syy, 5.0)
+    _, mx, my, vx, vy, q = D._tls(sx, sy, sxx, sxy, syy, 5.0)
     cxx, cyy, cxy = sxx - sx * mx, syy - sy * my, sxy - sx * my
     th = 0.5 * np.arctan2(2 * cxy, cxx - cyy)
-    np.testing.assert_allclose(c, np.cos(th), atol=1e-14)
-    np.testing.assert_allclose(s, np.sin(th), atol=1e-14)
+    norm = np.sqrt(q)
+    # parallel to (cos θ, sin θ): the cross product vanishes, the norms agree
+    np.testing.assert_allclose((vx * np.sin(th) - vy * np.cos(th)) / norm, 0.0, atol=1e-12)
+    np.testing.assert_allclose(q, vx ** 2 + vy ** 2)
+    one_spot = D._tls(np.zeros(1), np.zeros(1), np.ones(1), np.zeros(1), np.ones(1), 5.0)
+    assert one_spot[5][0] == 0.0
