@@ -378,13 +378,13 @@ def _knee(R: _Rows, level):
         # where the two segment lines meet, along the curve (independent of the lengths
         # and signs of the direction vectors)
         cr = d1x * d2y - d1y * d2x
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore"):  # parallel or pointlike: NaN
             s = ((mx2 - mx1) * d2y - (my2 - my1) * d2x) / cr
-        kx = mx1 + s * d1x
-        ky = my1 + s * d1y
-        xk = xm + kx * sx[duts, None]
-        yk = ym + ky * sy[duts, None]
-        kkey = np.arctan2(xk, yk)
+            kx = mx1 + s * d1x
+            ky = my1 + s * d1y
+            xk = xm + kx * sx[duts, None]
+            yk = ym + ky * sy[duts, None]
+            kkey = np.arctan2(xk, yk)
         lo = key[:, j - 2]
         hi = key[:, np.minimum(j + 1, size - 1)]
         # |sin| of the angle between the segments above 1e-12 (squared, with the norms)
