@@ -837,7 +837,7 @@ def knee_rows(readings: Readings, fits: Fits) -> np.ndarray:
     currents scatter around the knee current.
     """
     knee = fits.diagnostics.get("knee", {})
-    flagged = np.array([any(f.code == "knee" for f in fl) for fl in fits.flags], bool)
+    flagged = fits.flag_mask(lambda fl: any(f.code == "knee" for f in fl))
     key_split = knee.get("split_angle")
     if key_split is None or not flagged.any():
         return np.ones(len(readings), bool)

@@ -418,7 +418,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     return Readings.from_arrays(
         voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
         load_tolerance=load_tolerance, source=name, line=lines_of_rows, columns=columns,
-        meta=meta, **kwargs)
+        meta=meta, copy=False, **kwargs)  # every array here is our own
 
 
 _OUTER_BLANK = re.compile(r"\s\x00|\x00\s")
@@ -519,7 +519,10 @@ def _categories(s) -> tuple[np.ndarray, list[str]]:
         return np.full(codes.size, -1, dtype=np.int64), []
     remap = np.full(len(cats) + 1, -1, dtype=np.int64)  # code −1 picks the last entry
     remap[order] = np.arange(order.size)
-    return remap[codes], [str(c) for c in cats[order].tolist()]
+    texts = cats[order].tolist()
+    if set(map(type, texts)) != {str}:
+        texts = [str(c) for c in texts]
+    return remap[codes], texts
 
 
 def _parse_loads(s, scale: float, name: str, header: str, lines, decimal: str = ".") -> np.ndarray:
@@ -613,7 +616,7 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
 
 def _flag_codes(flags) -> list[str]:
     """'code;code' per DUT; most DUTs share a handful of flag tuples, so join each once."""
-    distinct = {id(fl): fl for fl in flags}
+    distinct = dict(zip(map(id, flags), flags))
     text = {key: ";".join(f.code for f in fl) for key, fl in distinct.items()}
     return list(map(text.__getitem__, map(id, flags)))
 

@@ -34,6 +34,7 @@ import numpy as np
 from scipy import special
 
 from .errors import InputError
+from .fit import _groupsum
 
 __all__ = ["SourceModel", "Quantity", "Prediction", "models_from_document", "predict",
            "prediction_fields"]
@@ -119,12 +120,12 @@ def prediction_fields(readings, fits) -> "PredictionColumn":
     av = np.abs(readings.voltage)
     uv = readings.u_voltage
     with np.errstate(divide="ignore", invalid="ignore"):
-        mx = np.bincount(g, weights=av, minlength=m) / n
-        my = np.bincount(g, weights=uv, minlength=m) / n
+        mx = _groupsum(g, av, m) / n
+        my = _groupsum(g, uv, m) / n
         dx = av - mx[g]
-        sxx = np.bincount(g, weights=dx * dx, minlength=m)
+        sxx = _groupsum(g, dx * dx, m)
         slope = np.where(sxx > 1e-30 * np.maximum(mx * mx, 1e-300),
-                         np.bincount(g, weights=dx * (uv - my[g]), minlength=m) / sxx, 0.0)
+                         _groupsum(g, dx * (uv - my[g]), m) / sxx, 0.0)
         slope = np.where(np.isfinite(slope), np.maximum(slope, 0.0), 0.0)
         offset = np.maximum(my - slope * mx, 0.0)
     starts = np.concatenate(([0], np.cumsum(n.astype(np.int64))[:-1]))

@@ -185,6 +185,7 @@ class Readings:
         line=None,
         columns: Mapping[str, str] | None = None,
         meta: Mapping[str, object] | None = None,
+        copy: bool = True,
     ) -> "Readings":
         """Validate raw readings and build their uncertainty model.
 
@@ -213,6 +214,10 @@ class Readings:
             Source line of each reading (for messages).
         columns : mapping, optional
             Header text of each field (for messages), e.g. ``{"voltage": "Voltage [mV]"}``.
+        copy : bool
+            Copy the arrays (default). ``False`` hands float64 and int64 arrays over
+            without a copy (the reader does this with arrays it made itself); the caller
+            must not change them afterwards.
 
         Raises
         ------
@@ -232,7 +237,7 @@ class Readings:
 
         given = {k: v for k, v in (("voltage", voltage), ("current", current), ("load", load))
                  if v is not None}
-        line_arr = None if line is None else np.array(line, dtype=np.int64)
+        line_arr = None if line is None else np.array(line, dtype=np.int64, copy=copy or None)
         if len(given) < 2:
             have = ", ".join(given) or "none"
             raise ReadingsFileError(
@@ -241,7 +246,8 @@ class Readings:
         arrays = {}
         n = None
         for k, v in given.items():
-            a = np.array(v, dtype=np.float64).ravel()  # a private copy (see __post_init__)
+            a = np.array(v, dtype=np.float64, copy=copy or None).ravel()  # private (see
+            # __post_init__), unless the caller hands it over
             if n is None:
                 n = a.size
             elif a.size != n:
@@ -287,7 +293,7 @@ class Readings:
 
         # ---- DUT grouping
         if group is not None:
-            g = np.array(group, dtype=np.int64).ravel()
+            g = np.array(group, dtype=np.int64, copy=copy or None).ravel()
             names = tuple(duts or ())
             if names and type(names[0]) is not str:
                 names = tuple(str(d) for d in names)

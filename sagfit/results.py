@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import math
+import operator
 from dataclasses import dataclass, field
 from typing import Iterator, Mapping
 
@@ -256,13 +257,21 @@ class Fits:
         return len(self.duts)
 
     def __repr__(self) -> str:
-        bad = sum(e is not None for e in self.error)
+        bad = len(self.error) - self.error.count(None)
         return f"<Fits {len(self)} DUT(s), {len(self) - bad} fitted, {bad} error(s)>"
 
     @property
     def ok(self) -> np.ndarray:
         """Boolean mask of the DUTs that were fitted."""
-        return np.array([e is None for e in self.error], dtype=bool)
+        return np.fromiter(map(operator.is_, self.error, itertools.repeat(None)), dtype=bool,
+                           count=len(self.error))
+
+    def flag_mask(self, test) -> np.ndarray:
+        """``test(flags)`` of each DUT as a boolean mask. DUTs share flag tuples, so
+        ``test`` runs once per distinct tuple; the per-DUT work runs in C."""
+        ids = list(map(id, self.flags))
+        value = {key: bool(test(fl)) for key, fl in dict(zip(ids, self.flags)).items()}
+        return np.fromiter(map(value.__getitem__, ids), dtype=bool, count=len(ids))
 
     def index(self, key) -> int:
         if isinstance(key, (int, np.integer)):

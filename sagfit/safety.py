@@ -68,11 +68,7 @@ def prospective_isc(fits) -> np.ndarray:
     knee_i = np.asarray(fits.diagnostics.get("knee", {}).get("current",
                                                             np.full(len(fits), np.nan)),
                         dtype=float)
-    seen: dict[int, bool] = {}  # flag tuples are shared between DUTs: test each once
-    limited = np.fromiter(
-        (seen[id(fl)] if id(fl) in seen else
-         seen.setdefault(id(fl), any(f.code in ("knee", "below-knee") for f in fl))
-         for fl in fits.flags), dtype=bool, count=len(fits))
+    limited = fits.flag_mask(lambda fl: any(f.code in ("knee", "below-knee") for f in fl))
     return np.where(limited & np.isfinite(knee_i), np.abs(knee_i), fits.isc)
 
 
