@@ -303,7 +303,7 @@ def _curvature(R: _Rows, level):
         out["u_c"] = np.where(run, np.sqrt(q["var_c"] * np.maximum(scale, 1.0 * known)), _NAN)
     out["statistic"] = np.where(run, stat, _NAN)
     out["p_value"] = np.where(run, np.minimum(p, 1.0), _NAN)
-    test = np.where(run, np.where(known, "chi2-difference", "F"), None).astype(object)
+    test = _TESTS[np.where(run, np.where(known, 2, 1), 0)]
     return out, test, run
 
 
@@ -423,7 +423,7 @@ def _knee(R: _Rows, level):
     # uncertainty; they decide which DUTs deserve the exact refit.
     K = out["splits"]
     stat, p, known = _knee_p(lam_line - lam_br, lam_br, R.n, R.stated, K, tested)
-    source = np.where(tested, "orthogonal", None).astype(object)
+    source = _SOURCES[tested.astype(np.intp)]
     refine = tested & (p < KNEE_SCREEN_P)
     # York refit of the chosen split: each segment with its own slope in the weights
     rows = refine[g]
@@ -448,7 +448,7 @@ def _knee(R: _Rows, level):
     run = eligible
     out["statistic"] = np.where(tested, stat, _NAN)
     out["p_value"] = np.where(tested, p, np.where(eligible, 1.0, _NAN))
-    test = np.where(tested, np.where(known, "chi2-difference", "F"), None).astype(object)
+    test = _TESTS[np.where(tested, np.where(known, 2, 1), 0)]
     out["weights"] = source
     return out, test, run
 
@@ -518,7 +518,7 @@ def _drift(R: _Rows, level, has_time):
         p = 2.0 * special.stdtr(size - 2.0, -np.abs(tt))
         out["rho"][duts] = rho
         out["p_value"][duts] = np.minimum(p, 1.0)
-        basis[duts] = np.where(timed, "time", "reading order")
+        basis[duts] = _BASES[timed.astype(np.intp)]
         run[duts] = True
     return out, basis, run
 
@@ -810,6 +810,13 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     settings = dict(fits.settings)
     settings["level"] = float(level)
     return fits.replace(diagnostics=diagnostics, settings=settings).add_flags(new.tolist())
+
+
+# Per-DUT label columns index these: every DUT shares one str object per label (an
+# np.where over strings then .astype(object) made 100,000 new strings per column).
+_TESTS = np.array([None, "F", "chi2-difference"], dtype=object)
+_SOURCES = np.array([None, "orthogonal"], dtype=object)
+_BASES = np.array(["reading order", "time"], dtype=object)
 
 
 def _level_col(run, level):

@@ -357,7 +357,9 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
 
 def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence) -> Fits:
     xerr = np.bincount(g, weights=(sxx > 0) | (sxy != 0), minlength=m) > 0
-    method = np.where(~stated, "ols", np.where(xerr, "york", "wls")).astype(object)
+    # one shared str per method (not 100,000 new strings)
+    method = np.array(["wls", "york", "ols"], dtype=object)[np.where(~stated, 2,
+                                                                     xerr.astype(np.intp))]
     method[bad] = ""
     dof = np.maximum(n - 2, 0)
     chi2 = res["chi2"]
