@@ -630,7 +630,7 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
         "corr_vth_rth": _corr(fits),
         "chi2": fits.chi2, "dof": fits.dof, "p_value": fits.p_value,
         "coverage_factor": k, "confidence": np.full(len(fits), fits.confidence),
-        "flags": _flag_codes(fits.flags),
+        "flags": _flag_codes(fits),
         "error": [e or "" for e in fits.error],
     }
     if extra_columns:
@@ -638,11 +638,11 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
     return cols
 
 
-def _flag_codes(flags) -> list[str]:
-    """'code;code' per DUT; most DUTs share a handful of flag tuples, so join each once."""
-    distinct = dict(zip(map(id, flags), flags))
-    text = {key: ";".join(f.code for f in fl) for key, fl in distinct.items()}
-    return list(map(text.__getitem__, map(id, flags)))
+def _flag_codes(fits) -> list[str]:
+    """'code;code' per DUT, joined once per distinct flag tuple (``Fits.flag_groups``)."""
+    codes, distinct = fits.flag_groups
+    texts = [";".join(f.code for f in fl) for fl in distinct]
+    return list(map(texts.__getitem__, codes.tolist()))
 
 
 def fits_table(fits, extra_columns: Mapping[str, object] | None = None):

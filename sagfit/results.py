@@ -8,6 +8,7 @@ builds the per-DUT view ``FitResult`` with ``Estimate`` fields on demand.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import math
 import operator
@@ -266,12 +267,22 @@ class Fits:
         return np.fromiter(map(operator.is_, self.error, itertools.repeat(None)), dtype=bool,
                            count=len(self.error))
 
-    def flag_mask(self, test) -> np.ndarray:
-        """``test(flags)`` of each DUT as a boolean mask. DUTs share flag tuples, so
-        ``test`` runs once per distinct tuple; the per-DUT work runs in C."""
+    @functools.cached_property
+    def flag_groups(self) -> tuple[np.ndarray, list]:
+        """(codes, distinct): DUT i carries the flag tuple ``distinct[codes[i]]``. DUTs
+        share flag tuples (a large batch holds a handful), so per-DUT questions about
+        flags are asked once per distinct tuple and gathered with ``codes``."""
         ids = list(map(id, self.flags))
-        value = {key: bool(test(fl)) for key, fl in dict(zip(ids, self.flags)).items()}
-        return np.fromiter(map(value.__getitem__, ids), dtype=bool, count=len(ids))
+        distinct = dict(zip(ids, self.flags))
+        number = {key: k for k, key in enumerate(distinct)}
+        codes = np.fromiter(map(number.__getitem__, ids), dtype=np.intp, count=len(ids))
+        return codes, list(distinct.values())
+
+    def flag_mask(self, test) -> np.ndarray:
+        """``test(flags)`` of each DUT as a boolean mask, ``test`` run once per distinct
+        flag tuple (see :attr:`flag_groups`)."""
+        codes, distinct = self.flag_groups
+        return np.array([bool(test(fl)) for fl in distinct], dtype=bool)[codes]
 
     def index(self, key) -> int:
         if isinstance(key, (int, np.integer)):

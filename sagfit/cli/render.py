@@ -128,12 +128,12 @@ def _print_flags(console, fits, verbose):
     shown = 0
     counts: Counter = Counter()
     # DUTs share flag tuples: count each distinct tuple once, then weight by its uses
-    uses = Counter(map(id, fits.flags))
-    distinct = dict(zip(map(id, fits.flags), fits.flags))
-    for key, fl in distinct.items():
+    codes, distinct = fits.flag_groups
+    uses = np.bincount(codes, minlength=len(distinct))
+    for key, fl in enumerate(distinct):
         for f in fl:
             if f.severity == "warning":
-                counts[f.code] += uses[key]
+                counts[f.code] += int(uses[key])
     if len(fits) > 1 and counts:
         summary = ", ".join(f"{code} {n}" for code, n in counts.most_common())
         console.print(f"[bold]checks[/bold]: warnings across {len(fits)} DUTs: {summary}",
@@ -142,9 +142,9 @@ def _print_flags(console, fits, verbose):
     def shows(f):
         return not (f.severity == "info" and not verbose and len(fits) > 1)
 
-    # only DUTs whose flag tuple holds something to show (a C-level scan, not a loop)
-    showable = {key for key, fl in distinct.items() if any(shows(f) for f in fl)}
-    for i in compress(range(len(fits)), map(showable.__contains__, map(id, fits.flags))):
+    # only DUTs whose flag tuple holds something to show (a vector scan, not a loop)
+    showable = fits.flag_mask(lambda fl: any(shows(f) for f in fl))
+    for i in np.flatnonzero(showable).tolist():
         for f in fits.flags[i]:
             if not shows(f):
                 continue
