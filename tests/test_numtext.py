@@ -120,5 +120,6 @@ class TestTable:
             "mixed": [None if i % 2 else 3 for i in range(n)],
             "lead": ["-x" if i == 5 else "a" for i in range(n)],
             "tab": ["\tx" if i == 7 else "a" for i in range(n)],
+            "lines": ["two\nlines" if i == 2 else ("a,b" if i == 3 else "x\r") for i in range(n)],
         }
         assert table_csv(cols) == _old_table_csv(cols)
