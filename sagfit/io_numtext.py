@@ -22,7 +22,7 @@ import numpy as np
 
 PAD = 0xFF  # never a byte of UTF-8 text
 WIDTH = 17  # len('%.10g' % -1.234567891e-308)
-CHUNK_ROWS = 65_536  # bounds the temporary index arrays (about 5 MB per float column)
+CHUNK_ROWS = 65_536  # rows formatted at a time: bounds the temporaries (a few MB)
 _TIE = 8e-6  # four ulps of a mantissa below 1e10 (ulp 2**-19 ≈ 1.9e-6)
 
 # Byte columns of the per-row source table built in _g10_chunk: 0–9 the ten mantissa
@@ -48,8 +48,7 @@ def _patterns() -> np.ndarray:
         else:
             idx += [0, _S_DOT] + list(range(1, 10)) + [_S_E, _S_ESIGN, _S_EXP, _S_EXP + 1,
                                                        _S_EXP + 2]
-        idx = idx[:WIDTH] if len(idx) > WIDTH else idx
-        table[form, :len(idx)] = idx
+        table[form, :len(idx)] = idx  # at most 17 bytes (see WIDTH)
     return table
 
 
