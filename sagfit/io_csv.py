@@ -619,7 +619,7 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
     k = fits.k
     cols = {
         "dut": list(fits.duts),
-        "method": fits.method.astype(str).tolist(),
+        "method": _coded(fits.method),
         "n": fits.n,
         "vth": fits.vth, "vth_u": fits.u_vth,
         "vth_ci_low": fits.vth - k * fits.u_vth, "vth_ci_high": fits.vth + k * fits.u_vth,
@@ -631,18 +631,47 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
         "chi2": fits.chi2, "dof": fits.dof, "p_value": fits.p_value,
         "coverage_factor": k, "confidence": np.full(len(fits), fits.confidence),
         "flags": _flag_codes(fits),
-        "error": [e or "" for e in fits.error],
+        "error": _coded(fits.error),
     }
     if extra_columns:
         cols.update(extra_columns)
     return cols
 
 
-def _flag_codes(fits) -> list[str]:
+class Coded:
+    """A text column of few distinct values: ``labels[codes[i]]`` is row i's text. The
+    CSV writer encodes each label once; ``list(column)`` gives the texts."""
+
+    __slots__ = ("codes", "labels")
+
+    def __init__(self, codes: np.ndarray, labels: list[str]):
+        self.codes, self.labels = codes, labels
+
+    def __len__(self) -> int:
+        return int(self.codes.size)
+
+    def __getitem__(self, key):
+        if isinstance(key, slice):
+            return Coded(self.codes[key], self.labels)
+        return self.labels[int(self.codes[key])]
+
+    def __iter__(self):
+        return iter(map(self.labels.__getitem__, self.codes.tolist()))
+
+
+def _coded(values) -> Coded:
+    """Text (or None, written as an empty cell) per DUT → :class:`Coded` (hash-based)."""
+    import pandas as pd
+
+    codes, uniques = pd.factorize(np.asarray(values, dtype=object), use_na_sentinel=True)
+    labels = ["" if u is None else str(u) for u in uniques.tolist()] + [""]
+    return Coded(np.where(codes < 0, len(labels) - 1, codes), labels)
+
+
+def _flag_codes(fits) -> Coded:
     """'code;code' per DUT, joined once per distinct flag tuple (``Fits.flag_groups``)."""
     codes, distinct = fits.flag_groups
-    texts = [";".join(f.code for f in fl) for fl in distinct]
-    return list(map(texts.__getitem__, codes.tolist()))
+    return Coded(codes, [";".join(f.code for f in fl) for fl in distinct])
 
 
 def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
@@ -651,6 +680,8 @@ def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
 
     cols = fits_columns(fits, extra_columns)
     for name, col in cols.items():
+        if isinstance(col, Coded):
+            col = cols[name] = list(col)
         if isinstance(col, list) and col and isinstance(col[0], str):
             cols[name] = [neutralise(c) for c in col]
     return pd.DataFrame(cols)
@@ -755,6 +786,8 @@ def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
                 blocks.append(g10_matrix(col))
         elif isinstance(col, Encoded):
             blocks.append(_text_block(col))
+        elif isinstance(col, Coded):
+            blocks.append(text_matrix(_csv_text_column(list(col.labels)))[col.codes])
         else:
             if isinstance(col, list) and all(type(v) is str for v in col[:1]):
                 vals = col  # a list of text (homogeneous by construction)
