@@ -481,6 +481,51 @@ def _scan(arr: np.ndarray, delim: int):
     return np.concatenate(nls), np.concatenate(counts)
 
 
+def _clean_rows(arr: np.ndarray, delim: int, ncols: int, check_fields: bool) -> int | None:
+    """The number of data lines when the table is plain: no blank or comment line, no line
+    starting with a blank, no line longer than MAX_LINE, and (``check_fields``) exactly
+    ``ncols − 1`` delimiters on every line. None otherwise (the full scan then finds out
+    what is wrong, and where).
+
+    Works window by window (windows end at a line end), so the temporaries are small and
+    reused: the full scan's per-line arrays for a 27 MB file cost about 60 ms of fresh
+    memory on their own.
+    """
+    bad_first = np.zeros(256, bool)
+    bad_first[[ord("#"), ord(" "), ord("\t")]] = True
+    count = 0
+    a, size = 0, arr.size
+    while a < size:
+        part = arr[a:a + _SCAN_BYTES]
+        nl = np.flatnonzero(part == 10)
+        last = a + part.size >= size
+        if not last:
+            if nl.size == 0:
+                return None  # a line as long as a window: the full scan reports it
+            part = part[:int(nl[-1]) + 1]
+        ends = nl
+        starts = np.empty(ends.size, dtype=np.intp)
+        if ends.size:
+            starts[0] = 0
+            starts[1:] = ends[:-1] + 1
+        tail = int(ends[-1]) + 1 if ends.size else 0
+        if last and tail < part.size:  # a last line without its line end
+            starts = np.append(starts, tail)
+            ends = np.append(ends, part.size)
+        lengths = ends - starts
+        if lengths.size and (lengths.min() == 0 or lengths.max() > MAX_LINE
+                             or bad_first[part[starts]].any()):
+            return None
+        if check_fields:
+            dpos = np.flatnonzero(part == delim)
+            per = np.diff(np.searchsorted(dpos, ends), prepend=0)
+            if (per != ncols - 1).any():
+                return None
+        count += lengths.size
+        a += part.size
+    return count
+
+
 def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols: int):
     """Line numbers of the data rows (after byte ``pos``), and what to hand the tokenizer:
     ``data`` itself read from ``pos`` on when no blank or comment line has to go (no
@@ -490,6 +535,10 @@ def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, n
     quote characters; with quotes, pandas' tokenizer checks it.
     """
     arr = np.frombuffer(data, dtype=np.uint8)[pos:]
+    plain = _clean_rows(arr, ord(delim), ncols, data.find(b'"', pos) < 0)
+    if plain:  # the usual file: every line after the header is a row
+        return (np.arange(header_line + 1, header_line + 1 + plain, dtype=np.int64),
+                (data, pos))
     nl, per_line = _scan(arr, ord(delim))
     starts = np.concatenate(([0], nl + 1))
     ends = np.concatenate((nl, [arr.size]))

@@ -268,3 +268,48 @@ def test_dut_ids_with_outer_blanks_are_one_dut(tmp_path, first, second):
             f"{first},open,12.0\n{first},10,11.9\n{second},4.7,11.8\nB,open,5.0\nB,10,4.9\n")
     r = read_readings(write(tmp_path, text))
     assert r.duts == ("A", "B") and r.counts().tolist() == [3, 2]
+
+
+class TestPlainTableFastPath:
+    """The window-by-window check for plain tables agrees with the full line scan
+    (plumbing test: the full scan is the reference)."""
+
+    BODY = "".join(f"U{k // 3},{10 + k % 3},{12.0 - 0.01 * (k % 3):.3f}\n" for k in range(30))
+    HEAD, REST = BODY[:BODY.index("U2,")], BODY[BODY.index("U2,"):]  # split at a line end
+    CASES = {
+        "plain": "dut,load_ohm,voltage_V\n" + BODY,
+        "no final line end": "dut,load_ohm,voltage_V\n" + BODY.rstrip("\n"),
+        "trailing blank lines": "dut,load_ohm,voltage_V\n" + BODY + "\n\n",
+        "comment inside": "dut,load_ohm,voltage_V\n" + HEAD + "# pause\n" + REST,
+        "blank inside": "dut,load_ohm,voltage_V\n" + HEAD + "\n" + REST,
+        "indented blank": "dut,load_ohm,voltage_V\n" + HEAD + "  \t\n" + REST,
+        "comment at the end": "dut,load_ohm,voltage_V\n" + BODY + "# end of sweep\n",
+    }
+
+    @pytest.mark.parametrize("case", sorted(CASES))
+    @pytest.mark.parametrize("slice_bytes", [16, 64, 1 << 20])
+    def test_same_as_full_scan(self, tmp_path, monkeypatch, case, slice_bytes):
+        import sagfit.io_csv as io_csv
+
+        p = write(tmp_path, self.CASES[case])
+        monkeypatch.setattr(io_csv, "_SCAN_BYTES", slice_bytes)
+        fast = read_readings(p)
+        monkeypatch.setattr(io_csv, "_clean_rows", lambda *a: None)
+        full = read_readings(p)
+        assert fast.duts == full.duts
+        np.testing.assert_array_equal(fast.line, full.line)
+        np.testing.assert_array_equal(fast.voltage, full.voltage)
+
+    def test_only_plain_tables_take_it(self):
+        import sagfit.io_csv as io_csv
+
+        def count(text, ncols=3):
+            arr = np.frombuffer(text.encode(), dtype=np.uint8)
+            return io_csv._clean_rows(arr, ord(","), ncols, True)
+
+        assert count(self.BODY) == 30
+        assert count(self.BODY.rstrip("\n")) == 30
+        assert count(self.BODY + "\n") is None  # a blank line
+        assert count("# note\n" + self.BODY) is None
+        assert count(self.BODY.replace("U1,", "U1,,", 1)) is None  # a field too many
+        assert count(self.BODY, ncols=4) is None
