@@ -210,7 +210,8 @@ def _limit(path, key, raw, dim) -> float:
             raise SpecFileError(path, f"cannot read {raw!r} as a percentage (write e.g. "
                                       "\"1.5%\")", key=key) from None
     elif isinstance(raw, (int, float)):
-        value = float(raw)
+        value = _finite(raw)
+        value = math.nan if value is None else value  # refused just below
     elif isinstance(raw, str):
         try:
             value = parse_quantity(_ohm(raw), dim, what=key)
@@ -305,6 +306,28 @@ def _make(path, key, **kw) -> Check:
         raise SpecFileError(path, str(exc), key=key) from None
 
 
+def _finite(v) -> float | None:
+    """A TOML number as a finite float (None for text, booleans, nan, inf, or an integer
+    too large for a float)."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return None
+    try:
+        f = float(v)
+    except OverflowError:
+        return None
+    return f if math.isfinite(f) else None
+
+
+#: The numeric keys of [decision]: name, the range it must lie in, and the message.
+_DECISION_NUMBERS = (
+    ("confidence", lambda v: 0 < v < 1, "must be a number between 0 and 1, e.g. 0.95"),
+    ("k", lambda v: v > 0, "coverage factor must be a positive number, e.g. 2"),
+    ("min_conformance", lambda v: 0.5 < v < 1,
+     "must be a probability above 0.5 and below 1, e.g. 0.95"),
+    ("guard", lambda v: v >= 0, "must be a number ≥ 0 (the guard band as a multiple of U)"),
+)
+
+
 def _decision(path, body) -> DecisionRule:
     kw: dict = {}
     if "rule" in body:
@@ -314,32 +337,12 @@ def _decision(path, body) -> DecisionRule:
         kw["rule"] = rule
     if "confidence" in body and "k" in body:
         raise SpecFileError(path, "give either confidence or k, not both", key="decision.k")
-    if "confidence" in body:
-        c = body["confidence"]
-        if isinstance(c, bool) or not isinstance(c, (int, float)) or not 0 < c < 1:
-            raise SpecFileError(path, "must be a number between 0 and 1, e.g. 0.95",
-                                key="decision.confidence")
-        kw["confidence"] = float(c)
-    if "k" in body:
-        k = body["k"]
-        if isinstance(k, bool) or not isinstance(k, (int, float)) or not (
-                math.isfinite(k) and k > 0):
-            raise SpecFileError(path, "coverage factor must be a positive number, e.g. 2",
-                                key="decision.k")
-        kw["k"] = float(k)
-    if "min_conformance" in body:
-        p = body["min_conformance"]
-        if isinstance(p, bool) or not isinstance(p, (int, float)) or not 0.5 < p < 1:
-            raise SpecFileError(path, "must be a probability above 0.5 and below 1, e.g. 0.95",
-                                key="decision.min_conformance")
-        kw["min_conformance"] = float(p)
-    if "guard" in body:
-        g = body["guard"]
-        if isinstance(g, bool) or not isinstance(g, (int, float)) or not (
-                math.isfinite(g) and g >= 0):
-            raise SpecFileError(path, "must be a number ≥ 0 (the guard band as a multiple "
-                                      "of U)", key="decision.guard")
-        kw["guard"] = float(g)
+    for name, fits, msg in _DECISION_NUMBERS:
+        if name in body:
+            v = _finite(body[name])
+            if v is None or not fits(v):
+                raise SpecFileError(path, msg, key=f"decision.{name}")
+            kw[name] = v
     if "cap_flagged" in body:
         if not isinstance(body["cap_flagged"], bool):
             raise SpecFileError(path, "must be true or false", key="decision.cap_flagged")

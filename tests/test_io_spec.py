@@ -171,3 +171,18 @@ class TestErrorsNameTheKey:
         p.write_bytes(b"\xff\xfe\x00garbage")
         with pytest.raises(SpecFileError):
             read_spec(str(p))
+
+
+@pytest.mark.parametrize("body", ["[decision]\nk = " + "9" * 400,
+                                  "[limits.vth]\nmin = " + "9" * 400])
+def test_integer_too_large_for_a_float_is_a_clean_error(tmp_path, body):
+    """A TOML integer beyond the float range is refused with a one-line error naming the
+    key (not an internal error)."""
+    from sagfit.errors import SpecFileError
+    from sagfit.io_spec import read_spec
+
+    p = tmp_path / "s.toml"
+    p.write_text("[limits.rth]\nmax = \"40mohm\"\n" + body + "\n")
+    with pytest.raises(SpecFileError) as exc:
+        read_spec(str(p))
+    assert "decision.k" in str(exc.value) or "limits.vth" in str(exc.value)
