@@ -216,29 +216,14 @@ def read_readings(
     ReadingsFileError
         With the file name, and the line and column of a bad cell.
     """
-    p = Path(path)
-    name = str(path)
+    from .io_files import read_input
+
     limit = MAX_BYTES if max_bytes is None else int(max_bytes)
-    try:
-        if p.is_dir():
-            raise ReadingsFileError(name, "is a folder, not a readings file")
-        size = p.stat().st_size
-    except FileNotFoundError:
-        raise ReadingsFileError(name, "no such file") from None
-    except PermissionError:
-        raise ReadingsFileError(name, "permission denied") from None
-    except OSError as exc:
-        raise ReadingsFileError(name, f"cannot open the file ({exc.strerror or exc})") from None
-    if size > limit:
-        raise ReadingsFileError(name, f"the file is {size / 1e6:.1f} MB, above the limit of "
-                                      f"{limit / 1e6:.1f} MB (set SAGFIT_MAX_BYTES to raise it)")
-    try:
-        with open(p, "rb") as fh:
-            data = fh.read(limit + 1)
-    except PermissionError:
-        raise ReadingsFileError(name, "permission denied") from None
-    except OSError as exc:
-        raise ReadingsFileError(name, f"cannot read the file ({exc.strerror or exc})") from None
+    data = read_input(path, ReadingsFileError, what="readings file", limit=limit,
+                      too_large=lambda size: (
+                          f"the file is {size / 1e6:.1f} MB, above the limit of "
+                          f"{limit / 1e6:.1f} MB (set SAGFIT_MAX_BYTES to raise it)"))
+    name, p = str(path), Path(path)
     return parse_table(data, name, stem=p.stem, voltage_accuracy=voltage_accuracy,
                        current_accuracy=current_accuracy, load_tolerance=load_tolerance)
 

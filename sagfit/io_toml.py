@@ -7,10 +7,10 @@ where there is one, the key.
 from __future__ import annotations
 
 import tomllib
-from pathlib import Path
 from typing import Mapping
 
 from .errors import SpecFileError
+from .io_files import read_input
 
 __all__ = ["MAX_TOML_BYTES", "read_bytes", "read_toml", "parse_toml", "check_layout"]
 
@@ -24,20 +24,8 @@ def read_toml(path: str, what: str) -> dict:
 
 def read_bytes(path: str, what: str) -> bytes:
     """The bytes of a small file, with the usual one-line errors."""
-    p = Path(path)
-    try:
-        if p.is_dir():
-            raise SpecFileError(path, f"is a folder, not a {what}")
-        if p.stat().st_size > MAX_TOML_BYTES:
-            raise SpecFileError(path, f"larger than 1 MiB; not a {what}")
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise SpecFileError(path, "no such file") from None
-    except PermissionError:
-        raise SpecFileError(path, "permission denied") from None
-    except OSError as exc:
-        raise SpecFileError(path, f"cannot read the file ({exc.strerror or exc})") from None
-    return raw
+    return read_input(path, SpecFileError, what=what, limit=MAX_TOML_BYTES,
+                      too_large=lambda size: f"larger than 1 MiB; not a {what}")
 
 
 def parse_toml(raw: bytes | str, path: str) -> dict:
