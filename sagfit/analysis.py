@@ -6,15 +6,13 @@ in, frozen results out.
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import math
-import os
-import sys
 
 import numpy as np
 from scipy import special
 
+from ._parallel import WORKERS, map_parallel
 from .diagnostics import diagnose, knee_rows
 from .errors import InputError
 from .fit import fit_lines
@@ -129,38 +127,14 @@ CHUNK_DUTS = 8_192
 
 
 def _fit_checked(readings, confidence, level, robust):
-    workers = min(2, os.cpu_count() or 1)
     m = readings.n_duts
-    if robust or workers < 2 or m < PARALLEL_DUTS:
+    if robust or WORKERS < 2 or m < PARALLEL_DUTS:
         return _fit_checked_one(readings, confidence, level, robust)
-    from concurrent.futures import ThreadPoolExecutor
-
     cuts = list(range(0, m, CHUNK_DUTS)) + [m]
     slices = [readings.dut_range(a, b) for a, b in zip(cuts[:-1], cuts[1:])]
-    with quick_gil_handover(), ThreadPoolExecutor(workers) as pool:
-        parts = list(pool.map(lambda r: _fit_checked_one(r, confidence, level, robust),
-                              slices))
+    parts = map_parallel(lambda r: _fit_checked_one(r, confidence, level, robust), slices)
     return Fits.concat(parts).replace(settings={**parts[0].settings,
                                                 "source": readings.source})
-
-
-#: Interpreter switch interval while the two threads run (Python's default is 5 ms).
-#: Each thread hands the GIL back and forth thousands of times (numpy releases it for
-#: every array operation); a thread that wants it back waits up to this interval, so a
-#: shorter one makes the pair about 15 % faster on 100,000 DUTs (measured 0.5 ms against
-#: the default, minima of 6 runs; 0.2 ms was slower again).
-SWITCH_INTERVAL = 0.0005
-
-
-@contextlib.contextmanager
-def quick_gil_handover():
-    """Shorten the interpreter's thread switch interval for a block, then restore it."""
-    before = sys.getswitchinterval()
-    sys.setswitchinterval(min(before, SWITCH_INTERVAL))
-    try:
-        yield
-    finally:
-        sys.setswitchinterval(before)
 
 
 def _fit_checked_one(readings, confidence, level, robust):

@@ -791,17 +791,14 @@ def csv_rows(columns: Mapping[str, object]) -> list:
     if not names:
         return []
     n = len(columns[names[0]])
-    if n >= PARALLEL_ROWS and (os.cpu_count() or 1) >= 2:
-        from concurrent.futures import ThreadPoolExecutor
+    if n < PARALLEL_ROWS:
+        return [_csv_body(columns)]
+    from ._parallel import map_parallel
 
-        half = n // 2
-        parts = [{k: (Encoded(v[a:b]) if isinstance(v, Encoded) else v[a:b])
-                  for k, v in columns.items()} for a, b in ((0, half), (half, n))]
-        from .analysis import quick_gil_handover
-
-        with quick_gil_handover(), ThreadPoolExecutor(2) as pool:
-            return list(pool.map(_csv_body, parts))
-    return [_csv_body(columns)]
+    half = n // 2
+    return map_parallel(_csv_body, [{k: (Encoded(v[a:b]) if isinstance(v, Encoded) else v[a:b])
+                                     for k, v in columns.items()}
+                                    for a, b in ((0, half), (half, n))])
 
 
 def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
