@@ -723,7 +723,7 @@ def fits_table(fits, extra_columns: Mapping[str, object] | None = None):
 
 def fits_csv(fits, extra_columns: Mapping[str, object] | None = None) -> list:
     """The results as UTF-8 CSV, a list of byte chunks in file order (see
-    :func:`table_csv_bytes`; ``outputs.atomic_write`` writes such a list without joining
+    :func:`table_csv_chunks`; ``outputs.atomic_write`` writes such a list without joining
     it, ``b"".join`` makes one bytes object)."""
     return table_csv_chunks(fits_columns(fits, extra_columns))
 
@@ -762,20 +762,15 @@ def _text_block(vals: list[str]) -> np.ndarray:
 PARALLEL_ROWS = 40_000
 
 
-def table_csv_bytes(columns: Mapping[str, object]) -> bytes:
-    """Columns → UTF-8 CSV bytes, fast for 100,000 rows (whole columns at a time, see
-    :mod:`sagfit.io_numtext`).
+def table_csv_chunks(columns: Mapping[str, object]) -> list:
+    """Columns → UTF-8 CSV, as byte chunks in file order (header first; no joined copy),
+    fast for 100,000 rows (whole columns at a time, see :mod:`sagfit.io_numtext`).
 
     Floats are written as ``'%.10g'`` writes them (10 significant digits), NaN and ±inf
     become empty cells, integers stay integers; text cells are formula-neutralised
     (:func:`neutralise`) and quoted where needed, so numeric columns stay numeric for a
     spreadsheet.
     """
-    return b"".join(table_csv_chunks(columns))
-
-
-def table_csv_chunks(columns: Mapping[str, object]) -> list:
-    """:func:`table_csv_bytes` as a list of byte chunks in file order (no joined copy)."""
     header = (",".join(_csv_text_cell(n) for n in columns) + "\n").encode("utf-8")
     return [header, *csv_rows(columns)]
 
@@ -786,7 +781,7 @@ class Encoded(list):
 
 
 def csv_rows(columns: Mapping[str, object]) -> list:
-    """The data rows of :func:`table_csv_bytes` (no header), as a list of byte chunks."""
+    """The data rows of :func:`table_csv_chunks` (no header), as a list of byte chunks."""
     names = list(columns)
     if not names:
         return []
@@ -831,8 +826,8 @@ def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
 
 
 def table_csv(columns: Mapping[str, object]) -> str:
-    """:func:`table_csv_bytes` as text."""
-    return table_csv_bytes(columns).decode("utf-8")
+    """:func:`table_csv_chunks` as one text."""
+    return b"".join(table_csv_chunks(columns)).decode("utf-8")
 
 
 def _corr(fits):
