@@ -119,31 +119,30 @@ def _fleet_figure(trends, members, key, excess_pct):
 
 
 def _csv(trends) -> str:
-    from .io_csv import neutralise
+    """``trend.csv``: one row per DUT, through the project's CSV writer (numbers as
+    ``%.10g``, non-finite values as empty cells, text neutralised and quoted as needed)."""
+    from .io_csv import table_csv
 
-    head = ["dut", "records", "baseline_rth_ohm", "latest_rth_ohm", "u_latest_rth_ohm",
-            "latest_date", "change_pct", "u_change_pct", "rate_ohm_per_30d",
-            "u_rate_ohm_per_30d", "projected_crossing", "group", "group_median_ohm",
-            "excess_pct", "flags"]
-    lines = [",".join(head)]
+    def dates(a):
+        return [iso_date(t) or "" for t in np.asarray(a, float).tolist()]
 
-    def q(s):
-        s = neutralise(str(s))
-        return '"' + s.replace('"', '""') + '"' if any(c in s for c in ',"\n\r') else s
-
-    def num(x):
-        return "" if not math.isfinite(float(x)) else f"{float(x):.10g}"
-
-    for i in range(len(trends)):
-        lines.append(",".join([
-            q(trends.duts[i]), str(int(trends.records[i])), num(trends.baseline_rth[i]),
-            num(trends.latest_rth[i]), num(trends.u_latest[i]),
-            iso_date(trends.latest_time[i]) or "", num(trends.change_pct[i]),
-            num(trends.u_change_pct[i]), num(trends.rate[i]), num(trends.u_rate[i]),
-            iso_date(trends.crossing_time[i]) or "", q(trends.group_key[i]),
-            num(trends.group_median[i]), num(trends.excess_pct[i]),
-            q(";".join(trends.codes(i)))]))
-    return "\n".join(lines) + "\n"
+    return table_csv({
+        "dut": [str(d) for d in trends.duts],
+        "records": np.asarray(trends.records, dtype=np.int64),
+        "baseline_rth_ohm": np.asarray(trends.baseline_rth, float),
+        "latest_rth_ohm": np.asarray(trends.latest_rth, float),
+        "u_latest_rth_ohm": np.asarray(trends.u_latest, float),
+        "latest_date": dates(trends.latest_time),
+        "change_pct": np.asarray(trends.change_pct, float),
+        "u_change_pct": np.asarray(trends.u_change_pct, float),
+        "rate_ohm_per_30d": np.asarray(trends.rate, float),
+        "u_rate_ohm_per_30d": np.asarray(trends.u_rate, float),
+        "projected_crossing": dates(trends.crossing_time),
+        "group": [str(k) for k in trends.group_key],
+        "group_median_ohm": np.asarray(trends.group_median, float),
+        "excess_pct": np.asarray(trends.excess_pct, float),
+        "flags": [";".join(trends.codes(i)) for i in range(len(trends))],
+    })
 
 
 def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
