@@ -276,23 +276,24 @@ def _robust(readings: Readings, fits: Fits, confidence: float) -> Fits:
     k = np.where(ols, fits.k, cur.k)
     method = np.where(ols, fits.method, cur.method)
     n_down = np.bincount(g, weights=weight < 1.0, minlength=len(fits)).astype(np.int64)
-    cache: dict[tuple[int, int], Flag] = {}
-    flags = []
-    for i in range(len(fits)):
-        kept = tuple(f for f in cur.flags[i] if not (ols[i] and f.code == "scale-applied"))
-        if ok[i]:
-            key = (int(n_down[i]), int(fits.n[i]))
-            fl = cache.get(key)
-            if fl is None:
-                fl = cache[key] = Flag(
-                    "robust", "info",
-                    f"robust refit (Huber loss, c = {HUBER_C}): {key[0]} of {key[1]} readings "
-                    "were down-weighted" + ("; the uncertainties are those of the reweighted "
-                                            "fit" if key[0] else
-                                            ", so the fit is the ordinary one"))
-            kept = tuple(f for f in fits.flags[i] if f.code == "type-a") + tuple(
+    # the flags depend on a few per-DUT values only: build them once per combination
+    cur_codes, cur_distinct = cur.flag_groups
+    old_codes, old_distinct = fits.flag_groups
+    combo = np.stack([cur_codes, old_codes, ols, ok, n_down, fits.n], axis=1).astype(np.int64)
+    uniq, which = np.unique(combo, axis=0, return_inverse=True)
+    built = np.empty(len(uniq), dtype=object)
+    for j, (c_cur, c_old, is_ols, is_ok, down, n) in enumerate(uniq.tolist()):
+        kept = tuple(f for f in cur_distinct[c_cur]
+                     if not (is_ols and f.code == "scale-applied"))
+        if is_ok:
+            fl = Flag("robust", "info",
+                      f"robust refit (Huber loss, c = {HUBER_C}): {down} of {n} readings were "
+                      "down-weighted" + ("; the uncertainties are those of the reweighted fit"
+                                         if down else ", so the fit is the ordinary one"))
+            kept = tuple(f for f in old_distinct[c_old] if f.code == "type-a") + tuple(
                 f for f in kept if f.code != "type-a") + (fl,)
-        flags.append(kept)
+        built[j] = kept
+    flags = built[which.reshape(-1)].tolist()
     weights = [None] * len(fits)
     starts = np.concatenate(([0], np.cumsum(readings.counts())[:-1]))
     for i in np.flatnonzero(n_down):
