@@ -54,7 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .fit import york_state
+from .fit import _groupsum, york_state
 from .readings import Readings
 from .results import Fits
 
@@ -122,10 +122,6 @@ class Budget:
         out = np.asarray(names, dtype=object)[best]
         out[~self.valid | (stack.max(axis=0) <= 0)] = ""
         return out
-
-
-def _gsum(g, w, m):
-    return np.bincount(g, weights=w, minlength=m)
 
 
 def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
@@ -214,8 +210,8 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
                 fn, u_in = groups[gname]
                 ci = np.where(ta, 0.0, fn(c))
                 u_in = np.where(ta, 0.0, u_in)
-                s_c2 = _gsum(g, ci * ci, m)
-                var = _gsum(g, (ci * u_in) ** 2, m)
+                s_c2 = _groupsum(g, ci * ci, m)
+                var = _groupsum(g, (ci * u_in) ** 2, m)
                 with np.errstate(divide="ignore", invalid="ignore"):
                     contribution[(yname, gname)] = np.where(valid & ~type_a, np.sqrt(var), 0.0)
                     sensitivity[(yname, gname)] = np.where(valid & ~type_a, np.sqrt(s_c2), np.nan)

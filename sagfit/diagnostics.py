@@ -60,10 +60,6 @@ KNEE_SCREEN_P = 0.5
 _NAN = math.nan
 
 
-def _gsum(g, w, m):
-    return _groupsum(g, w, m)
-
-
 # ----------------------------------------------------------------------------- quadratic
 def quadratic_fit(x, y, w=None, *, group=None, m=None):
     """Weighted least-squares quadratic y = a + b·x + c·x² for one or many groups.
@@ -96,29 +92,29 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
     if m is None:
         m = int(g.max()) + 1 if g.size else 0
     n = np.bincount(g, minlength=m)
-    sw = _gsum(g, w, m)
+    sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
-        xbar = _gsum(g, w * x, m) / sw
+        xbar = _groupsum(g, w * x, m) / sw
         dx = x - xbar[g]
-        h = np.sqrt(_gsum(g, w * dx * dx, m) / sw)
+        h = np.sqrt(_groupsum(g, w * dx * dx, m) / sw)
         t = dx / h[g]
-        ybar = _gsum(g, w * y, m) / sw
+        ybar = _groupsum(g, w * y, m) / sw
         dy = y - ybar[g]
         wt = w * t
         wt2 = wt * t
-        s2 = _gsum(g, wt2, m)
-        s3 = _gsum(g, wt2 * t, m)
+        s2 = _groupsum(g, wt2, m)
+        s3 = _groupsum(g, wt2 * t, m)
         A = s3 / s2
         B = s2 / sw
         p2 = t * t - A[g] * t - B[g]
-        s22 = _gsum(g, w * p2 * p2, m)
-        g1 = _gsum(g, wt * dy, m) / s2
-        g2 = _gsum(g, w * p2 * dy, m) / s22
+        s22 = _groupsum(g, w * p2 * p2, m)
+        g1 = _groupsum(g, wt * dy, m) / s2
+        g2 = _groupsum(g, w * p2 * dy, m) / s22
         line_res = dy - g1[g] * t
-        chi2_line = _gsum(g, w * line_res * line_res, m)
+        chi2_line = _groupsum(g, w * line_res * line_res, m)
         delta = g2 * g2 * s22
         quad_res = line_res - g2[g] * p2
-        chi2_quad = _gsum(g, w * quad_res * quad_res, m)
+        chi2_quad = _groupsum(g, w * quad_res * quad_res, m)
         # back to powers of x: y = ybar + (g1 − A·g2)·t + g2·(t² − B)
         c = g2 / h ** 2
         b = (g1 - A * g2) / h - 2.0 * xbar * c
@@ -341,10 +337,10 @@ def _knee(R: _Rows, level):
         ymax[ne] = np.maximum.reduceat(R.y, starts[ne])
     rx = np.where(xmax > xmin, xmax - xmin, 1.0)
     ry = np.where(ymax > ymin, ymax - ymin, 1.0)
-    sy = np.where(R.stated, np.sqrt(_gsum(g, R.syy, m) / cnt), 1.0)
+    sy = np.where(R.stated, np.sqrt(_groupsum(g, R.syy, m) / cnt), 1.0)
     sy = np.where(sy > 0, sy, 1e-12 * ry)
     floor = 1e-6 * rx * sy / ry
-    sx = np.sqrt(np.maximum(_gsum(g, R.sxx, m) / cnt, floor ** 2))
+    sx = np.sqrt(np.maximum(_groupsum(g, R.sxx, m) / cnt, floor ** 2))
     sxx_k = np.maximum(R.sxx, floor[g] ** 2)
 
     split_row = np.zeros(g.size, np.int8)
@@ -573,7 +569,7 @@ def _lack_of_fit(R: _Rows):
     with np.errstate(divide="ignore", invalid="ignore"):
         rbar = np.bincount(c, weights=(w * r)[inb], minlength=offset) / sw
     dev = r[inb] - rbar[c]
-    ss_pe = _gsum(R.g[inb], w[inb] * dev * dev, m)
+    ss_pe = _groupsum(R.g[inb], w[inb] * dev * dev, m)
     df_pe = R.n - levels
     df_lof = levels - 2
     run = R.ok & (levels > 2) & (df_pe > 0)
@@ -591,11 +587,11 @@ def _lack_of_fit(R: _Rows):
 def _outliers(R: _Rows):
     """Externally studentised residuals with the leverage of each reading."""
     m, g, w = R.m, R.g, R.w
-    sw = _gsum(g, w, m)
+    sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
-        xbar = _gsum(g, w * R.x, m) / sw
+        xbar = _groupsum(g, w * R.x, m) / sw
         dx = R.x - xbar[g]
-        sxx = _gsum(g, w * dx * dx, m)
+        sxx = _groupsum(g, w * dx * dx, m)
         h = w / sw[g] + w * dx * dx / sxx[g]
         one_h = np.maximum(1.0 - h, 1e-12)
         nu = (R.n - 2).astype(float)
@@ -610,7 +606,7 @@ def _outliers(R: _Rows):
     at = np.abs(t)
     starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
     tmax = np.full(m, _NAN)
-    nflag = _gsum(g, at > OUTLIER_LIMIT, m)
+    nflag = _groupsum(g, at > OUTLIER_LIMIT, m)
     ne = R.n > 0
     if ne.any():
         tmax[ne] = np.maximum.reduceat(at, starts[ne])

@@ -5,7 +5,7 @@ covariance u(I, V), it is the York et al. (2004) iteration; with u(I) = 0 the sa
 iteration reduces to weighted least squares after one step; with no uncertainty stated,
 unit weights give ordinary least squares and the scatter sets the covariance (Type A).
 
-All sums run over DUTs with ``np.bincount``; the York iteration updates every DUT
+All sums run over DUTs as segment sums (``_groupsum``); the York iteration updates every DUT
 together and stops updating each DUT once its slope has converged.
 
 References
@@ -162,16 +162,16 @@ def _line(g, x, y, sxx, syy, sxy, m):
         # With strongly correlated errors York's equations can have more than one root
         # (seen on Amen's 2012 set); restart the errors-in-variables groups from the
         # unweighted slope as well and keep, per group, the root with the smaller χ².
-        xg = np.bincount(g, weights=xerr_rows, minlength=m) > 0
+        xg = _groupsum(g, xerr_rows, m) > 0
         rows = xg[g]
         g2, x2, y2 = g[rows], x[rows], y[rows]
         n2 = np.maximum(np.bincount(g2, minlength=m), 1)
-        xm2 = np.bincount(g2, weights=x2, minlength=m) / n2
-        ym2 = np.bincount(g2, weights=y2, minlength=m) / n2
+        xm2 = _groupsum(g2, x2, m) / n2
+        ym2 = _groupsum(g2, y2, m) / n2
         d2 = x2 - xm2[g2]
         with np.errstate(divide="ignore", invalid="ignore"):
-            b1 = (np.bincount(g2, weights=d2 * (y2 - ym2[g2]), minlength=m)
-                  / np.bincount(g2, weights=d2 * d2, minlength=m))
+            b1 = (_groupsum(g2, d2 * (y2 - ym2[g2]), m)
+                  / _groupsum(g2, d2 * d2, m))
         b1 = np.where(np.isfinite(b1) & xg, b1, b)
         # Only where the slope has the sign of a strong error correlation can the effective
         # variance u²(y) + b²u²(x) − 2b·u(x,y) approach zero and make a second root; bench
@@ -179,7 +179,7 @@ def _line(g, x, y, sxx, syy, sxy, m):
         with np.errstate(divide="ignore", invalid="ignore"):
             r_row = sxy / np.sqrt(sxx * syy)
         risky_row = (np.abs(r_row) > 0.5) & (r_row * b[g] > 0)
-        risky = np.bincount(g, weights=risky_row, minlength=m) > 0
+        risky = _groupsum(g, risky_row, m) > 0
         again = xg & risky & (np.abs(b1 - b) > 1e-12 * np.maximum(np.abs(b), 1e-300))
         if again.any():
             sel = again[g]
@@ -257,9 +257,9 @@ def _validate(readings: Readings, m: int):
     nonempty = n > 0
     i, ui, uv = readings.current, readings.u_current, readings.u_voltage
     stated_row = (uv > 0) | (ui > 0)
-    stated = np.bincount(g, weights=stated_row, minlength=m) > 0
+    stated = _groupsum(g, stated_row, m) > 0
     zero_row = ~stated_row & stated[g]
-    zero_in = np.bincount(g, weights=zero_row, minlength=m) > 0
+    zero_in = _groupsum(g, zero_row, m) > 0
 
     def red(fn, a, empty):
         out = np.full(m, empty, dtype=float)
@@ -356,7 +356,7 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
 
 
 def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence) -> Fits:
-    xerr = np.bincount(g, weights=(sxx > 0) | (sxy != 0), minlength=m) > 0
+    xerr = _groupsum(g, (sxx > 0) | (sxy != 0), m) > 0
     # one shared str per method (not 100,000 new strings)
     method = np.array(["wls", "york", "ols"], dtype=object)[np.where(~stated, 2,
                                                                      xerr.astype(np.intp))]
