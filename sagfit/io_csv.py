@@ -744,17 +744,16 @@ def _csv_text_column(vals: list[str]) -> list[str]:
     return [_csv_text_cell(v) for v in vals]
 
 
-def _text_block(vals: list[str]) -> np.ndarray:
-    """A text column as a padded byte matrix; a column of few distinct values (method,
-    flags, errors) is encoded once per value and gathered."""
+def _text_block(vals) -> np.ndarray:
+    """A text column (list of str, or :class:`Coded`) as a padded byte matrix; a column of
+    few distinct values (method, flags, errors, decisions) is encoded once per value and
+    gathered."""
     from .io_numtext import text_matrix
 
-    distinct = dict.fromkeys(vals)
-    if len(distinct) * 4 > len(vals):
-        return text_matrix(vals)
-    index = {v: i for i, v in enumerate(distinct)}
-    codes = np.fromiter(map(index.__getitem__, vals), dtype=np.intp, count=len(vals))
-    return text_matrix(list(distinct))[codes]
+    col = vals if isinstance(vals, Coded) else _coded(vals)
+    if len(col.labels) * 4 > len(col):
+        return text_matrix(list(vals))
+    return text_matrix(col.labels)[col.codes]
 
 
 #: From this many rows on, the two halves of a table are formatted in two threads (numpy
@@ -813,7 +812,7 @@ def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
         elif isinstance(col, Encoded):
             blocks.append(_text_block(col))
         elif isinstance(col, Coded):
-            blocks.append(text_matrix(_csv_text_column(list(col.labels)))[col.codes])
+            blocks.append(_text_block(Coded(col.codes, _csv_text_column(col.labels))))
         else:
             if isinstance(col, list) and all(type(v) is str for v in col[:1]):
                 vals = col  # a list of text (homogeneous by construction)
