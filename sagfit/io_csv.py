@@ -653,7 +653,7 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
     k = fits.k
     cols = {
         "dut": list(fits.duts),
-        "method": _coded(fits.method),
+        "method": coded(fits.method),
         "n": fits.n,
         "vth": fits.vth, "vth_u": fits.u_vth,
         "vth_ci_low": fits.vth - k * fits.u_vth, "vth_ci_high": fits.vth + k * fits.u_vth,
@@ -665,7 +665,7 @@ def fits_columns(fits, extra_columns: Mapping[str, object] | None = None) -> dic
         "chi2": fits.chi2, "dof": fits.dof, "p_value": fits.p_value,
         "coverage_factor": k, "confidence": np.full(len(fits), fits.confidence),
         "flags": _flag_codes(fits),
-        "error": _coded(fits.error),
+        "error": coded(fits.error),
     }
     if extra_columns:
         cols.update(extra_columns)
@@ -693,7 +693,7 @@ class Coded:
         return iter(map(self.labels.__getitem__, self.codes.tolist()))
 
 
-def _coded(values) -> Coded:
+def coded(values) -> Coded:
     """Text (or None, written as an empty cell) per DUT → :class:`Coded` (hash-based)."""
     import pandas as pd
 
@@ -750,7 +750,7 @@ def _text_block(vals) -> np.ndarray:
     gathered."""
     from .io_numtext import text_matrix
 
-    col = vals if isinstance(vals, Coded) else _coded(vals)
+    col = vals if isinstance(vals, Coded) else coded(vals)
     if len(col.labels) * 4 > len(col):
         return text_matrix(list(vals))
     return text_matrix(col.labels)[col.codes]

@@ -114,15 +114,15 @@ def acceptance_csv(acc) -> str:
     Written whole columns at a time by the same writer as ``fit --out``
     (:func:`sagfit.io_csv.csv_rows`), not with ``DataFrame.to_csv``.
     """
-    from .io_csv import Encoded, csv_rows
+    from .io_csv import Encoded, coded, csv_rows
 
     cols, header = {}, []
     for j, (name, kind, data) in enumerate(_columns(acc)):
         header.append(_quote(name) if any(ch in name for ch in ',"\n') else name)
         if kind == "num":
             cols[j] = np.asarray(data, float)
-        elif kind == "word":
-            cols[j] = Encoded(str(x) for x in np.asarray(data).tolist())
+        elif kind == "word":  # our own vocabulary: nothing to quote
+            cols[j] = coded(data)
         else:
             cols[j] = Encoded(_quote(x) for x in data)
     body = b"".join(csv_rows(cols)).decode("utf-8")

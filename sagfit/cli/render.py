@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-from itertools import compress, repeat
-from operator import is_not
-
 import numpy as np
 
 from ..formatting import format_estimate, format_interval, format_p, format_value
@@ -76,7 +73,7 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
         console.print(f"Uncertainties are standard uncertainties; intervals at {lvl} are in "
                       "--json and --out.")
     _print_flags(console, fits, verbose)
-    errors = list(compress(zip(fits.duts, fits.error), map(is_not, fits.error, repeat(None))))
+    errors = [(fits.duts[i], fits.error[i]) for i in np.flatnonzero(~fits.ok).tolist()]
     for d, e in errors[:MAX_TABLE_ROWS]:
         console.print(f"[bold]error[/bold] {_esc(d)}: {_esc(e)}", markup=True)
     if len(errors) > MAX_TABLE_ROWS:
