@@ -399,7 +399,7 @@ class History:
             raise HistoryError(f"{file_name}: no content hash; cannot record")
         t = np.broadcast_to(np.asarray(test_time, float), (len(fits),))
         labels = tuple(group_labels) if group_labels is not None else ("",) * len(fits)
-        ok = [i for i in range(len(fits)) if fits.error[i] is None]
+        ok = np.flatnonzero(fits.ok).tolist()
         c = self._conn
         try:
             c.execute("BEGIN IMMEDIATE")

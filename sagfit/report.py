@@ -137,8 +137,7 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
 # ------------------------------------------------------------------------ selection
 def _warned(fits) -> np.ndarray:
     """DUTs with a fit error or a warning-severity flag."""
-    return np.fromiter(((e is not None) or any(f.severity == "warning" for f in fl)
-                        for e, fl in zip(fits.error, fits.flags)), bool, len(fits))
+    return ~fits.ok | fits.flag_mask(lambda fl: any(f.severity == "warning" for f in fl))
 
 
 def _flag_codes(fits, i) -> str:
