@@ -138,7 +138,7 @@ def check_out_option(out: str | None, inputs) -> None:
 
 def require_some_fit(file: str, fits) -> None:
     """A file in which no DUT could be fitted is bad input (exit 2), with the reason."""
-    if len(fits) and all(e is not None for e in fits.error):
+    if len(fits) and not fits.ok.any():
         from ..errors import ReadingsFileError
 
         who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
