@@ -317,22 +317,34 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     decimal = "," if delim == ";" else "."
     usecols = [roles[r].index for r in roles]
     text_roles = {"dut", "load", "group"}
-    try:
-        stream = io.BytesIO(body)  # shares the bytes (no copy)
-        stream.seek(body_pos)
-        frame = pd.read_csv(
-            stream, sep=delim, header=None, names=list(range(len(names))),
-            usecols=usecols, decimal=decimal,
-            # text columns as categories: the tokenizer interns the few distinct ids and
-            # load codes, instead of making a Python string per cell (faster, less memory)
-            dtype={roles[r].index: "category" for r in roles if r in text_roles},
-            skip_blank_lines=False, engine="c", encoding="utf-8", quotechar='"',
-            keep_default_na=True, na_values=[""], low_memory=False)
-    except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise ReadingsFileError(name, f"cannot parse the table ({_short(exc)})") from None
-    if len(frame) != lines_of_rows.size:
-        raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
-                                      "quote character?)")
+    def table(columns, dtypes):
+        try:
+            stream = io.BytesIO(body)  # shares the bytes (no copy)
+            stream.seek(body_pos)
+            frame = pd.read_csv(
+                stream, sep=delim, header=None, names=list(range(len(names))),
+                usecols=columns, decimal=decimal, dtype=dtypes,
+                skip_blank_lines=False, engine="c", encoding="utf-8", quotechar='"',
+                keep_default_na=True, na_values=[""], low_memory=False)
+        except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+            raise ReadingsFileError(name, f"cannot parse the table ({_short(exc)})") from None
+        if len(frame) != lines_of_rows.size:
+            raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
+                                          "quote character?)")
+        return frame
+
+    # text columns as categories: the tokenizer interns the few distinct ids and load
+    # codes, instead of making a Python string per cell (faster, less memory)
+    frame = table(usecols, {roles[r].index: "category" for r in roles if r in text_roles})
+    # pandas turns categories that all look like numbers or booleans into numbers or
+    # booleans, which merges ids such as '01' and '1' (or 'True' and 'true'); ids keep
+    # their text, so such id columns are read again as text
+    as_text = [roles[r].index for r in ("dut", "group") if r in roles
+               and frame[roles[r].index].cat.categories.dtype.kind in "biufc"]
+    if as_text:
+        again = table(as_text, {c: str for c in as_text})
+        for c in as_text:
+            frame[c] = again[c].astype("category")
     def column(role):
         return frame[roles[role].index]
 

@@ -269,6 +269,24 @@ def test_dut_ids_with_outer_blanks_are_one_dut(tmp_path, first, second):
     r = read_readings(write(tmp_path, text))
     assert r.duts == ("A", "B") and r.counts().tolist() == [3, 2]
 
+@pytest.mark.parametrize("ids", [("01", "1"), ("1", "1.0"), ("True", "true"), ("007", "7")])
+def test_dut_ids_that_look_like_numbers_keep_their_text(tmp_path, ids):
+    """Serial numbers such as 001 and 1 are two DUTs (a DUT id is text; common practice).
+    pandas turns all-numeric categories into numbers, which would merge them."""
+    a, b = ids
+    text = ("dut,load_ohm,voltage_V,bin\n"
+            f"{a},open,12.0,{a}\n{a},10,11.9,{a}\n{b},open,5.0,{b}\n{b},10,4.9,{b}\n")
+    r = read_readings(write(tmp_path, text))
+    assert r.duts == (a, b) and r.counts().tolist() == [2, 2]
+    assert r.voltage.tolist() == [12.0, 11.9, 5.0, 4.9]
+
+
+def test_group_labels_that_look_like_numbers_keep_their_text(tmp_path):
+    text = "dut,load_ohm,voltage_V,lot\nA,open,12.0,01\nA,10,11.9,01\nB,open,5.0,1\nB,10,4.9,1\n"
+    r = read_readings(write(tmp_path, text))
+    assert r.meta["group_labels"].tolist() == ["01", "01", "1", "1"]
+
+
 
 class TestPlainTableFastPath:
     """The window-by-window check for plain tables agrees with the full line scan
