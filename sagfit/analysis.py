@@ -12,7 +12,7 @@ import math
 import numpy as np
 from scipy import special
 
-from ._parallel import WORKERS, map_parallel
+from ._parallel import WORKERS, gc_paused, map_parallel
 from .diagnostics import diagnose, knee_rows
 from .errors import InputError
 from .fit import fit_lines
@@ -31,6 +31,7 @@ _IRLS_MAX = 50
 _W_TOL = 1e-4
 
 
+@gc_paused()
 def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         current_range: tuple[float, float] | None = None, below_knee: bool = False,
         robust: bool = False) -> Fits:

@@ -54,6 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ._parallel import gc_paused
 from .fit import _groupsum, york_state
 from .readings import Readings
 from .results import Fits
@@ -255,6 +256,7 @@ def _num(x) -> float | None:
     return x if math.isfinite(x) else None
 
 
+@gc_paused()
 def budgets(readings: Readings, fits: Fits, *, used=None) -> list[dict | None]:
     """JSON-ready budget per DUT (``None`` where there is none), SI units.
 

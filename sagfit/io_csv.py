@@ -19,6 +19,7 @@ from typing import Mapping
 
 import numpy as np
 
+from ._parallel import gc_paused
 from .errors import ReadingsFileError
 from .readings import Readings
 from .units import Accuracy, parse_header_unit, parse_resistance
@@ -228,6 +229,7 @@ def read_readings(
                        current_accuracy=current_accuracy, load_tolerance=load_tolerance)
 
 
+@gc_paused()
 def parse_table(data: bytes, name: str, *, stem: str | None = None,
                 voltage_accuracy: Accuracy | None = None,
                 current_accuracy: Accuracy | None = None,
@@ -791,6 +793,7 @@ class Encoded(list):
     :func:`csv_rows` writes them as they are."""
 
 
+@gc_paused()
 def csv_rows(columns: Mapping[str, object]) -> list:
     """The data rows of :func:`table_csv_chunks` (no header), as a list of byte chunks."""
     names = list(columns)

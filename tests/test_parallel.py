@@ -1,0 +1,69 @@
+"""The large-batch helpers of sagfit._parallel (plumbing tests: behaviour, no reference)."""
+
+import gc
+import sys
+
+import numpy as np
+import pytest
+
+from sagfit import Readings, fit
+from sagfit._parallel import gc_paused, map_parallel, quick_gil_handover
+
+
+@pytest.fixture
+def gc_on():
+    was = gc.isenabled()
+    gc.enable()
+    yield
+    if not was:
+        gc.disable()
+
+
+def test_gc_paused_holds_off_the_collector_and_restores_it(gc_on):
+    with gc_paused():
+        assert not gc.isenabled()
+        with gc_paused():  # nested: still off, and the outer block turns it back on
+            assert not gc.isenabled()
+        assert not gc.isenabled()
+    assert gc.isenabled()
+
+
+def test_gc_paused_restores_after_an_error(gc_on):
+    with pytest.raises(ZeroDivisionError):
+        with gc_paused():
+            1 / 0
+    assert gc.isenabled()
+
+
+def test_gc_paused_leaves_a_disabled_collector_disabled(gc_on):
+    gc.disable()
+    with gc_paused():
+        pass
+    assert not gc.isenabled()
+
+
+def test_fit_runs_with_the_collector_paused_and_keeps_its_name(gc_on):
+    seen = []
+    r = Readings.from_arrays(current=[0.0, 1.0, 2.0, 0.0, 1.0, 2.0],
+                             voltage=[12.0, 11.9, 11.8, 5.0, 4.9, 4.81],
+                             group=[0, 0, 0, 1, 1, 1], duts=["A", "B"])
+    gc.callbacks.append(lambda phase, info: seen.append(phase))
+    try:
+        fits = fit(r)
+    finally:
+        gc.callbacks.pop()
+    assert seen == []  # no collection ran inside the fit
+    assert fits.ok.all() and gc.isenabled()
+    assert fit.__name__ == "fit" and "Thevenin" in fit.__doc__
+
+
+def test_map_parallel_keeps_order():
+    parts = [np.arange(k, k + 5) for k in range(0, 50, 5)]
+    assert [int(p.sum()) for p in parts] == map_parallel(lambda p: int(p.sum()), parts)
+
+
+def test_quick_gil_handover_restores_the_switch_interval():
+    before = sys.getswitchinterval()
+    with quick_gil_handover():
+        assert sys.getswitchinterval() <= before
+    assert sys.getswitchinterval() == before
