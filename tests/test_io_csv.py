@@ -3,6 +3,7 @@
 Plumbing of file formats; the numerical checks cite their sources where they appear.
 """
 
+import io
 import json
 import math
 
@@ -331,3 +332,96 @@ class TestPlainTableFastPath:
         assert count("# note\n" + self.BODY) is None
         assert count(self.BODY.replace("U1,", "U1,,", 1)) is None  # a field too many
         assert count(self.BODY, ncols=4) is None
+
+
+class TestParseInPieces:
+    """A large body is parsed in pieces (``PARSE_BYTES``); the result must be what one
+    pass gives (plumbing test: the one-pass parse is the reference). The piece size is
+    made tiny so that small files are cut into many pieces."""
+
+    ROWS = [f"U{k // 4:03d},{['open', 10, 4.7, 2.2][k % 4]},{12.0 - 0.05 * (k % 4):.3f}"
+            for k in range(40)]
+    CASES = {
+        "plain": "dut,load_ohm,voltage_V\n" + "\n".join(ROWS) + "\n",
+        # loads that are all numbers in some pieces and text in others
+        "numeric loads": "dut,load_ohm,voltage_V\n" + "\n".join(
+            r.replace(",open,", ",1M,") if k < 20 else r.replace(",open,", ",100000000,")
+            for k, r in enumerate(ROWS)) + "\n",
+        # DUT ids that look like numbers (must keep their text: 001 and 1 are two DUTs)
+        "numeric ids": "dut,load_ohm,voltage_V\n" + "\n".join(
+            (f"{k // 4:03d}" if k < 20 else str(k // 4 - 5)) + "," + r.split(",", 1)[1]
+            for k, r in enumerate(ROWS)) + "\n",
+        "decimal comma": "dut;load_ohm;voltage_V\n" + "\n".join(
+            r.replace(",", ";").replace(".", ",") for r in ROWS) + "\n",
+        "times and an empty uncertainty column": "dut,load_ohm,voltage_V,time,u_voltage_mV\n"
+        + "\n".join(f"{r},2026-03-0{1 + k // 20}T10:{k:02d}:00,{'' if k < 20 else 2}"
+                    for k, r in enumerate(ROWS)) + "\n",
+        "int and float voltages": "dut,load_ohm,voltage_V\n" + "\n".join(
+            r.rsplit(",", 1)[0] + ("," + str(12 - k % 4) if k < 20 else "," + r.rsplit(",", 1)[1])
+            for k, r in enumerate(ROWS)) + "\n",
+        "no final line end": "dut,load_ohm,voltage_V\n" + "\n".join(ROWS),
+    }
+
+    @staticmethod
+    def read_both(monkeypatch, path):
+        import sagfit.io_csv as io_csv
+
+        monkeypatch.setattr(io_csv, "PARSE_BYTES", 1 << 30)
+        whole = read_readings(path)
+        pieces = []
+        real = io_csv._read_pieces
+        monkeypatch.setattr(io_csv, "_read_pieces",
+                            lambda *a: record(real(*a)))
+
+        def record(frame):
+            pieces.append("combined" if frame is not None else "one pass")
+            return frame
+
+        # pieces of 5–6 rows: each has an 'open' load, so the load categories are text in
+        # every piece and the pieces combine (one with numbers only would not)
+        monkeypatch.setattr(io_csv, "PARSE_BYTES", 200)
+        return whole, read_readings(path), pieces
+
+    @pytest.mark.parametrize("case", sorted(CASES))
+    def test_same_as_one_pass(self, tmp_path, monkeypatch, case):
+        whole, cut, pieces = self.read_both(monkeypatch, write(tmp_path, self.CASES[case]))
+        # the pieces were parsed and combined (except where a piece has numeric loads
+        # only and another text ones: then one pass reads the body)
+        assert pieces and set(pieces) == {"one pass" if case == "numeric loads" else "combined"}
+        assert cut.duts == whole.duts
+        for name in ("group", "line", "voltage", "current", "u_voltage", "u_current", "time"):
+            np.testing.assert_array_equal(getattr(cut, name), getattr(whole, name),
+                                          err_msg=name)
+
+    def test_ids_that_look_like_numbers_stay_apart(self, tmp_path, monkeypatch):
+        _, cut, _ = self.read_both(monkeypatch, write(tmp_path, self.CASES["numeric ids"]))
+        assert "001" in cut.duts and "1" in cut.duts
+
+    def test_pieces_are_cut_at_line_ends(self):
+        import pandas as pd
+        import sagfit.io_csv as io_csv
+
+        body = self.CASES["plain"].split("\n", 1)[1].encode()
+        kw = dict(sep=",", header=None, names=[0, 1, 2], usecols=[0, 1, 2], decimal=".",
+                  dtype={0: "category", 1: "category"}, engine="c", low_memory=False)
+        old = io_csv.PARSE_BYTES
+        try:
+            io_csv.PARSE_BYTES = 64
+            frame = io_csv._read_pieces(body, 0, kw)
+        finally:
+            io_csv.PARSE_BYTES = old
+        one = pd.read_csv(io.BytesIO(body), **kw)
+        assert len(frame) == len(one) == 40
+        assert frame[0].astype(str).tolist() == one[0].astype(str).tolist()
+        np.testing.assert_array_equal(frame[2].to_numpy(), one[2].to_numpy())
+
+    def test_a_bad_cell_is_still_found_on_its_line(self, tmp_path, monkeypatch):
+        import sagfit.io_csv as io_csv
+
+        lines = self.CASES["plain"].splitlines()
+        lines[30] = lines[30].rsplit(",", 1)[0] + ",12.x"  # file line 31
+        p = write(tmp_path, "\n".join(lines) + "\n")
+        monkeypatch.setattr(io_csv, "PARSE_BYTES", 50)
+        with pytest.raises(ReadingsFileError) as exc:
+            read_readings(p)
+        assert exc.value.line == 31 and "12.x" in str(exc.value)
