@@ -38,7 +38,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _groupsum, _york_kernel, york_state
+from .fit import _groupsum, _spread, _york_kernel, york_state
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -95,18 +95,18 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
     sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         xbar = _groupsum(g, w * x, m) / sw
-        dx = x - xbar[g]
+        dx = x - _spread(g, xbar, m)
         h = np.sqrt(_groupsum(g, w * dx * dx, m) / sw)
-        t = dx / h[g]
+        t = dx / _spread(g, h, m)
         ybar = _groupsum(g, w * y, m) / sw
-        dy = y - ybar[g]
+        dy = y - _spread(g, ybar, m)
         wt = w * t
         wt2 = wt * t
         s2 = _groupsum(g, wt2, m)
         s3 = _groupsum(g, wt2 * t, m)
         A = s3 / s2
         B = s2 / sw
-        p2 = t * t - A[g] * t - B[g]
+        p2 = t * t - _spread(g, A, m) * t - _spread(g, B, m)
         s22 = _groupsum(g, w * p2 * p2, m)
         g1 = _groupsum(g, wt * dy, m) / s2
         g2 = _groupsum(g, w * p2 * dy, m) / s22
@@ -251,7 +251,7 @@ class _Rows:
         self.stated = stated
         self.ols = self.ok & ~stated
         g = self.g
-        st = stated[g]
+        st = _spread(g, stated, m)
         self.x = readings.current
         self.y = readings.voltage
         self.sxx = np.where(st, readings.u_current ** 2, 0.0)
@@ -260,12 +260,13 @@ class _Rows:
         b = -np.where(self.ok, fits.rth, 0.0)
         a = np.where(self.ok, fits.vth, 0.0)
         self.b, self.a = b, a
-        bb = b[g]
+        bb = _spread(g, b, m)
+        ok_g = _spread(g, self.ok, m)
         with np.errstate(divide="ignore", invalid="ignore"):
-            self.w = np.where(self.ok[g], 1.0 / (self.syy + bb * bb * self.sxx
-                                                  - 2.0 * bb * self.sxy), 0.0)
+            self.w = np.where(ok_g, 1.0 / (self.syy + bb * bb * self.sxx
+                                           - 2.0 * bb * self.sxy), 0.0)
         self.w = np.where(np.isfinite(self.w), self.w, 0.0)
-        self.res = np.where(self.ok[g], self.y - a[g] - bb * self.x, 0.0)
+        self.res = np.where(ok_g, self.y - _spread(g, a, m) - bb * self.x, 0.0)
         self.z = self.res * np.sqrt(self.w)
         self.chi2 = np.where(self.ok, fits.chi2, _NAN)
         self.line = readings.line
@@ -341,7 +342,7 @@ def _knee(R: _Rows, level):
     sy = np.where(sy > 0, sy, 1e-12 * ry)
     floor = 1e-6 * rx * sy / ry
     sx = np.sqrt(np.maximum(_groupsum(g, R.sxx, m) / cnt, floor ** 2))
-    sxx_k = np.maximum(R.sxx, floor[g] ** 2)
+    sxx_k = np.maximum(R.sxx, _spread(g, floor, m) ** 2)
 
     split_row = np.zeros(g.size, np.int8)
     tested = np.zeros(m, bool)
@@ -590,19 +591,20 @@ def _outliers(R: _Rows):
     sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         xbar = _groupsum(g, w * R.x, m) / sw
-        dx = R.x - xbar[g]
+        dx = R.x - _spread(g, xbar, m)
         sxx = _groupsum(g, w * dx * dx, m)
-        h = w / sw[g] + w * dx * dx / sxx[g]
+        h = w / _spread(g, sw, m) + w * dx * dx / _spread(g, sxx, m)
         one_h = np.maximum(1.0 - h, 1e-12)
         nu = (R.n - 2).astype(float)
         z2 = R.z * R.z / one_h
         # deleted scale (Belsley et al. 1980, eq. 2.8); the floor matters only for a line
         # that is not the least-squares one (a robust refit), where it can go negative
-        s2_del = np.maximum((R.chi2[g] - z2) / (nu[g] - 1.0), 1e-6 * R.chi2[g] / nu[g])
-        s2 = np.where(R.stated[g], np.maximum(s2_del, 1.0), s2_del)
+        chi2_g, nu_g = _spread(g, R.chi2, m), _spread(g, nu, m)
+        s2_del = np.maximum((chi2_g - z2) / (nu_g - 1.0), 1e-6 * chi2_g / nu_g)
+        s2 = np.where(_spread(g, R.stated, m), np.maximum(s2_del, 1.0), s2_del)
         t = R.z / np.sqrt(one_h * s2)
     run_dut = R.ok & (R.n >= 4)
-    t = np.where(run_dut[g] & np.isfinite(t), t, 0.0)
+    t = np.where(_spread(g, run_dut, m) & np.isfinite(t), t, 0.0)
     at = np.abs(t)
     starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
     tmax = np.full(m, _NAN)

@@ -39,36 +39,101 @@ _MAXITER = 200
 
 
 _SEGMENTS = threading.local()
+_CACHED = 4  # groupings remembered per thread (the fit, a York subset, the knee refit …)
+_COLUMN_SUMS = 32  # up to this many rows per group, equal-width sums go column by column
+
+
+class _Segments:
+    """How the rows of a sorted grouping ``g`` fall into groups: ``starts`` and ``counts``
+    of each present group's rows, ``present`` (which groups have rows), ``full`` (every
+    group has), ``width`` (the common row count when every group has the same, else 0).
+    ``starts`` is None when ``g`` is empty or not sorted."""
+
+    __slots__ = ("g", "m", "starts", "counts", "present", "full", "width")
+
+    def __init__(self, g, m):
+        self.g, self.m = g, m
+        self.starts = self.counts = self.present = None
+        self.full, self.width = False, 0
+        if g.size == 0 or m == 0 or not (g[1:] >= g[:-1]).all() or g[0] < 0 or g[-1] >= m:
+            return
+        starts = np.concatenate(([0], np.flatnonzero(g[1:] != g[:-1]) + 1))
+        counts = np.diff(starts, append=g.size)
+        self.starts, self.counts, self.present = starts, counts, g[starts]
+        self.full = starts.size == m
+        if self.full and counts.min() == counts.max():
+            self.width = int(counts[0])
+
+
+def _segments(g, m) -> _Segments:
+    """The segments of ``g`` (kept per thread for the last few groupings seen: the York
+    iteration sums over the same rows six times per step)."""
+    cache = getattr(_SEGMENTS, "cache", None)
+    if cache is None:
+        cache = _SEGMENTS.cache = []
+    for seg in cache:
+        if seg.g is g and seg.m == m:
+            return seg
+    seg = _Segments(g, m)
+    cache.insert(0, seg)
+    del cache[_CACHED:]
+    return seg
 
 
 def _groupsum(g, w, m):
     """Σ w per group. Rows of one DUT are contiguous (``g`` sorted), so the sums are
     segment sums: ``np.add.reduceat`` releases the GIL, which lets the two threads of a
-    large batch run in parallel (``np.bincount`` holds it). The segments of the last
-    ``g`` seen by this thread are kept: the York iteration sums over the same rows six
-    times per step. An unsorted ``g`` falls back to ``np.bincount``."""
-    seg = getattr(_SEGMENTS, "last", None)
-    if seg is None or seg[0] is not g or seg[1] != m:
-        seg = _SEGMENTS.last = (g, m, *_segments(g, m))
-    starts, present, full = seg[2:]
-    if starts is None:
+    large batch run in parallel (``np.bincount`` holds it); where every group has the same
+    number of rows, column sums of the (groups × rows) matrix, twice as fast again. An
+    unsorted ``g`` falls back to ``np.bincount``."""
+    seg = _segments(g, m)
+    if seg.starts is None:
         return np.bincount(g, weights=w, minlength=m)
-    s = np.add.reduceat(np.asarray(w, dtype=np.float64), starts)
-    if full:
+    w = np.asarray(w, dtype=np.float64)
+    if 1 < seg.width <= _COLUMN_SUMS:
+        return _row_sums(w.reshape(m, seg.width))
+    s = np.add.reduceat(w, seg.starts)
+    if seg.full:
         return s
     out = np.zeros(m)
-    out[present] = s
+    out[seg.present] = s
     return out
 
 
-def _segments(g, m):
-    """(starts, groups present, every group present) of a sorted ``g``; (None, …) when
-    ``g`` is empty or not sorted."""
-    if g.size == 0 or m == 0 or not (g[1:] >= g[:-1]).all() or g[0] < 0 or g[-1] >= m:
-        return None, None, False
-    starts = np.concatenate(([0], np.flatnonzero(g[1:] != g[:-1]) + 1))
-    present = g[starts]
-    return starts, present, present.size == m
+def _row_sums(w2):
+    """Σ over each row of a (groups × rows) matrix, column by column, with the additions in
+    the order ``np.add.reduceat`` makes them (the first value plus numpy's pairwise sum of
+    the rest: eight running sums from eight values on), so that a DUT's sums are the same
+    to the last bit whether its batch takes this path or the segment sums, whatever the
+    other DUTs. ``tests/test_fit.py`` holds the two paths equal bit for bit."""
+    a = w2[:, 1:]
+    n = a.shape[1]
+    if n < 8:
+        res = a[:, 0].copy()
+        for j in range(1, n):
+            res += a[:, j]
+    else:
+        r = [a[:, k].copy() for k in range(8)]
+        i = 8
+        while i < n - n % 8:
+            for k in range(8):
+                r[k] += a[:, i + k]
+            i += 8
+        res = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]))
+        for j in range(i, n):
+            res += a[:, j]
+    return w2[:, 0] + res
+
+
+def _spread(g, v, m):
+    """``v[g]``: each group's value on each of its rows. For a sorted ``g``, a repeat over
+    the segment lengths (about three times faster than fancy indexing)."""
+    seg = _segments(g, m)
+    if seg.starts is None:
+        return np.asarray(v)[g]
+    if seg.full:
+        return np.repeat(v, seg.counts)
+    return np.repeat(np.asarray(v)[seg.present], seg.counts)
 
 
 def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
@@ -103,13 +168,13 @@ def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
 def _york_step(g, x, y, sxx, syy, sxy, m, b):
     """Steps 1–3 of York et al. (2004) at the slope ``b``: weights W, ΣW, the weighted
     means X̄, Ȳ, the deviations U, V and York's β (variance form)."""
-    bb = b[g]
+    bb = _spread(g, b, m)
     w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
     sw = _groupsum(g, w, m)
     xbar = _groupsum(g, w * x, m) / sw
     ybar = _groupsum(g, w * y, m) / sw
-    u = x - xbar[g]
-    v = y - ybar[g]
+    u = x - _spread(g, xbar, m)
+    v = y - _spread(g, ybar, m)
     beta = w * (u * syy + bb * v * sxx - (bb * u + v) * sxy)
     return w, sw, xbar, ybar, u, v, beta
 
@@ -153,8 +218,8 @@ def _line(g, x, y, sxx, syy, sxy, m):
     with np.errstate(divide="ignore", invalid="ignore"):
         xm = _groupsum(g, w0 * x, m) / sw0
         ym = _groupsum(g, w0 * y, m) / sw0
-        du = x - xm[g]
-        b0 = _groupsum(g, w0 * du * (y - ym[g]), m) / _groupsum(g, w0 * du * du, m)
+        du = x - _spread(g, xm, m)
+        b0 = _groupsum(g, w0 * du * (y - _spread(g, ym, m)), m) / _groupsum(g, w0 * du * du, m)
     b0 = np.where(np.isfinite(b0), b0, 0.0)
     b, iters, conv = _york_kernel(g, x, y, sxx, syy, sxy, m, b0)
     xerr_rows = (sxx > 0) | (sxy != 0)
@@ -163,14 +228,14 @@ def _line(g, x, y, sxx, syy, sxy, m):
         # (seen on Amen's 2012 set); restart the errors-in-variables groups from the
         # unweighted slope as well and keep, per group, the root with the smaller χ².
         xg = _groupsum(g, xerr_rows, m) > 0
-        rows = xg[g]
+        rows = _spread(g, xg, m)
         g2, x2, y2 = g[rows], x[rows], y[rows]
         n2 = np.maximum(np.bincount(g2, minlength=m), 1)
         xm2 = _groupsum(g2, x2, m) / n2
         ym2 = _groupsum(g2, y2, m) / n2
-        d2 = x2 - xm2[g2]
+        d2 = x2 - _spread(g2, xm2, m)
         with np.errstate(divide="ignore", invalid="ignore"):
-            b1 = (_groupsum(g2, d2 * (y2 - ym2[g2]), m)
+            b1 = (_groupsum(g2, d2 * (y2 - _spread(g2, ym2, m)), m)
                   / _groupsum(g2, d2 * d2, m))
         b1 = np.where(np.isfinite(b1) & xg, b1, b)
         # Only where the slope has the sign of a strong error correlation can the effective
@@ -178,11 +243,11 @@ def _line(g, x, y, sxx, syy, sxy, m):
         # sweeps with I = V/R have r > 0 and a negative slope, so they skip this.
         with np.errstate(divide="ignore", invalid="ignore"):
             r_row = sxy / np.sqrt(sxx * syy)
-        risky_row = (np.abs(r_row) > 0.5) & (r_row * b[g] > 0)
+        risky_row = (np.abs(r_row) > 0.5) & (r_row * _spread(g, b, m) > 0)
         risky = _groupsum(g, risky_row, m) > 0
         again = xg & risky & (np.abs(b1 - b) > 1e-12 * np.maximum(np.abs(b), 1e-300))
         if again.any():
-            sel = again[g]
+            sel = _spread(g, again, m)
             b_alt, it_alt, conv_alt = _york_kernel(g[sel], x[sel], y[sel], sxx[sel], syy[sel],
                                                    sxy[sel], m, np.where(again, b1, b))
             s_main = _chi2_at(g, x, y, sxx, syy, sxy, m, b)
@@ -205,18 +270,18 @@ def york_state(g, x, y, sxx, syy, sxy, m, b) -> dict:
     (ΣW·u², so var_b = 1/q), and per-row ``weights``, ``beta``, ``ua`` (adjusted x about
     its weighted mean).
     """
-    bb = b[g]
+    bb = _spread(g, b, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         w, sw, xbar, ybar, _, _, beta = _york_step(g, x, y, sxx, syy, sxy, m, b)
         a = ybar - b * xbar
-        xadj = xbar[g] + beta
+        xadj = _spread(g, xbar, m) + beta
         xbar_adj = _groupsum(g, w * xadj, m) / sw
-        ua = xadj - xbar_adj[g]
+        ua = xadj - _spread(g, xbar_adj, m)
         q = _groupsum(g, w * ua * ua, m)
         var_b = 1.0 / q
         var_a = 1.0 / sw + xbar_adj ** 2 * var_b
         cov_ab = -xbar_adj * var_b
-        res = y - bb * x - a[g]
+        res = y - bb * x - _spread(g, a, m)
         chi2 = _groupsum(g, w * res * res, m)
     return {"a": a, "b": b, "var_a": var_a, "var_b": var_b, "cov_ab": cov_ab, "chi2": chi2,
             "sw": sw, "xbar": xbar, "ybar": ybar, "xbar_adj": xbar_adj, "q": q,
@@ -225,12 +290,12 @@ def york_state(g, x, y, sxx, syy, sxy, m, b) -> dict:
 
 def _chi2_at(g, x, y, sxx, syy, sxy, m, b):
     """York's objective S(b) per group, with the intercept that minimises it."""
-    bb = b[g]
+    bb = _spread(g, b, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
         sw = _groupsum(g, w, m)
         a = (_groupsum(g, w * y, m) - b * _groupsum(g, w * x, m)) / sw
-        res = y - bb * x - a[g]
+        res = y - bb * x - _spread(g, a, m)
         return _groupsum(g, w * res * res, m)
 
 
@@ -258,7 +323,7 @@ def _validate(readings: Readings, m: int):
     i, ui, uv = readings.current, readings.u_current, readings.u_voltage
     stated_row = (uv > 0) | (ui > 0)
     stated = _groupsum(g, stated_row, m) > 0
-    zero_row = ~stated_row & stated[g]
+    zero_row = ~stated_row & _spread(g, stated, m)
     zero_in = _groupsum(g, zero_row, m) > 0
 
     def red(fn, a, empty):
@@ -345,7 +410,7 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
     g = g_all[keep]
     x = readings.current[keep]
     y = readings.voltage[keep]
-    st = stated[g]
+    st = _spread(g, stated, m)
     sxx = np.where(st, readings.u_current[keep] ** 2, 0.0)
     syy = np.where(st, readings.u_voltage[keep] ** 2, 1.0)
     sxy = np.where(st, readings.cov_iv[keep], 0.0)

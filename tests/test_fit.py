@@ -423,3 +423,32 @@ class TestGroupSums:
         assert F._groupsum(np.zeros(0, np.int64), np.zeros(0), 3).tolist() == [0, 0, 0]
         bools = rng.random(g.size) > 0.5
         np.testing.assert_array_equal(F._groupsum(g, bools, m), np.bincount(g, bools, m))
+
+    @pytest.mark.parametrize("width", [2, 3, 5, 8, 9, 10, 16, 17, 24, 32, 33])
+    def test_equal_width_sums_are_bit_equal_to_segment_sums(self, width):
+        """Batches where every DUT has the same reading count take column sums; a DUT's
+        sums must not change by a bit when its batch takes the segment sums instead (a
+        DUT's result must not depend on the other DUTs)."""
+        import sys
+
+        F = sys.modules["sagfit.fit"]
+        rng = np.random.default_rng(width)
+        m = 300
+        g = np.repeat(np.arange(m), width)
+        w = rng.normal(size=g.size) * np.exp(5 * rng.normal(size=g.size))
+        assert F._segments(g, m).width == width
+        np.testing.assert_array_equal(F._groupsum(g, w, m),
+                                      np.add.reduceat(w, np.arange(0, g.size, width)))
+
+    @pytest.mark.parametrize("seed", range(3))
+    def test_spread_equals_fancy_indexing(self, seed):
+        import sys
+
+        F = sys.modules["sagfit.fit"]
+        rng = np.random.default_rng(seed)
+        m = 40
+        v = rng.normal(size=m)
+        for g in (np.sort(rng.integers(0, m, 300)), np.repeat(np.arange(m), 4),
+                  rng.integers(0, m, 300), np.zeros(0, np.int64)):
+            np.testing.assert_array_equal(F._spread(g, v, m), v[g])
+            np.testing.assert_array_equal(F._spread(g, v > 0, m), (v > 0)[g])
