@@ -67,3 +67,27 @@ def test_quick_gil_handover_restores_the_switch_interval():
     with quick_gil_handover():
         assert sys.getswitchinterval() <= before
     assert sys.getswitchinterval() == before
+
+
+def test_malloc_setting_is_the_console_program_s_only(monkeypatch):
+    """The console program asks glibc to keep freed memory; elsewhere nothing happens,
+    and importing sagfit as a library never does it (plumbing test)."""
+    import ctypes
+
+    import sagfit.cli as cli
+
+    calls = []
+
+    class FakeLibc:
+        def __init__(self, _name):
+            self.mallopt = lambda *a: calls.append(a) or 1
+            self.gnu_get_libc_version = object()
+
+    monkeypatch.setattr(ctypes, "CDLL", FakeLibc)
+    monkeypatch.setattr(sys, "platform", "darwin")
+    cli._keep_freed_memory()
+    assert calls == []
+    monkeypatch.setattr(sys, "platform", "linux")
+    cli._keep_freed_memory()
+    assert calls == [(cli._M_MMAP_THRESHOLD, cli._MMAP_THRESHOLD),
+                     (cli._M_TRIM_THRESHOLD, cli._TRIM_THRESHOLD)]
