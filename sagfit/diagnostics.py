@@ -199,6 +199,15 @@ def _runs_min_p(n):
 
 
 # ----------------------------------------------------------------------------- helpers
+def _take(v, rows):
+    """``v[rows]`` for a block of :func:`_dense_blocks`: a reshaped view, no gather, when
+    the block holds every row (all DUTs with the same reading count: the rows are then
+    0 … N−1 in order, since each DUT's rows are contiguous)."""
+    if rows.size == v.shape[0]:
+        return v.reshape(rows.shape)
+    return v[rows]
+
+
 def _dense_blocks(n, eligible, minimum):
     """Yield (duts, rows) blocks: the DUTs with the same reading count, rows as a 2-D index."""
     starts = np.concatenate(([0], np.cumsum(n)[:-1]))
@@ -351,7 +360,7 @@ def _knee(R: _Rows, level):
     b0 = np.zeros((m, 2))
     for duts, rows in _dense_blocks(R.n, eligible, 5):
         size = rows.shape[1]
-        xr, yr = R.x[rows], R.y[rows]
+        xr, yr = _take(R.x, rows), _take(R.y, rows)
         xm = xr.mean(axis=1, keepdims=True)
         ym = yr.mean(axis=1, keepdims=True)
         X = (xr - xm) / sx[duts, None]
@@ -480,8 +489,8 @@ def _pattern(R: _Rows, level):
                                           "z", "p_value")}
     run = np.zeros(m, bool)
     for duts, rows in _dense_blocks(R.n, R.ok, 3):
-        order = np.argsort(R.x[rows], axis=1, kind="stable")
-        s = np.take_along_axis(R.res[rows], order, 1) >= 0
+        order = np.argsort(_take(R.x, rows), axis=1, kind="stable")
+        s = np.take_along_axis(_take(R.res, rows), order, 1) >= 0
         runs = 1 + np.count_nonzero(s[:, 1:] != s[:, :-1], axis=1)
         npos = s.sum(axis=1)
         nneg = rows.shape[1] - npos
@@ -503,11 +512,11 @@ def _drift(R: _Rows, level, has_time):
     run = np.zeros(m, bool)
     for duts, rows in _dense_blocks(R.n, R.ok, 5):
         size = rows.shape[1]
-        t = R.time[rows]
+        t = _take(R.time, rows)
         timed = np.isfinite(t).all(axis=1) if has_time else np.zeros(duts.size, bool)
         t = np.where(timed[:, None], t, np.arange(size)[None, :])
         rt = _ranks(t)
-        rr = _ranks(R.res[rows])
+        rr = _ranks(_take(R.res, rows))
         d = (rt - rr).astype(float)
         rho = 1.0 - 6.0 * (d * d).sum(axis=1) / (size * (size * size - 1.0))
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -546,7 +555,7 @@ def _lack_of_fit(R: _Rows):
     offset = 0
     for duts, rows in _dense_blocks(R.n, R.ok, 4):
         size = rows.shape[1]
-        ld = R.load[rows]
+        ld = _take(R.load, rows)
         order = np.argsort(ld, axis=1, kind="stable")
         ls = np.take_along_axis(ld, order, 1)
         new = np.concatenate([np.ones((duts.size, 1), bool),

@@ -27,7 +27,7 @@ import numpy as np
 from .budget import GROUP_LABELS, budget_arrays
 from .errors import OptionError
 from .formatting import format_estimate, format_interval, format_p, format_value
-from .outputs import atomic_write, prepare_folder, safe_filename
+from .outputs import atomic_write, document_pieces, prepare_folder, safe_filename
 from .safety import DEFERRAL, HAZARDOUS_V, HIGH_CURRENT_A, HOT_RESISTOR_W, fit_cautions
 from .traceability import calibration_warnings, date_of_test, instrument_rows
 
@@ -39,7 +39,6 @@ MAX_DUT_SECTIONS = 20    # per-DUT sections with figures (3 figures each)
 SMALL_FILE_DUTS = 6      # with "flagged", a file this small gets a section for every DUT
 HISTOGRAM_MIN_DUTS = 8   # histograms across DUTs from this many fitted DUTs
 FIGURE_CHOICES = ("flagged", "all", "none")
-JSON_INDENT_MAX = 2000   # results.json is indented up to this many DUTs
 
 METHODS = (
     ("Straight line with uncertainties in both current and voltage (correlated where one "
@@ -85,7 +84,7 @@ def _fmt_num(x, unit="", digits=4) -> str:
 # ---------------------------------------------------------------------------- entry
 def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
                  figures: str = "flagged", inputs: Sequence = (), *,
-                 now: _dt.datetime | None = None) -> Path:
+                 now: _dt.datetime | None = None, fill_results: bool = False) -> Path:
     """Write ``report.html``, one PNG per figure, ``results.json`` and ``results.csv``.
 
     Parameters
@@ -96,6 +95,9 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
         The fit and the readings it came from.
     doc : mapping
         The ``sagfit fit --json`` document (written as results.json).
+    fill_results : bool
+        Write ``fits.to_dicts()`` as the document's results instead of ``doc["results"]``
+        (in pieces for a large batch; see :func:`sagfit.outputs.document_pieces`).
     settings : mapping
         The fit settings (``instruments`` for the traceability list).
     figures : {"flagged", "all", "none"}
@@ -120,11 +122,9 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
     for name, data in written:
         atomic_write(root / name, data, inputs=inputs, within=root, option="--report")
     # indented for people; compact for big batches (the C encoder is ~10x faster), the
-    # same rule as `sagfit fit --json`
-    big = len(doc.get("results", ())) > JSON_INDENT_MAX
+    # same rule and the same text as `sagfit fit --json`
     atomic_write(root / "results.json",
-                 json.dumps(doc, indent=None if big else 2, ensure_ascii=False,
-                            allow_nan=False) + "\n",
+                 document_pieces(doc, fits if fill_results else None),
                  inputs=inputs, within=root, option="--report")
     from . import io_csv
 

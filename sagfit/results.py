@@ -340,6 +340,19 @@ class Fits:
         table = {key: (a if not b else tuple(a) + tuple(b)) for key, (a, b) in pairs.items()}
         return self.replace(flags=tuple(map(table.__getitem__, keys)))
 
+    def dut_slice(self, lo: int, hi: int) -> "Fits":
+        """The DUTs ``lo`` … ``hi − 1`` as a ``Fits`` of their own (for writing a large
+        batch in parts). ``used_rows`` refers to the rows of the whole readings and is
+        left out."""
+        changes: dict = {"duts": self.duts[lo:hi], "error": self.error[lo:hi],
+                         "flags": self.flags[lo:hi], "used_rows": None}
+        for name in _ARRAY_FIELDS:
+            changes[name] = getattr(self, name)[lo:hi]
+        changes["diagnostics"] = {name: {f: c[lo:hi] for f, c in cols.items()}
+                                  for name, cols in self.diagnostics.items()}
+        changes["extra"] = {name: col[lo:hi] for name, col in self.extra.items()}
+        return dataclasses.replace(self, **changes)
+
     @classmethod
     def concat(cls, parts: "list[Fits]") -> "Fits":
         """The DUTs of several ``Fits`` (same settings) one after the other."""

@@ -50,6 +50,55 @@ class TestJson:
         assert wb / wa == pytest.approx(2.5758293035489 / 1.959963984540054, rel=1e-9)
 
 
+class TestLargeBatchJson:
+    """Above outputs.JSON_BIG DUTs the document is encoded in pieces, never held whole as
+    Python objects; its text must be exactly what json.dumps gives for the whole document
+    (plumbing test: the standard library's encoder is the reference)."""
+
+    @pytest.fixture(scope="class")
+    def batch(self, tmp_path_factory):
+        from sagfit.simulate import run_csv_text, simulate
+        from sagfit.units import parse_accuracy
+
+        run = simulate(12.6, 0.05, [float("inf"), 10, 4.7, 2.2, 1.0], duts=130, seed=4,
+                       vth_spread=0.01, rth_spread=0.2,
+                       voltage_accuracy=parse_accuracy("0.015%+2mV", "V"), load_tolerance=1.0)
+        path = tmp_path_factory.mktemp("big") / "batch.csv"
+        path.write_text(run_csv_text(run, ["INVENTED test data"]))
+        return path
+
+    def test_pieces_equal_one_dump(self, cli, monkeypatch, tmp_path, batch):
+        import sagfit.outputs as outputs
+
+        args = ("fit", batch, "--voltage-accuracy", "0.015%+2mV", "--load-tolerance", "1%",
+                "--json")
+        whole = cli(*args).out  # 130 DUTs: below JSON_BIG, one piece, indented
+        doc = json.loads(whole)
+        assert len(doc["results"]) == 130 and whole.startswith('{\n  "tool"')
+        monkeypatch.setattr(outputs, "JSON_BIG", 100)
+        monkeypatch.setattr(outputs, "JSON_PIECE_DUTS", 32)  # five pieces, the last short
+        pieced = cli(*args).out
+        assert pieced == json.dumps(doc, ensure_ascii=False, allow_nan=False) + "\n"
+        out = tmp_path / "res.json"
+        assert cli(*args[:-1], "--out", out).code == 0
+        assert out.read_text() == pieced
+        rep = tmp_path / "rep"
+        assert cli(*args[:-1], "--report", rep, "--figures", "none").code == 0
+        assert (rep / "results.json").read_text() == pieced
+
+    def test_a_failing_piece_leaves_no_file(self, monkeypatch, tmp_path):
+        import sagfit.outputs as outputs
+        from sagfit.outputs import OutputError
+
+        def pieces():
+            yield "{"
+            raise OSError(28, "no space")
+
+        with pytest.raises(OutputError, match="no space left"):
+            outputs.atomic_write(tmp_path / "x.json", pieces())
+        assert list(tmp_path.iterdir()) == []
+
+
 class TestOut:
     def test_csv(self, cli, tmp_path):
         """--out x.csv writes one row per DUT with the required columns, numeric cells numeric."""

@@ -160,7 +160,9 @@ def show_progress(file: str, json_out: bool) -> bool:
 
 def dumps(doc) -> str:
     """JSON text; indented for people, compact (C encoder, 10× faster) for big batches."""
-    big = len(doc.get("results", ())) > 2000 if isinstance(doc, dict) else False
+    from ..outputs import JSON_BIG
+
+    big = len(doc.get("results", ())) > JSON_BIG if isinstance(doc, dict) else False
     return json.dumps(doc, indent=None if big else 2, ensure_ascii=False,
                       allow_nan=False) + "\n"
 

@@ -8,7 +8,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, check_out_option, dumps, fit_settings, guarded,
+                     VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_stdout)
 
@@ -74,7 +74,9 @@ def fit_command(
 
                 fits = fits.replace(extra={**fits.extra, "budget": budgets(
                     readings, fits, used=fits.used_rows)})
-            doc = fit_document(fits, readings, settings, results=need_results)
+            # the per-DUT results are encoded from ``fits`` as they are written (in pieces
+            # for a large batch: see outputs.document_pieces)
+            doc = fit_document(fits, readings, settings, results=False)
             require_some_fit(file, fits)
             step("writing")
             if out:
@@ -83,9 +85,12 @@ def fit_command(
                 from ..report import write_report
 
                 write_report(report, fits, readings, doc, settings, figures=figures,
-                             inputs=[file] + ([bench] if bench else []))
+                             inputs=[file] + ([bench] if bench else []), fill_results=True)
         if json_out:
-            write_stdout(dumps(doc))
+            from ..outputs import document_pieces
+
+            for piece in document_pieces(doc, fits):
+                write_stdout(piece)
         else:
             from .render import print_fits
 
@@ -115,7 +120,8 @@ def parse_current_range(text: str | None):
 
 def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
     """The JSON document of ``sagfit fit --json`` (``results=False``: everything but the
-    per-DUT results, which cost time on a large batch and the terminal view does not need)."""
+    per-DUT results, which cost time on a large batch and the terminal view does not need;
+    ``outputs.document_pieces(doc, fits)`` writes the document with them, in pieces)."""
     from .. import __version__
     from ..safety import fit_cautions
 
@@ -139,10 +145,10 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
 
 def write_results(out: str, fits, doc, inputs) -> None:
     """``--out``: CSV (one row per DUT) or JSON (the same document as --json)."""
-    from ..outputs import atomic_write
+    from ..outputs import atomic_write, document_pieces
 
     if out.lower().endswith(".json"):
-        atomic_write(out, dumps(doc), inputs=inputs)
+        atomic_write(out, document_pieces(doc, fits), inputs=inputs)
     else:
         from ..io_csv import fits_csv
 
