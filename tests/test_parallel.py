@@ -91,3 +91,17 @@ def test_malloc_setting_is_the_console_program_s_only(monkeypatch):
     cli._keep_freed_memory()
     assert calls == [(cli._M_MMAP_THRESHOLD, cli._MMAP_THRESHOLD),
                      (cli._M_TRIM_THRESHOLD, cli._TRIM_THRESHOLD)]
+
+
+def test_long_lived_objects_are_frozen_only_in_the_console_program(monkeypatch):
+    import sagfit.cli as cli
+
+    gc.unfreeze()
+    cli.settle_long_lived()  # in-process (tests, a host application): nothing happens
+    assert gc.get_freeze_count() == 0
+    monkeypatch.setattr(cli, "_AS_PROGRAM", True)
+    try:
+        cli.settle_long_lived()
+        assert gc.get_freeze_count() > 0
+    finally:
+        gc.unfreeze()

@@ -114,14 +114,20 @@ def settings_record(settings: dict) -> dict:
 
 def load_readings(file: str, settings: dict, dut: str | None = None):
     """Read a readings file with the settings, optionally keeping some DUTs."""
+    from .._parallel import gc_paused
     from ..io_csv import read_readings
+    from . import settle_long_lived
 
-    readings = read_readings(file, voltage_accuracy=settings["voltage_accuracy"],
-                             current_accuracy=settings["current_accuracy"],
-                             load_tolerance=settings["load_tolerance"])
-    if dut:
-        names = [d.strip() for d in dut.split(",") if d.strip()]
-        readings = readings.only_duts(names)
+    with gc_paused():
+        readings = read_readings(file, voltage_accuracy=settings["voltage_accuracy"],
+                                 current_accuracy=settings["current_accuracy"],
+                                 load_tolerance=settings["load_tolerance"])
+        if dut:
+            names = [d.strip() for d in dut.split(",") if d.strip()]
+            readings = readings.only_duts(names)
+        # pandas is imported now and the readings live to the end: out of the collector's
+        # view before it runs again
+        settle_long_lived()
     return readings
 
 
