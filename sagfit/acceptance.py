@@ -524,33 +524,42 @@ class Acceptance:
     def to_dicts(self, indices=None) -> list[dict]:
         """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit accept --json``)."""
         idx = range(len(self)) if indices is None else indices
+        # a range of rows (a piece of a large document) takes only its part of each column
+        part = (slice(idx.start, idx.stop) if isinstance(idx, range) and idx.step == 1
+                else slice(None))
+        base = part.start or 0
+
+        def col(a):
+            return a[part].tolist()
+
         cols = []
         for cr in self.checks:
             c = cr.check
-            cols.append((c, cr.value.tolist(), cr.u.tolist(), cr.U.tolist(), cr.p_c.tolist(),
-                         cr.accept_lower.tolist(), cr.accept_upper.tolist(),
-                         cr.decision.tolist(), cr.statement.tolist(),
-                         None if cr.extrapolated is None else cr.extrapolated.tolist()))
-        k = self.k.tolist()
+            cols.append((c, col(cr.value), col(cr.u), col(cr.U), col(cr.p_c),
+                         col(cr.accept_lower), col(cr.accept_upper),
+                         col(cr.decision), col(cr.statement),
+                         None if cr.extrapolated is None else col(cr.extrapolated)))
+        k = col(self.k)
         out = []
         for i in idx:
             err = self.error[i]
             checks = []
+            j = i - base
             if err is None:
                 for (c, v, u, U, p, al, au, d, st, ex) in cols:
-                    item = {"quantity": c.name, "value": _f(v[i]), "U": _f(U[i]),
+                    item = {"quantity": c.name, "value": _f(v[j]), "U": _f(U[j]),
                             "lower": _f(c.lower), "upper": _f(c.upper),
-                            "decision": DECISIONS[d[i]],
-                            "conformance_probability": _f(p[i]),
-                            "unit": c.unit, "u": _f(u[i]), "coverage_factor": _f(k[i]),
-                            "acceptance_lower": _f(al[i]), "acceptance_upper": _f(au[i]),
-                            "statement": STATEMENTS[st[i]]}
+                            "decision": DECISIONS[d[j]],
+                            "conformance_probability": _f(p[j]),
+                            "unit": c.unit, "u": _f(u[j]), "coverage_factor": _f(k[j]),
+                            "acceptance_lower": _f(al[j]), "acceptance_upper": _f(au[j]),
+                            "statement": STATEMENTS[st[j]]}
                     if c.at is not None:
                         item["at"] = c.at.label
                     if c.light is not None:
                         item["light"], item["heavy"] = c.light.label, c.heavy.label
                     if ex is not None:
-                        item["extrapolated"] = bool(ex[i])
+                        item["extrapolated"] = bool(ex[j])
                     checks.append(item)
             d = {"dut": self.duts[i], "decision": DECISIONS[self.decision[i]],
                  "checks": checks, "flags": list(self.warning_codes.get(i, ())),

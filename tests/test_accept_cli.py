@@ -145,6 +145,24 @@ class TestBadInput:
 
 
 class TestOutputs:
+    def test_large_batch_json_in_pieces_equals_one_dump(self, cli, monkeypatch, tmp_path):
+        """Above outputs.JSON_BIG DUTs the decisions are encoded in pieces; the text must
+        be json.dumps of the whole document (plumbing: the stdlib encoder is the
+        reference)."""
+        import sagfit.outputs as outputs
+
+        whole = cli(*BASE, "--json").out
+        doc = json.loads(whole)
+        n = len(doc["results"])
+        assert n > 3
+        monkeypatch.setattr(outputs, "JSON_BIG", 2)
+        monkeypatch.setattr(outputs, "JSON_PIECE_DUTS", 3)  # pieces of 3, the last short
+        pieced = cli(*BASE, "--json").out
+        assert pieced == json.dumps(doc, ensure_ascii=False, allow_nan=False) + "\n"
+        out = tmp_path / "d.json"
+        cli(*BASE, "--out", out)
+        assert out.read_text(encoding="utf-8") == pieced
+
     @pytest.mark.reference("OWASP, CSV Injection (common practice)")
     def test_csv_neutralised_but_numeric(self, cli, tmp_path):
         """User text that starts a formula is neutralised; numeric columns (also negative

@@ -13,7 +13,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, check_out_option, dumps, fit_settings, guarded,
+                     VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, settings_record, show_progress, write_stdout)
 
 MAX_TABLE_ROWS = 40
@@ -65,28 +65,37 @@ def accept_command(
             step(f"deciding {readings.n_duts} DUT(s)")
             acc = accept(fits, the_spec, rule=rule, readings=readings)
         need_doc = json_out or report or (out and out.lower().endswith(".json"))
-        doc = accept_document(acc, fits, readings, settings) if need_doc else None
+        # the per-DUT results are encoded from ``acc`` as they are written (in pieces for
+        # a large batch: see outputs.document_pieces); the report gets the whole document
+        doc = accept_document(acc, fits, readings, settings, results=False) if need_doc \
+            else None
+        rows = (len(acc), lambda lo, hi: acc.to_dicts(range(lo, hi)))
         if out:
-            from ..outputs import atomic_write
+            from ..outputs import atomic_write, document_pieces
             from ..report_accept import acceptance_csv
 
             if out.lower().endswith(".json"):
-                atomic_write(out, dumps(doc), inputs=inputs)
+                atomic_write(out, document_pieces(doc, rows=rows), inputs=inputs)
             else:
                 atomic_write(out, acceptance_csv(acc), inputs=inputs)
         if report:
             from ..report_accept import write_accept_report
 
-            write_accept_report(report, acc, fits, readings, doc, inputs=inputs)
+            write_accept_report(report, acc, fits, readings,
+                                {**doc, "results": acc.to_dicts()}, inputs=inputs)
         if json_out:
-            write_stdout(dumps(doc))
+            from ..outputs import document_pieces
+
+            for piece in document_pieces(doc, rows=rows):
+                write_stdout(piece)
         else:
             print_acceptance(acc, fits, readings, settings, verbose=verbose)
     raise typer.Exit(acc.exit_code)
 
 
-def accept_document(acc, fits, readings, settings) -> dict:
-    """The JSON document of ``sagfit accept --json``."""
+def accept_document(acc, fits, readings, settings, *, results: bool = True) -> dict:
+    """The JSON document of ``sagfit accept --json`` (``results=False``: an empty results
+    list, for ``outputs.document_pieces`` to fill as it writes)."""
     from .. import __version__
     from ..acceptance import DECISIONS
     from ..safety import fit_cautions
@@ -109,7 +118,7 @@ def accept_document(acc, fits, readings, settings) -> dict:
                           "ignore_flags": list(r.ignore_flags),
                           "decisions": list(DECISIONS)},
         "settings": settings_record(settings),
-        "results": acc.to_dicts(),
+        "results": acc.to_dicts() if results else [],
         "summary": acc.summary(),
         "cautions": fit_cautions(fits, readings),
     }
