@@ -340,7 +340,17 @@ def _knee(R: _Rows, level):
     ymax = np.full(m, -np.inf)
     starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
     ne = R.n > 0
-    if ne.any():
+    width = int(R.n[0]) if m and (R.n == R.n[0]).all() and R.n[0] > 1 else 0
+    if width:  # every DUT has the same count: column by column, no segment loop
+        x2, y2 = R.x.reshape(m, width), R.y.reshape(m, width)
+        xmin, xmax = x2[:, 0].copy(), x2[:, 0].copy()
+        ymin, ymax = y2[:, 0].copy(), y2[:, 0].copy()
+        for j in range(1, width):
+            np.minimum(xmin, x2[:, j], out=xmin)
+            np.maximum(xmax, x2[:, j], out=xmax)
+            np.minimum(ymin, y2[:, j], out=ymin)
+            np.maximum(ymax, y2[:, j], out=ymax)
+    elif ne.any():
         xmin[ne] = np.minimum.reduceat(R.x, starts[ne])
         xmax[ne] = np.maximum.reduceat(R.x, starts[ne])
         ymin[ne] = np.minimum.reduceat(R.y, starts[ne])
@@ -558,9 +568,10 @@ def _lack_of_fit(R: _Rows):
         ld = _take(R.load, rows)
         order = np.argsort(ld, axis=1, kind="stable")
         ls = np.take_along_axis(ld, order, 1)
-        new = np.concatenate([np.ones((duts.size, 1), bool),
-                              ~np.isclose(ls[:, 1:], ls[:, :-1], rtol=1e-9, atol=0)
-                              & (ls[:, 1:] != ls[:, :-1])], axis=1)
+        hi_, lo_ = ls[:, 1:], ls[:, :-1]  # sorted: hi_ ≥ lo_
+        with np.errstate(invalid="ignore"):  # inf − inf: two open circuits, one level
+            close = np.abs(hi_ - lo_) <= 1e-9 * np.abs(lo_)  # np.isclose(rtol=1e-9, atol=0)
+        new = np.concatenate([np.ones((duts.size, 1), bool), ~close & (hi_ != lo_)], axis=1)
         cid_sorted = np.cumsum(new, axis=1) - 1
         cid = np.empty_like(cid_sorted)
         np.put_along_axis(cid, order, cid_sorted, 1)
