@@ -46,7 +46,7 @@ def guarded(source: str = "") -> Iterator[None]:
         error_line(str(exc))
         raise typer.Exit(2) from None
     except KeyboardInterrupt:
-        error_line("interrupted; no partial output was left")
+        error_line("interrupted; no partial output file was left")
         raise typer.Exit(130) from None
     except MemoryError:
         error_line(f"{source}: not enough memory for this file".lstrip(": "))
