@@ -311,13 +311,16 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
             name, f"need two of load, voltage and current columns; found headers {found} "
                   "(name them e.g. load_ohm, voltage_V, current_A)", line=header_line)
 
-    lines_of_rows, (body, body_pos) = _data_rows(data, pos, header_line, name, delim,
-                                                 len(names))
+    dut_col = roles["dut"].index if "dut" in roles else None
+    lines_of_rows, (body, body_pos), dut_spans = _data_rows(data, pos, header_line, name,
+                                                            delim, len(names), dut_col)
     if lines_of_rows.size == 0:
         raise ReadingsFileError(name, "no readings (the table has a header but no rows)",
                                 line=header_line)
     decimal = "," if delim == ";" else "."
-    usecols = [roles[r].index for r in roles]
+    # the DUT ids straight from their bytes where the table is plain (see _ids_from_spans)
+    dut_ids = _ids_from_spans(*dut_spans) if dut_spans is not None else None
+    usecols = [roles[r].index for r in roles if not (r == "dut" and dut_ids is not None)]
     text_roles = {"dut", "load", "group"}
     def table(columns, dtypes):
         return _read_frame(body, body_pos, lines_of_rows.size, name, sep=delim,
@@ -330,6 +333,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     # booleans, which merges ids such as '01' and '1' (or 'True' and 'true'); ids keep
     # their text, so such id columns are read again as text
     as_text = [roles[r].index for r in ("dut", "group") if r in roles
+               and roles[r].index in frame
                and frame[roles[r].index].cat.categories.dtype.kind in "biufc"]
     if as_text:
         again = table(as_text, {c: str for c in as_text})
@@ -378,7 +382,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         kwargs["time"] = _parse_times(column("time"), roles["time"].scale, name,
                                       header_of("time"), lines_of_rows)
     if "dut" in roles:
-        codes, names_u = _categories(column("dut"))
+        codes, names_u = dut_ids if dut_ids is not None else _categories(column("dut"))
         if (codes < 0).any():
             row_error("dut", int(np.flatnonzero(codes < 0)[0]), "empty DUT id")
         joined = "\x00".join(names_u)  # one scan for the (rare) ids with outer blanks
@@ -472,7 +476,8 @@ def _scan(arr: np.ndarray, delim: int):
     return np.concatenate(nls), np.concatenate(counts)
 
 
-def _clean_rows(arr: np.ndarray, delim: int, ncols: int, check_fields: bool) -> int | None:
+def _clean_rows(arr: np.ndarray, delim: int, ncols: int, check_fields: bool,
+                field: int | None = None, spans: list | None = None) -> int | None:
     """The number of data lines when the table is plain: no blank or comment line, no line
     starting with a blank, no line longer than MAX_LINE, and (``check_fields``) exactly
     ``ncols − 1`` delimiters on every line. None otherwise (the full scan then finds out
@@ -480,7 +485,8 @@ def _clean_rows(arr: np.ndarray, delim: int, ncols: int, check_fields: bool) -> 
 
     Works window by window (windows end at a line end), so the temporaries are small and
     reused: the full scan's per-line arrays for a 27 MB file cost about 60 ms of fresh
-    memory on their own.
+    memory on their own. With ``field`` (a column index) and ``check_fields``, appends to
+    ``spans`` the (start, end) byte offsets in ``arr`` of that field on each line.
     """
     bad_first = np.zeros(256, bool)
     bad_first[[ord("#"), ord(" "), ord("\t")]] = True
@@ -512,12 +518,18 @@ def _clean_rows(arr: np.ndarray, delim: int, ncols: int, check_fields: bool) -> 
             per = np.diff(np.searchsorted(dpos, ends), prepend=0)
             if (per != ncols - 1).any():
                 return None
+            if spans is not None and field is not None and ncols > 1:
+                d2 = dpos.reshape(-1, ncols - 1)  # every line has its ncols − 1 delimiters
+                fs = starts if field == 0 else d2[:, field - 1] + 1
+                fe = ends if field == ncols - 1 else d2[:, field]
+                spans.append((fs + a, fe + a))
         count += lengths.size
         a += part.size
     return count
 
 
-def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols: int):
+def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols: int,
+               field: int | None = None):
     """Line numbers of the data rows (after byte ``pos``), and what to hand the tokenizer:
     ``data`` itself read from ``pos`` on when no blank or comment line has to go (no
     copy), else new bytes without them.
@@ -526,10 +538,15 @@ def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, n
     quote characters; with quotes, pandas' tokenizer checks it.
     """
     arr = np.frombuffer(data, dtype=np.uint8)[pos:]
-    plain = _clean_rows(arr, ord(delim), ncols, data.find(b'"', pos) < 0)
+    spans: list = []
+    plain = _clean_rows(arr, ord(delim), ncols, data.find(b'"', pos) < 0, field, spans)
     if plain:  # the usual file: every line after the header is a row
+        field_spans = None
+        if spans:
+            field_spans = (arr, np.concatenate([a for a, _ in spans]),
+                           np.concatenate([b for _, b in spans]))
         return (np.arange(header_line + 1, header_line + 1 + plain, dtype=np.int64),
-                (data, pos))
+                (data, pos), field_spans)
     nl, per_line = _scan(arr, ord(delim))
     starts = np.concatenate(([0], nl + 1))
     ends = np.concatenate((nl, [arr.size]))
@@ -561,13 +578,14 @@ def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, n
                                     line=header_line + 1 + k)
     lines = np.asarray(header_line + 1 + rows, dtype=np.int64)
     if rows.size == 0:
-        return lines, (b"", 0)
+        return lines, (b"", 0), None
     last = int(rows[-1])
     if keep[: last + 1].all():
         if last + 1 == lengths.size or (last + 2 == lengths.size and lengths[-1] == 0):
-            return lines, (data, pos)  # nothing after the last row but its line end
-        return lines, (data[pos:pos + int(ends[last])], 0)
-    return lines, (b"\n".join(data[pos + int(starts[k]):pos + int(ends[k])] for k in rows), 0)
+            return lines, (data, pos), None  # nothing after the last row but its line end
+        return lines, (data[pos:pos + int(ends[last])], 0), None
+    return (lines, (b"\n".join(data[pos + int(starts[k]):pos + int(ends[k])] for k in rows), 0),
+            None)
 
 
 #: A table body of more than twice this many bytes is parsed in pieces of about this size,
@@ -651,6 +669,61 @@ def _read_pieces(body: bytes, pos: int, kw: dict):
         else:
             return None
     return pd.DataFrame(columns)
+
+
+#: pandas' default spellings of a missing value (``read_csv``, ``na_values``). A DUT id
+#: spelled so is left to pandas, which reads it as missing: "empty DUT id".
+_NA_SPELLINGS = frozenset({"", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN",
+                           "-nan", "1.#IND", "1.#QNAN", "<NA>", "N/A", "NA", "NULL", "NaN",
+                           "None", "n/a", "nan", "null"})
+_ID_WIDTH = 64      # longest id read from its byte spans; longer ones go to pandas
+_ID_ROWS = 1 << 16  # rows compared at a time (bounds the temporaries)
+
+
+def _ids_from_spans(arr: np.ndarray, fs: np.ndarray, fe: np.ndarray):
+    """(codes, texts) of the DUT id column, from its byte spans ``arr[fs[i]:fe[i]]`` on each
+    row, numbered in order of first appearance; or None, when pandas should read it.
+
+    A file's rows usually come DUT by DUT, so each row is compared with the one before and
+    only the first row of each run of equal ids is hashed: on 100,000 DUTs × 8 readings
+    this takes a fraction of the time pandas' categorical parse of the column does (that
+    interns every cell and then tries each id as a number and as a boolean). Left to pandas:
+    an empty cell, a missing-value spelling (``NA``, ``null`` …), a non-ASCII byte, an id
+    longer than 64 bytes.
+    """
+    import pandas as pd
+
+    n = fs.size
+    lens = fe - fs
+    if n == 0 or int(lens.min()) <= 0 or int(lens.max()) > _ID_WIDTH:
+        return None
+    w = int(lens.max())
+    cols = np.arange(w)
+    firsts, heads = [], []
+    prev_row, prev_len = None, -1
+    for a in range(0, n, _ID_ROWS):
+        b = min(n, a + _ID_ROWS)
+        ln = lens[a:b]
+        inside = cols[None, :] < ln[:, None]
+        mat = arr.take(fs[a:b, None] + cols, mode="clip")
+        mat[~inside] = 0
+        if (mat >= 128).any() or ((mat == 0) & inside).any():
+            return None  # non-ASCII text or a NUL byte: pandas' way
+        new = np.ones(b - a, bool)
+        new[1:] = (ln[1:] != ln[:-1]) | (mat[1:] != mat[:-1]).any(axis=1)
+        if prev_row is not None:
+            new[0] = ln[0] != prev_len or bool((mat[0] != prev_row).any())
+        prev_row, prev_len = mat[-1], int(ln[-1])
+        firsts.append(np.flatnonzero(new) + a)
+        heads.append(mat[new])
+    starts = np.concatenate(firsts)
+    run_ids = np.ascontiguousarray(np.concatenate(heads)).view(f"S{w}").ravel()
+    codes_runs, uniques = pd.factorize(run_ids.astype(object), sort=False)
+    texts = np.asarray(uniques, dtype=f"S{w}").astype(f"U{w}").tolist()
+    if not _NA_SPELLINGS.isdisjoint(texts):
+        return None
+    codes = np.repeat(np.asarray(codes_runs, dtype=np.int64), np.diff(starts, append=n))
+    return codes, texts
 
 
 def _categories(s) -> tuple[np.ndarray, list[str]]:

@@ -425,3 +425,87 @@ class TestParseInPieces:
         with pytest.raises(ReadingsFileError) as exc:
             read_readings(p)
         assert exc.value.line == 31 and "12.x" in str(exc.value)
+
+
+class TestIdsFromBytes:
+    """On plain tables the DUT ids are read from their byte spans instead of by pandas;
+    the readings must be exactly what the pandas path gives (plumbing test: the pandas
+    path is the reference), and ids it leaves to pandas must still come out right."""
+
+    ROWS = [("U1", "open", "12.00"), ("U1", "10", "11.95"), ("U2", "open", "5.00"),
+            ("U2", "10", "4.95"), ("U1", "4.7", "11.90"), ("U3", "open", "9.0"),
+            ("U3", "10", "8.9")]
+
+    @staticmethod
+    def table(rows, order=(0, 1, 2), sep=","):
+        head = ["dut", "load_ohm", "voltage_V"]
+        lines = [sep.join(head[k] for k in order)]
+        lines += [sep.join(r[k] for k in order) for r in rows]
+        return "\n".join(lines) + "\n"
+
+    def both(self, monkeypatch, path):
+        import sagfit.io_csv as io_csv
+
+        seen = []
+        real = io_csv._ids_from_spans
+        monkeypatch.setattr(io_csv, "_ids_from_spans",
+                            lambda *a: (lambda r: seen.append(r is not None) or r)(real(*a)))
+        fast = read_readings(path)
+        monkeypatch.setattr(io_csv, "_ids_from_spans", lambda *a: None)
+        slow = read_readings(path)
+        assert fast.duts == slow.duts
+        for name in ("group", "line", "voltage", "current", "load"):
+            np.testing.assert_array_equal(getattr(fast, name), getattr(slow, name))
+        return fast, seen
+
+    @pytest.mark.parametrize("order", [(0, 1, 2), (1, 0, 2), (1, 2, 0)])
+    @pytest.mark.parametrize("ids", [("U1", "U2", "U3"), ("01", "1", "001"),
+                                     (" A", "A", "A "), ("x" * 64, "y", "x" * 63),
+                                     ("True", "true", "TRUE"), ("1e3", "1000", "inf")])
+    def test_same_as_pandas(self, tmp_path, monkeypatch, order, ids):
+        names = dict(zip(("U1", "U2", "U3"), ids))
+        rows = [(names[d], ld, v) for d, ld, v in self.ROWS]  # U1 comes back after U2
+        text = self.table(rows, order)
+        fast, seen = self.both(monkeypatch, write(tmp_path, text))
+        # read from the bytes, not by pandas (a line starting with a blank is not a plain
+        # table: the full line scan and pandas read it)
+        assert seen == ([] if "\n " in text else [True])
+
+    @pytest.mark.parametrize("ids,why", [(("NA", "U2", "U3"), "missing-value spelling"),
+                                         (("Ü1", "U2", "U3"), "non-ASCII"),
+                                         (("x" * 65, "U2", "U3"), "longer than 64 bytes")])
+    def test_left_to_pandas(self, tmp_path, monkeypatch, ids, why):
+        names = dict(zip(("U1", "U2", "U3"), ids))
+        rows = [(names[d], ld, v) for d, ld, v in self.ROWS]
+        path = write(tmp_path, self.table(rows))
+        import sagfit.io_csv as io_csv
+
+        real = io_csv._ids_from_spans
+        seen = []
+        monkeypatch.setattr(io_csv, "_ids_from_spans",
+                            lambda *a: (lambda r: seen.append(r) or r)(real(*a)))
+        if ids[0] == "NA":
+            with pytest.raises(ReadingsFileError, match="empty DUT id") as exc:
+                read_readings(path)
+            assert exc.value.line == 2
+        else:
+            assert read_readings(path).duts[0] == ids[0], why
+        assert seen == [None], why
+
+    def test_empty_id_is_an_error_on_its_line(self, tmp_path):
+        rows = list(self.ROWS)
+        rows[3] = ("", "10", "4.95")
+        with pytest.raises(ReadingsFileError, match="empty DUT id") as exc:
+            read_readings(write(tmp_path, self.table(rows)))
+        assert exc.value.line == 5
+
+    def test_many_rows_across_comparison_blocks(self, tmp_path, monkeypatch):
+        import sagfit.io_csv as io_csv
+
+        monkeypatch.setattr(io_csv, "_ID_ROWS", 7)  # runs of equal ids cut by the blocks
+        rng = np.random.default_rng(3)
+        ids = [f"P{k % 17:02d}" for k in rng.integers(0, 40, 30) for _ in range(3)]
+        rows = [(d, ("open", "10", "4.7")[j % 3], f"{12 - 0.05 * (j % 3):.2f}")
+                for j, d in enumerate(ids)]
+        fast, seen = self.both(monkeypatch, write(tmp_path, self.table(rows)))
+        assert seen == [True] and len(fast.duts) == len(set(ids))
