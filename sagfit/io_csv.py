@@ -668,7 +668,7 @@ def _read_pieces(body: bytes, pos: int, kw: dict):
             columns[c] = pd.concat(parts, ignore_index=True)
         else:
             return None
-    return pd.DataFrame(columns)
+    return pd.DataFrame(columns, copy=False)  # no consolidating copy of the columns
 
 
 #: pandas' default spellings of a missing value (``read_csv``, ``na_values``). A DUT id
