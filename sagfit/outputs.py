@@ -136,39 +136,43 @@ JSON_PIECE_DUTS = 2000
 _HOLE = "\ue000sagfit results\ue000"  # a private-use placeholder, never in a document
 
 
-def document_pieces(doc: dict, fits=None, *, rows=None) -> Iterator[str]:
-    """The JSON text of a results document, ending in a line end, in pieces.
+def document_text(doc) -> str:
+    """A JSON document as text, ending in a line end: indented for people, compact (the C
+    encoder, about 10× faster) above ``JSON_BIG`` results. NaN and ±inf are refused, as
+    JSON has no such numbers."""
+    import json
 
-    Up to ``JSON_BIG`` results the text is indented for people. Above, it is compact (the
-    C encoder) and, where the results are given as ``fits`` (a
-    :class:`~sagfit.results.Fits`: ``fits.to_dicts()``) or as ``rows`` (a pair ``(n,
-    dicts)`` where ``dicts(lo, hi)`` gives the results of rows lo … hi − 1), built and
-    encoded ``JSON_PIECE_DUTS`` at a time instead of ``doc["results"]``: the whole document
-    is never held as Python objects (100,000 DUTs of ``sagfit fit`` took 2.8 GB that way).
-    The text is the same as ``json.dumps`` of the whole document. NaN and ±inf are
-    refused, as JSON has no such numbers.
+    big = isinstance(doc, dict) and len(doc.get("results", ())) > JSON_BIG
+    return json.dumps(doc, indent=None if big else 2, ensure_ascii=False,
+                      allow_nan=False) + "\n"
+
+
+def document_pieces(doc: dict, results=None) -> Iterator[str]:
+    """:func:`document_text` of ``doc`` in pieces, with its results taken from ``results``.
+
+    ``results`` (a :class:`~sagfit.results.Fits` or an
+    :class:`~sagfit.acceptance.Acceptance`: anything with ``len()`` and
+    ``to_dicts(range)``) replaces ``doc["results"]``. Above ``JSON_BIG`` DUTs its dicts are
+    built and encoded ``JSON_PIECE_DUTS`` at a time, so the whole document is never held
+    as Python objects (100,000 DUTs of ``sagfit fit`` took 2.8 GB that way); the text is
+    the same as ``document_text`` of the whole document.
     """
     import json
 
     from ._parallel import gc_paused
 
-    if fits is not None:
-        rows = (len(fits), lambda lo, hi: fits.dut_slice(lo, hi).to_dicts())
-    if rows is not None and rows[0] <= JSON_BIG:
-        doc = {**doc, "results": rows[1](0, rows[0])}
-        rows = None
-    if rows is None:
-        big = len(doc.get("results", ())) > JSON_BIG
-        yield json.dumps(doc, indent=None if big else 2, ensure_ascii=False,
-                         allow_nan=False) + "\n"
+    n = 0 if results is None else len(results)
+    if n <= JSON_BIG:
+        if results is not None:
+            doc = {**doc, "results": results.to_dicts(range(n))}
+        yield document_text(doc)
         return
-    n, dicts = rows
     head, tail = json.dumps({**doc, "results": _HOLE}, ensure_ascii=False,
                             allow_nan=False).split(json.dumps(_HOLE, ensure_ascii=False))
     yield head + "["
     with gc_paused():  # the dicts of each piece are freed by reference counting
         for lo in range(0, n, JSON_PIECE_DUTS):
-            text = json.dumps(dicts(lo, min(lo + JSON_PIECE_DUTS, n)), ensure_ascii=False,
-                              allow_nan=False)
-            yield (", " if lo else "") + text[1:-1]
+            part = results.to_dicts(range(lo, min(lo + JSON_PIECE_DUTS, n)))
+            yield (", " if lo else "") + json.dumps(part, ensure_ascii=False,
+                                                    allow_nan=False)[1:-1]
     yield "]" + tail + "\n"

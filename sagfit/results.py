@@ -373,12 +373,17 @@ class Fits:
                             for name in first.extra}
         return dataclasses.replace(first, **changes)
 
-    def to_dicts(self) -> list[dict]:
-        """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit fit --json``).
+    def to_dicts(self, indices: range | None = None) -> list[dict]:
+        """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit fit --json``), of all DUTs
+        or of a ``range`` of them (a piece of a large document).
 
         Built column-wise: equal to ``[fits[i].to_dict() for i …]`` but several times
         faster on a large batch.
         """
+        if indices is not None and indices != range(len(self)):
+            if indices.step != 1:
+                raise ValueError("to_dicts takes a range of consecutive DUTs")
+            return self.dut_slice(indices.start, indices.stop).to_dicts()
         m = len(self)
         if m == 0:
             return []

@@ -164,11 +164,11 @@ def _keep_freed_memory() -> None:
     try:
         import ctypes
 
-        mallopt = ctypes.CDLL(None).mallopt
-        gnu = ctypes.CDLL(None).gnu_get_libc_version  # glibc only (musl has no such call)
-    except (OSError, AttributeError, ImportError):
+        libc = ctypes.CDLL(None)
+    except (OSError, ImportError):
         return
-    del gnu
-    mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
-    mallopt(_M_MMAP_THRESHOLD, _MMAP_THRESHOLD)
-    mallopt(_M_TRIM_THRESHOLD, _TRIM_THRESHOLD)
+    if not hasattr(libc, "gnu_get_libc_version"):  # glibc only (musl has no such call)
+        return
+    libc.mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
+    libc.mallopt(_M_MMAP_THRESHOLD, _MMAP_THRESHOLD)
+    libc.mallopt(_M_TRIM_THRESHOLD, _TRIM_THRESHOLD)

@@ -14,7 +14,7 @@ import typer
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
                      VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
-                     load_readings, progress, settings_record, show_progress, write_stdout)
+                     load_readings, progress, settings_record, show_progress, write_document)
 
 MAX_TABLE_ROWS = 40
 
@@ -65,17 +65,13 @@ def accept_command(
             step(f"deciding {readings.n_duts} DUT(s)")
             acc = accept(fits, the_spec, rule=rule, readings=readings)
         need_doc = json_out or report or (out and out.lower().endswith(".json"))
-        # the per-DUT results are encoded from ``acc`` as they are written (in pieces for
-        # a large batch: see outputs.document_pieces); the report gets the whole document
-        doc = accept_document(acc, fits, readings, settings, results=False) if need_doc \
-            else None
-        rows = (len(acc), lambda lo, hi: acc.to_dicts(range(lo, hi)))
+        doc = accept_document(acc, fits, readings, settings) if need_doc else None
         if out:
             from ..outputs import atomic_write, document_pieces
             from ..report_accept import acceptance_csv
 
             if out.lower().endswith(".json"):
-                atomic_write(out, document_pieces(doc, rows=rows), inputs=inputs)
+                atomic_write(out, document_pieces(doc, acc), inputs=inputs)
             else:
                 atomic_write(out, acceptance_csv(acc), inputs=inputs)
         if report:
@@ -84,18 +80,15 @@ def accept_command(
             write_accept_report(report, acc, fits, readings,
                                 {**doc, "results": acc.to_dicts()}, inputs=inputs)
         if json_out:
-            from ..outputs import document_pieces
-
-            for piece in document_pieces(doc, rows=rows):
-                write_stdout(piece)
+            write_document(doc, acc)
         else:
             print_acceptance(acc, fits, readings, settings, verbose=verbose)
     raise typer.Exit(acc.exit_code)
 
 
-def accept_document(acc, fits, readings, settings, *, results: bool = True) -> dict:
-    """The JSON document of ``sagfit accept --json`` (``results=False``: an empty results
-    list, for ``outputs.document_pieces`` to fill as it writes)."""
+def accept_document(acc, fits, readings, settings) -> dict:
+    """The JSON document of ``sagfit accept --json``, with an empty ``results`` list: the
+    decisions are built where they are written (``outputs.document_pieces(doc, acc)``)."""
     from .. import __version__
     from ..acceptance import DECISIONS
     from ..safety import fit_cautions
@@ -118,7 +111,7 @@ def accept_document(acc, fits, readings, settings, *, results: bool = True) -> d
                           "ignore_flags": list(r.ignore_flags),
                           "decisions": list(DECISIONS)},
         "settings": settings_record(settings),
-        "results": acc.to_dicts() if results else [],
+        "results": [],
         "summary": acc.summary(),
         "cautions": fit_cautions(fits, readings),
     }

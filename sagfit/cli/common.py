@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import contextlib
-import json
 import math
 import sys
 from typing import Annotated, Iterator, Optional
@@ -164,13 +163,13 @@ def show_progress(file: str, json_out: bool) -> bool:
         return False
 
 
-def dumps(doc) -> str:
-    """JSON text; indented for people, compact (C encoder, 10× faster) for big batches."""
-    from ..outputs import JSON_BIG
+def write_document(doc, results=None) -> None:
+    """Print a JSON document to stdout, with the per-DUT ``results`` of a Fits or an
+    Acceptance when given (``outputs.document_pieces``: in pieces for a large batch)."""
+    from ..outputs import document_pieces
 
-    big = len(doc.get("results", ())) > JSON_BIG if isinstance(doc, dict) else False
-    return json.dumps(doc, indent=None if big else 2, ensure_ascii=False,
-                      allow_nan=False) + "\n"
+    for piece in document_pieces(doc, results):
+        write_stdout(piece)
 
 
 def write_stdout(text: str) -> None:

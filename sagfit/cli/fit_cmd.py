@@ -10,7 +10,7 @@ from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
                      VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
-                     write_stdout)
+                     write_document)
 
 MAX_TABLE_ROWS = 40
 
@@ -74,9 +74,7 @@ def fit_command(
 
                 fits = fits.replace(extra={**fits.extra, "budget": budgets(
                     readings, fits, used=fits.used_rows)})
-            # the per-DUT results are encoded from ``fits`` as they are written (in pieces
-            # for a large batch: see outputs.document_pieces)
-            doc = fit_document(fits, readings, settings, results=False)
+            doc = fit_document(fits, readings, settings)
             require_some_fit(file, fits)
             step("writing")
             if out:
@@ -87,10 +85,7 @@ def fit_command(
                 write_report(report, fits, readings, doc, settings, figures=figures,
                              inputs=[file] + ([bench] if bench else []), fill_results=True)
         if json_out:
-            from ..outputs import document_pieces
-
-            for piece in document_pieces(doc, fits):
-                write_stdout(piece)
+            write_document(doc, fits)
         else:
             from .render import print_fits
 
@@ -118,10 +113,10 @@ def parse_current_range(text: str | None):
     return lo, hi
 
 
-def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
-    """The JSON document of ``sagfit fit --json`` (``results=False``: everything but the
-    per-DUT results, which cost time on a large batch and the terminal view does not need;
-    ``outputs.document_pieces(doc, fits)`` writes the document with them, in pieces)."""
+def fit_document(fits, readings, settings) -> dict:
+    """The JSON document of ``sagfit fit --json``, with an empty ``results`` list: the
+    per-DUT results are built only where they are written (``outputs.document_pieces(doc,
+    fits)``, in pieces for a large batch); the terminal view does not need them."""
     from .. import __version__
     from ..safety import fit_cautions
 
@@ -138,7 +133,7 @@ def fit_document(fits, readings, settings, *, results: bool = True) -> dict:
         "settings": settings_record(settings),
         "traceability": trace,
         "warnings": trace["warnings"],
-        "results": fits.to_dicts() if results else [],
+        "results": [],
         "cautions": fit_cautions(fits, readings),
     }
 

@@ -10,8 +10,8 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VoltageAccOpt, dumps, fit_settings, guarded, interactive, load_readings,
-                     progress, require_some_fit, settings_record, show_progress, write_stdout)
+                     VoltageAccOpt, fit_settings, guarded, interactive, load_readings, progress,
+                     require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
 MAX_TABLE_ROWS = 40
 DEFAULT_DB = "sagfit-history.sqlite"  # the same name as sagfit.history.DEFAULT_DB
@@ -78,7 +78,7 @@ def record_command(
                "records_in_database": total,
                "cautions": fit_cautions(fits, readings)}
         if json_out:
-            write_stdout(dumps(doc))
+            write_document(doc)
         else:
             _print_record(doc)
     raise typer.Exit(3 if failed else 0)
@@ -254,7 +254,7 @@ def trend_command(
 
             write_trend_report(report, trends, recs, doc, inputs=[db])
         if json_out:
-            write_stdout(dumps(doc))
+            write_document(doc)
         else:
             print_trends(trends, doc)
     raise typer.Exit(1 if trends.flagged.any() else 0)

@@ -10,8 +10,8 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, dumps,
-                     fit_settings, guarded, interactive, progress, write_stdout)
+from .common import (BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, fit_settings,
+                     guarded, interactive, progress, write_document, write_stdout)
 
 INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
 
@@ -357,7 +357,7 @@ def plan_command(
             from .. import __version__
 
             doc = {"tool": "sagfit", "version": __version__, **result.to_dict()}
-            write_stdout(dumps(doc))
+            write_document(doc)
         else:
             _print_plan(result)
 

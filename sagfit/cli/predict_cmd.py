@@ -7,7 +7,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import ConfidenceOpt, JsonOpt, dumps, guarded, write_stdout
+from .common import ConfidenceOpt, JsonOpt, guarded, write_document
 
 
 @app.command("predict")
@@ -41,9 +41,9 @@ def predict_command(
         preds = predict(models, loads=loads, currents=currents, confidence=confidence)
         warnings, cautions = _warnings_and_cautions(preds, models)
         if json_out:
-            write_stdout(dumps({"tool": "sagfit", "source": results,
-                                "predictions": [p.to_dict() for p in preds],
-                                "warnings": warnings, "cautions": cautions}))
+            write_document({"tool": "sagfit", "source": results,
+                            "predictions": [p.to_dict() for p in preds],
+                            "warnings": warnings, "cautions": cautions})
         else:
             _print(preds, models)
             from .render import _console
