@@ -38,7 +38,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _groupsum, _spread, _york_kernel, york_state
+from .fit import _groupsum, _segments, _spread, _york_kernel, york_state
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -334,14 +334,8 @@ def _knee(R: _Rows, level):
         return out, test, eligible
     # per-DUT scales: typical uncertainties (a floor keeps near-vertical segments finite)
     cnt = np.maximum(R.n, 1)
-    xmin = np.full(m, np.inf)
-    xmax = np.full(m, -np.inf)
-    ymin = np.full(m, np.inf)
-    ymax = np.full(m, -np.inf)
-    starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
-    ne = R.n > 0
-    width = int(R.n[0]) if m and (R.n == R.n[0]).all() and R.n[0] > 1 else 0
-    if width:  # every DUT has the same count: column by column, no segment loop
+    width = _segments(g, m).width
+    if width > 1:  # every DUT has the same count: column by column, no segment loop
         x2, y2 = R.x.reshape(m, width), R.y.reshape(m, width)
         xmin, xmax = x2[:, 0].copy(), x2[:, 0].copy()
         ymin, ymax = y2[:, 0].copy(), y2[:, 0].copy()
@@ -350,11 +344,16 @@ def _knee(R: _Rows, level):
             np.maximum(xmax, x2[:, j], out=xmax)
             np.minimum(ymin, y2[:, j], out=ymin)
             np.maximum(ymax, y2[:, j], out=ymax)
-    elif ne.any():
-        xmin[ne] = np.minimum.reduceat(R.x, starts[ne])
-        xmax[ne] = np.maximum.reduceat(R.x, starts[ne])
-        ymin[ne] = np.minimum.reduceat(R.y, starts[ne])
-        ymax[ne] = np.maximum.reduceat(R.y, starts[ne])
+    else:
+        xmin, xmax = np.full(m, np.inf), np.full(m, -np.inf)
+        ymin, ymax = np.full(m, np.inf), np.full(m, -np.inf)
+        starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
+        ne = R.n > 0
+        if ne.any():
+            xmin[ne] = np.minimum.reduceat(R.x, starts[ne])
+            xmax[ne] = np.maximum.reduceat(R.x, starts[ne])
+            ymin[ne] = np.minimum.reduceat(R.y, starts[ne])
+            ymax[ne] = np.maximum.reduceat(R.y, starts[ne])
     rx = np.where(xmax > xmin, xmax - xmin, 1.0)
     ry = np.where(ymax > ymin, ymax - ymin, 1.0)
     sy = np.where(R.stated, np.sqrt(_groupsum(g, R.syy, m) / cnt), 1.0)

@@ -320,25 +320,26 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     decimal = "," if delim == ";" else "."
     # the DUT ids straight from their bytes where the table is plain (see _ids_from_spans)
     dut_ids = _ids_from_spans(*dut_spans) if dut_spans is not None else None
-    usecols = [roles[r].index for r in roles if not (r == "dut" and dut_ids is not None)]
-    text_roles = {"dut", "load", "group"}
+    parsed = [r for r in roles if not (r == "dut" and dut_ids is not None)]
+
     def table(columns, dtypes):
         return _read_frame(body, body_pos, lines_of_rows.size, name, sep=delim,
                            ncols=len(names), usecols=columns, dtypes=dtypes, decimal=decimal)
 
     # text columns as categories: the tokenizer interns the few distinct ids and load
     # codes, instead of making a Python string per cell (faster, less memory)
-    frame = table(usecols, {roles[r].index: "category" for r in roles if r in text_roles})
+    frame = table([roles[r].index for r in parsed],
+                  {roles[r].index: "category" for r in parsed if r in ("dut", "load", "group")})
     # pandas turns categories that all look like numbers or booleans into numbers or
     # booleans, which merges ids such as '01' and '1' (or 'True' and 'true'); ids keep
     # their text, so such id columns are read again as text
-    as_text = [roles[r].index for r in ("dut", "group") if r in roles
-               and roles[r].index in frame
+    as_text = [roles[r].index for r in ("dut", "group") if r in parsed
                and frame[roles[r].index].cat.categories.dtype.kind in "biufc"]
     if as_text:
         again = table(as_text, {c: str for c in as_text})
         for c in as_text:
             frame[c] = again[c].astype("category")
+
     def column(role):
         return frame[roles[role].index]
 
