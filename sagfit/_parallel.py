@@ -14,7 +14,7 @@ import gc
 import os
 import sys
 
-__all__ = ["WORKERS", "gc_paused", "map_parallel", "quick_gil_handover"]
+__all__ = ["WORKERS", "Background", "gc_paused", "map_parallel", "quick_gil_handover"]
 
 #: Worker threads: two where the machine has two cores or more, else none (one pass).
 WORKERS = min(2, os.cpu_count() or 1)
@@ -46,6 +46,40 @@ def map_parallel(fn, parts) -> list:
 
     with quick_gil_handover(), ThreadPoolExecutor(WORKERS) as pool:
         return list(pool.map(fn, parts))
+
+
+class Background:
+    """``fn(*args)`` started in a worker thread (run at once, in the caller, when ``inline``
+    or on a one-core machine); :meth:`result` waits for it and returns its value or raises
+    its exception. For work that releases the GIL (hashing, numpy array operations) while
+    the caller does something else."""
+
+    __slots__ = ("_thread", "_value", "_error")
+
+    def __init__(self, fn, *args, inline: bool = False):
+        self._thread = None
+        self._value = self._error = None
+        if inline or WORKERS < 2:
+            self._run(fn, args)
+            return
+        import threading
+
+        self._thread = threading.Thread(target=self._run, args=(fn, args), daemon=True)
+        self._thread.start()
+
+    def _run(self, fn, args):
+        try:
+            self._value = fn(*args)
+        except BaseException as exc:  # handed to the caller by result()
+            self._error = exc
+
+    def result(self):
+        if self._thread is not None:
+            self._thread.join()
+            self._thread = None
+        if self._error is not None:
+            raise self._error
+        return self._value
 
 
 @contextlib.contextmanager

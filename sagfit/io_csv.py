@@ -19,7 +19,7 @@ from typing import Mapping
 
 import numpy as np
 
-from ._parallel import gc_paused
+from ._parallel import Background, gc_paused
 from .errors import ReadingsFileError
 from .readings import Readings
 from .units import Accuracy, parse_header_unit, parse_resistance
@@ -239,7 +239,8 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
 
     if not data or data.isspace():
         raise ReadingsFileError(name, "the file is empty")
-    sha256 = _Digest(data)  # in a thread: hashlib releases the GIL, the parse goes on
+    big = len(data) >= BACKGROUND_BYTES
+    sha256 = Background(_sha256, data, inline=not big)  # hashlib releases the GIL
     enc, text = _decode_head(data, name)
     if enc != "utf-8":
         data = text.encode("utf-8")  # one encoding from here on; BOM already dropped
@@ -301,7 +302,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
                                     column=h.strip())
         roles[role] = ColumnRole(role, scale, h.strip(), col)
     meta["ignored_columns"] = ignored
-    meta["sha256"] = sha256.hexdigest()
+    meta["sha256"] = sha256.result()
     meta["delimiter"] = delim
     meta["encoding"] = enc
     present = [r for r in ("load", "voltage", "current") if r in roles]
@@ -318,9 +319,11 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         raise ReadingsFileError(name, "no readings (the table has a header but no rows)",
                                 line=header_line)
     decimal = "," if delim == ";" else "."
-    # the DUT ids straight from their bytes where the table is plain (see _ids_from_spans)
-    dut_ids = _ids_from_spans(*dut_spans) if dut_spans is not None else None
-    parsed = [r for r in roles if not (r == "dut" and dut_ids is not None)]
+    # the DUT ids straight from their bytes where the table is plain (see _ids_from_spans),
+    # for a large file in a worker thread while pandas parses the other columns
+    ids_job = (Background(_ids_from_spans, *dut_spans, inline=not big)
+               if dut_spans is not None else None)
+    parsed = [r for r in roles if not (r == "dut" and ids_job is not None)]
 
     def table(columns, dtypes):
         return _read_frame(body, body_pos, lines_of_rows.size, name, sep=delim,
@@ -328,8 +331,14 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
 
     # text columns as categories: the tokenizer interns the few distinct ids and load
     # codes, instead of making a Python string per cell (faster, less memory)
+    text_roles = ("dut", "load", "group")
     frame = table([roles[r].index for r in parsed],
-                  {roles[r].index: "category" for r in parsed if r in ("dut", "load", "group")})
+                  {roles[r].index: "category" for r in parsed if r in text_roles})
+    dut_ids = ids_job.result() if ids_job is not None else None
+    if ids_job is not None and dut_ids is None:  # ids the byte spans leave to pandas
+        c = roles["dut"].index
+        frame[c] = table([c], {c: "category"})[c]
+        parsed.append("dut")
     # pandas turns categories that all look like numbers or booleans into numbers or
     # booleans, which merges ids such as '01' and '1' (or 'True' and 'true'); ids keep
     # their text, so such id columns are read again as text
@@ -418,30 +427,15 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
 _BLANK_AFTER_NUL = re.compile(r"\x00\s")
 
 
-class _Digest:
-    """SHA-256 of the file's bytes, computed in a worker thread for large files (hashing
-    27 MB takes 15 ms, and hashlib releases the GIL while it works)."""
+#: From this many bytes on, work that releases the GIL runs in a worker thread beside the
+#: parse (the file's SHA-256: 15 ms on 27 MB; the DUT ids from their byte spans).
+BACKGROUND_BYTES = 4 << 20
 
-    THREAD_BYTES = 4 << 20
 
-    def __init__(self, data: bytes):
-        import hashlib
+def _sha256(data: bytes) -> str:
+    import hashlib
 
-        self._h = hashlib.sha256()
-        self._thread = None
-        if len(data) < self.THREAD_BYTES:
-            self._h.update(data)
-            return
-        import threading
-
-        self._thread = threading.Thread(target=self._h.update, args=(data,), daemon=True)
-        self._thread.start()
-
-    def hexdigest(self) -> str:
-        if self._thread is not None:
-            self._thread.join()
-            self._thread = None
-        return self._h.hexdigest()
+    return hashlib.sha256(data).hexdigest()
 
 
 def _short(exc: Exception) -> str:
@@ -679,18 +673,23 @@ _NA_SPELLINGS = frozenset({"", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN",
                            "None", "n/a", "nan", "null"})
 _ID_WIDTH = 64      # longest id read from its byte spans; longer ones go to pandas
 _ID_ROWS = 1 << 16  # rows compared at a time (bounds the temporaries)
+_HIGH_BITS = np.uint64(0x8080808080808080)
+_LOW_BITS = np.uint64(0x0101010101010101)
+#: little-endian masks of the first k bytes of a 64-bit word, k = 0…8
+_BYTE_MASKS = np.array([(1 << (8 * k)) - 1 for k in range(9)], dtype=np.uint64)
 
 
 def _ids_from_spans(arr: np.ndarray, fs: np.ndarray, fe: np.ndarray):
     """(codes, texts) of the DUT id column, from its byte spans ``arr[fs[i]:fe[i]]`` on each
     row, numbered in order of first appearance; or None, when pandas should read it.
 
-    A file's rows usually come DUT by DUT, so each row is compared with the one before and
-    only the first row of each run of equal ids is hashed: on 100,000 DUTs × 8 readings
-    this takes a fraction of the time pandas' categorical parse of the column does (that
-    interns every cell and then tries each id as a number and as a boolean). Left to pandas:
-    an empty cell, a missing-value spelling (``NA``, ``null`` …), a non-ASCII byte, an id
-    longer than 64 bytes.
+    Each id is read as a few 64-bit words (its bytes, zero-padded). A file's rows usually
+    come DUT by DUT, so each row's words are compared with the row before and only the first
+    row of each run of equal ids is kept; the runs' words are then numbered with integer
+    hashing. On 100,000 DUTs × 8 readings this takes a fraction of the time pandas'
+    categorical parse of the column does (that interns every cell and then tries each id as
+    a number and as a boolean). Left to pandas: an empty cell, a missing-value spelling
+    (``NA``, ``null`` …), a non-ASCII or NUL byte, an id longer than 64 bytes.
     """
     import pandas as pd
 
@@ -698,32 +697,56 @@ def _ids_from_spans(arr: np.ndarray, fs: np.ndarray, fe: np.ndarray):
     lens = fe - fs
     if n == 0 or int(lens.min()) <= 0 or int(lens.max()) > _ID_WIDTH:
         return None
-    w = int(lens.max())
-    cols = np.arange(w)
+    nw = (int(lens.max()) + 7) // 8  # words per id
+    width = 8 * nw
+    windows = np.lib.stride_tricks.sliding_window_view(arr, width) if arr.size >= width else None
     firsts, heads = [], []
-    prev_row, prev_len = None, -1
+    prev = None
     for a in range(0, n, _ID_ROWS):
         b = min(n, a + _ID_ROWS)
-        ln = lens[a:b]
-        inside = cols[None, :] < ln[:, None]
-        mat = arr.take(fs[a:b, None] + cols, mode="clip")
-        mat[~inside] = 0
-        if (mat >= 128).any() or ((mat == 0) & inside).any():
+        start, ln = fs[a:b], lens[a:b]
+        if windows is not None and int(start[-1]) + width <= arr.size:
+            mat = windows[start]  # each row's ``width`` bytes from the id's first byte on
+        else:  # the last id near the end of the file: clip, the mask drops the rest
+            mat = arr.take(start[:, None] + np.arange(width), mode="clip")
+        words = mat.view("<u8")  # (rows, nw)
+        pad = np.zeros(b - a, dtype=np.uint64)
+        for c in range(nw):
+            k = np.clip(ln - 8 * c, 0, 8)
+            words[:, c] &= _BYTE_MASKS[k]
+            # a NUL byte inside the id: the zero-byte test on the word with its padding
+            # bytes set to 1 (Warren, Hacker's Delight, 2nd ed. 2012, §6-1)
+            filled = words[:, c] | (_LOW_BITS & ~_BYTE_MASKS[k])
+            pad |= ((filled - _LOW_BITS) & ~filled) | words[:, c]
+        if (pad & _HIGH_BITS).any():
             return None  # non-ASCII text or a NUL byte: pandas' way
+        # zero padding and no NUL byte: equal words mean equal ids (lengths included)
         new = np.ones(b - a, bool)
-        new[1:] = (ln[1:] != ln[:-1]) | (mat[1:] != mat[:-1]).any(axis=1)
-        if prev_row is not None:
-            new[0] = ln[0] != prev_len or bool((mat[0] != prev_row).any())
-        prev_row, prev_len = mat[-1], int(ln[-1])
+        if b - a > 1:
+            new[1:] = words[1:, 0] != words[:-1, 0]
+            for c in range(1, nw):
+                new[1:] |= words[1:, c] != words[:-1, c]
+        if prev is not None:
+            new[0] = bool((words[0] != prev).any())
+        prev = words[-1].copy()
         firsts.append(np.flatnonzero(new) + a)
-        heads.append(mat[new])
+        heads.append(words[new])
     starts = np.concatenate(firsts)
-    run_ids = np.ascontiguousarray(np.concatenate(heads)).view(f"S{w}").ravel()
-    codes_runs, uniques = pd.factorize(run_ids.astype(object), sort=False)
-    texts = np.asarray(uniques, dtype=f"S{w}").astype(f"U{w}").tolist()
+    runs = np.concatenate(heads)  # (runs, nw) words
+    codes_runs = np.asarray(pd.factorize(runs[:, 0], sort=False)[0], dtype=np.int64)
+    for c in range(1, nw):  # pairs of codes numbered again: first appearance kept
+        col = np.asarray(pd.factorize(runs[:, c], sort=False)[0], dtype=np.int64)
+        codes_runs = np.asarray(pd.factorize(codes_runs * (int(col.max()) + 1) + col,
+                                             sort=False)[0], dtype=np.int64)
+    # the first run of each id (codes count up from 0 in order of first appearance)
+    top = np.maximum.accumulate(codes_runs)
+    first = np.flatnonzero(np.concatenate(([True], top[1:] > top[:-1])))
+    text = runs[first].view(np.uint8).reshape(first.size, width)
+    text = np.concatenate([text, np.full((first.size, 1), 10, np.uint8)], axis=1).reshape(-1)
+    texts = text[text != 0].tobytes().decode("ascii").split("\n")[:-1]
     if not _NA_SPELLINGS.isdisjoint(texts):
         return None
-    codes = np.repeat(np.asarray(codes_runs, dtype=np.int64), np.diff(starts, append=n))
+    codes = np.repeat(codes_runs, np.diff(starts, append=n))
     return codes, texts
 
 

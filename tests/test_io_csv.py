@@ -509,3 +509,83 @@ class TestIdsFromBytes:
                 for j, d in enumerate(ids)]
         fast, seen = self.both(monkeypatch, write(tmp_path, self.table(rows)))
         assert seen == [True] and len(fast.duts) == len(set(ids))
+
+
+class TestIdWords:
+    """_ids_from_spans reads each id as 64-bit words; the cases sit on the word boundaries
+    (plumbing tests against the ids written)."""
+
+    @staticmethod
+    def spans(ids, tail=b""):
+        import sagfit.io_csv as io_csv
+
+        body = b"".join(i + b",1\n" for i in ids) + tail
+        arr = np.frombuffer(body, dtype=np.uint8)
+        starts, pos = [], 0
+        for i in ids:
+            starts.append(pos)
+            pos += len(i) + 3
+        fs = np.array(starts, dtype=np.intp)
+        fe = fs + np.array([len(i) for i in ids], dtype=np.intp)
+        return io_csv._ids_from_spans(arr, fs, fe)
+
+    @pytest.mark.parametrize("width", [1, 7, 8, 9, 15, 16, 17, 63, 64])
+    def test_ids_that_differ_in_their_last_byte_or_length(self, width):
+        base = b"Q" * (width - 1)
+        ids = [base + b"a", base + b"a", base + b"b", base, base + b"a", base + b"b"]
+        if width == 1:
+            ids = [b"a", b"a", b"b", b"c", b"a", b"b"]
+        codes, texts = self.spans(ids)
+        want = list(dict.fromkeys(i.decode() for i in ids))
+        assert texts == want
+        assert [texts[c] for c in codes] == [i.decode() for i in ids]
+
+    def test_the_last_id_at_the_very_end_of_the_data(self):
+        import sagfit.io_csv as io_csv
+
+        body = b"1,AB\n2,ABCDEFGHIJ"  # the id column last, no final line end
+        arr = np.frombuffer(body, dtype=np.uint8)
+        codes, texts = io_csv._ids_from_spans(arr, np.array([2, 7]), np.array([4, 17]))
+        assert texts == ["AB", "ABCDEFGHIJ"] and codes.tolist() == [0, 1]
+
+    @pytest.mark.parametrize("bad", [b"A\x00B", b"\x00", b"AB\xc3\x9c", b"NA", b"null"])
+    def test_left_to_pandas(self, bad):
+        assert self.spans([b"U1", bad, b"U2"]) is None
+
+    def test_many_rows_across_blocks_and_repeats(self, monkeypatch):
+        import sagfit.io_csv as io_csv
+
+        monkeypatch.setattr(io_csv, "_ID_ROWS", 5)
+        rng = np.random.default_rng(7)
+        ids = [f"DUT-{k:03d}-X".encode() for k in rng.integers(0, 30, 200)]
+        codes, texts = self.spans(ids)
+        assert [texts[c] for c in codes] == [i.decode() for i in ids]
+        assert texts == list(dict.fromkeys(i.decode() for i in ids))
+
+
+@pytest.mark.parametrize("ids", [("U1", "U2", "U3"), ("NA", "U2", "U3"), ("Ü1", "U2", "U3")])
+def test_ids_and_digest_in_a_worker_thread_read_the_same(tmp_path, monkeypatch, ids):
+    """A large file reads its DUT ids and its SHA-256 beside the parse, in a worker thread
+    (BACKGROUND_BYTES lowered here so that a small file takes that path); the readings and
+    errors are the same as in one thread."""
+    import sagfit.io_csv as io_csv
+
+    names = dict(zip(("U1", "U2", "U3"), ids))
+    rows = [(names[d], ld, v) for d, ld, v in TestIdsFromBytes.ROWS]
+    path = write(tmp_path, TestIdsFromBytes.table(rows))
+
+    def read():
+        try:
+            return read_readings(path)
+        except ReadingsFileError as exc:
+            return str(exc)
+
+    one = read()
+    monkeypatch.setattr(io_csv, "BACKGROUND_BYTES", 1)
+    two = read()
+    if isinstance(one, str):
+        assert one == two and "empty DUT id" in one
+        return
+    assert one.duts == two.duts and one.meta["sha256"] == two.meta["sha256"]
+    for name in ("group", "line", "voltage", "current", "load"):
+        np.testing.assert_array_equal(getattr(one, name), getattr(two, name))

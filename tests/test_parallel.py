@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from sagfit import Readings, fit
-from sagfit._parallel import gc_paused, map_parallel, quick_gil_handover
+from sagfit._parallel import Background, gc_paused, map_parallel, quick_gil_handover
 
 
 @pytest.fixture
@@ -105,3 +105,35 @@ def test_long_lived_objects_are_frozen_only_in_the_console_program(monkeypatch):
         assert gc.get_freeze_count() > 0
     finally:
         gc.unfreeze()
+
+
+@pytest.mark.parametrize("inline", [False, True])
+def test_background_returns_the_value(inline):
+    job = Background(lambda a, b: a + b, 2, 3, inline=inline)
+    assert job.result() == 5
+    assert job.result() == 5  # asked again: the same value
+
+
+@pytest.mark.parametrize("inline", [False, True])
+def test_background_raises_the_error_in_the_caller(inline):
+    job = Background(lambda: 1 / 0, inline=inline)
+    with pytest.raises(ZeroDivisionError):
+        job.result()
+
+
+def test_background_runs_beside_the_caller():
+    import threading
+
+    started, release = threading.Event(), threading.Event()
+
+    def work():
+        started.set()
+        assert release.wait(5)
+        return threading.get_ident()
+
+    job = Background(work)
+    if job._thread is None:  # one-core machine: run in the caller, nothing to test
+        pytest.skip("one worker")
+    assert started.wait(5)  # it started while the caller goes on
+    release.set()
+    assert job.result() != threading.get_ident()
