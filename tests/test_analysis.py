@@ -214,3 +214,25 @@ class TestTwoThreads:
         assert json.dumps(one.to_dicts(), sort_keys=True) == json.dumps(two.to_dicts(),
                                                                          sort_keys=True)
         assert any(f.code == "knee" for fl in two.flags for f in fl)
+
+
+@pytest.mark.parametrize("given", [0, 1, 3, 40])
+def test_add_flags_appends_and_keeps_tuples_shared(given):
+    """Fits.add_flags appends each DUT's new flags (few or many DUTs given some) and DUTs
+    with the same flags share one tuple (plumbing test against a plain loop)."""
+    from sagfit.results import Flag
+
+    m = 40
+    v = np.tile([12.0, 11.9, 11.8], m) + np.repeat(np.linspace(0, 0.1, m), 3)
+    r = Readings.from_arrays(voltage=v, load=np.tile([np.inf, 10.0, 4.7], m),
+                             group=np.repeat(np.arange(m), 3),
+                             duts=[f"D{k}" for k in range(m)], voltage_accuracy=VA)
+    fits = fit(r)
+    a, b = (Flag("x", "info", "first"),), (Flag("y", "warning", "second"),)
+    new = [()] * m
+    for k in range(given):
+        new[k * m // max(given, 1)] = a if k % 2 else b
+    out = fits.add_flags(new)
+    assert [tuple(f) for f in out.flags] == [tuple(o) + tuple(n)
+                                             for o, n in zip(fits.flags, new)]
+    assert len({id(f) for f in out.flags}) == len({tuple(f) for f in out.flags})
