@@ -1,6 +1,7 @@
 """Benchmark of ``sagfit fit`` against its peers, all timed as whole processes.
 
-Peers, run on the same files in the same session, alternating, repeated:
+Peers, run on the same files in the same session, in rounds (each round times sagfit and
+the floor on both sizes; the statsmodels loop's rounds fall between them), repeated:
   (a) a per-DUT statsmodels WLS loop (peers/statsmodels_loop.py),
   (b) a hand-vectorised numpy WLS floor (peers/floor_wls.py),
   start-up: a bare ``python -c "import pandas, scipy.special, typer"``.
@@ -12,11 +13,13 @@ one-DUT ``sagfit fit`` within 1.3× of the bare import.
 
 Usage: python benchmarks/bench_fit.py [--repeat N] [--sm-repeat N] [--quick] [--skip-statsmodels]
 The data are invented (sagfit.simulate, fixed seed) and written to a temporary folder.
+Reported: minima and medians of each command's runs, and the ratios of both.
 """
 
 from __future__ import annotations
 
 import argparse
+import collections
 import json
 import os
 import pathlib
@@ -106,26 +109,48 @@ def main() -> None:
         res["startup_ratio_median"] = (start["sagfit_one_dut"]["median"]
                                        / start["bare_import"]["median"])
 
+        # One round runs sagfit and the floor on both sizes, one after the other, so that
+        # the two sizes of a difference are timed minutes apart at most; the slow
+        # statsmodels loop runs its rounds between these (spread over the session), so
+        # that a quiet or a busy spell of the machine does not fall on one peer only.
+        cmds = {(tool, n): make_cmd(files[n], out) for n in (small, large)
+                for tool, make_cmd in (("sagfit", sagfit_cmd), ("floor", floor_cmd))}
+        times = {k: [] for k in cmds}
+        sm_times = {small: [], large: []}
+        sm_after = collections.Counter(
+            min(args.repeat, max(1, round((j + 1) * args.repeat / (args.sm_repeat + 1))))
+            for j in range(0 if args.skip_statsmodels else args.sm_repeat))
+        for rnd in range(1, args.repeat + 1):
+            for k, c in cmds.items():
+                times[k].append(timed(c, tmp)[0])
+            for _ in range(sm_after[rnd]):
+                for n in (small, large):
+                    sm_times[n].append(timed(sm_cmd(files[n], out), tmp)[0])
+
+        def summary(v):
+            return {"min": min(v), "median": statistics.median(v), "runs": v}
+
         for n in (small, large):
-            r = alternate({"sagfit": sagfit_cmd(files[n], out), "floor": floor_cmd(files[n], out)},
-                          args.repeat, tmp)
-            res[f"fit_{n}"] = r
+            res[f"fit_{n}"] = {tool: summary(times[(tool, n)]) for tool in ("sagfit", "floor")}
         big = res[f"fit_{large}"]
         res["vs_floor_ratio_min"] = big["sagfit"]["min"] / big["floor"]["min"]
         res["vs_floor_ratio_median"] = big["sagfit"]["median"] / big["floor"]["median"]
-        per = {"sagfit": (big["sagfit"]["min"] - res[f"fit_{small}"]["sagfit"]["min"])
-               / (large - small)}
+
+        def per_dut(t_small, t_large):
+            return {stat: (t_large[stat] - t_small[stat]) / (large - small)
+                    for stat in ("min", "median")}
+
+        per = {"sagfit": per_dut(res[f"fit_{small}"]["sagfit"], big["sagfit"])}
         if not args.skip_statsmodels:
-            # the slow peer is timed like the others: alternated, repeated, minima
-            sm = alternate({"small": sm_cmd(files[small], out),
-                            "large": sm_cmd(files[large], out)}, args.sm_repeat, tmp)
-            t_small, t_large = sm["small"]["min"], sm["large"]["min"]
-            res["statsmodels"] = {str(small): t_small, str(large): t_large,
-                                  "runs": {str(small): sm["small"]["runs"],
-                                           str(large): sm["large"]["runs"]}}
-            per["statsmodels"] = (t_large - t_small) / (large - small)
-            res["per_dut_ratio"] = per["statsmodels"] / per["sagfit"]
-        res["per_dut_seconds"] = per
+            sm = {n: summary(sm_times[n]) for n in (small, large)}
+            res["statsmodels"] = {str(small): sm[small]["min"], str(large): sm[large]["min"],
+                                  "runs": {str(n): sm_times[n] for n in (small, large)}}
+            per["statsmodels"] = per_dut(sm[small], sm[large])
+            res["per_dut_ratio"] = per["statsmodels"]["min"] / per["sagfit"]["min"]
+            res["per_dut_ratio_median"] = (per["statsmodels"]["median"]
+                                           / per["sagfit"]["median"])
+        res["per_dut_seconds"] = {k: v["min"] for k, v in per.items()}
+        res["per_dut_seconds_median"] = {k: v["median"] for k, v in per.items()}
 
         if not args.quick:
             rows = tmp / "sim_1m.csv"
