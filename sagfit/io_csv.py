@@ -489,35 +489,52 @@ def _clean_rows(arr: np.ndarray, delim: int, ncols: int, check_fields: bool,
     a, size = 0, arr.size
     while a < size:
         part = arr[a:a + _SCAN_BYTES]
-        nl = np.flatnonzero(part == 10)
         last = a + part.size >= size
-        if not last:
-            if nl.size == 0:
-                return None  # a line as long as a window: the full scan reports it
-            part = part[:int(nl[-1]) + 1]
-        ends = nl
+        seps = None
+        if check_fields:
+            # every separator (delimiter or line end) in one pass; a plain table has ncols − 1
+            # delimiters and then a line end on every line, so they form an (lines, ncols)
+            # matrix whose last column holds the line ends
+            sep = np.flatnonzero((part == 10) | (part == delim))
+            is_nl = part[sep] == 10
+            if not last:
+                nls = np.flatnonzero(is_nl)
+                if nls.size == 0:
+                    return None  # a line as long as a window: the full scan reports it
+                cut = int(nls[-1]) + 1
+                sep, is_nl = sep[:cut], is_nl[:cut]
+                part = part[:int(sep[-1]) + 1]
+            elif part[-1] != 10:  # a last line without its line end: end it at the data's end
+                sep = np.append(sep, part.size)
+                is_nl = np.append(is_nl, True)
+            if sep.size % ncols:
+                return None
+            kinds = is_nl.reshape(-1, ncols)
+            if not kinds[:, -1].all() or kinds[:, :-1].any():
+                return None
+            seps = sep.reshape(-1, ncols)
+            ends = seps[:, -1]
+        else:
+            nl = np.flatnonzero(part == 10)
+            if not last:
+                if nl.size == 0:
+                    return None
+                part = part[:int(nl[-1]) + 1]
+            ends = nl
+            tail = int(ends[-1]) + 1 if ends.size else 0
+            if last and tail < part.size:  # a last line without its line end
+                ends = np.append(ends, part.size)
         starts = np.empty(ends.size, dtype=np.intp)
         if ends.size:
             starts[0] = 0
             starts[1:] = ends[:-1] + 1
-        tail = int(ends[-1]) + 1 if ends.size else 0
-        if last and tail < part.size:  # a last line without its line end
-            starts = np.append(starts, tail)
-            ends = np.append(ends, part.size)
         lengths = ends - starts
         if lengths.size and (lengths.min() == 0 or lengths.max() > MAX_LINE
                              or bad_first[part[starts]].any()):
             return None
-        if check_fields:
-            dpos = np.flatnonzero(part == delim)
-            per = np.diff(np.searchsorted(dpos, ends), prepend=0)
-            if (per != ncols - 1).any():
-                return None
-            if spans is not None and field is not None and ncols > 1:
-                d2 = dpos.reshape(-1, ncols - 1)  # every line has its ncols − 1 delimiters
-                fs = starts if field == 0 else d2[:, field - 1] + 1
-                fe = ends if field == ncols - 1 else d2[:, field]
-                spans.append((fs + a, fe + a))
+        if seps is not None and spans is not None and field is not None and ncols > 1:
+            fs = starts if field == 0 else seps[:, field - 1] + 1
+            spans.append((fs + a, seps[:, field] + a))
         count += lengths.size
         a += part.size
     return count

@@ -332,6 +332,23 @@ class TestPlainTableFastPath:
         assert count("# note\n" + self.BODY) is None
         assert count(self.BODY.replace("U1,", "U1,,", 1)) is None  # a field too many
         assert count(self.BODY, ncols=4) is None
+        assert count(self.BODY.replace("U1,", "U1", 1)) is None  # a field too few
+        assert count("a\nb\nc\n", ncols=1) == 3 and count("a\n\nc\n", ncols=1) is None
+
+    @pytest.mark.parametrize("slice_bytes", [16, 64, 1 << 20])
+    @pytest.mark.parametrize("field", [0, 1, 2])
+    def test_field_spans(self, monkeypatch, slice_bytes, field):
+        """The byte spans of a field on every line, as a plain split of each line gives."""
+        import sagfit.io_csv as io_csv
+
+        monkeypatch.setattr(io_csv, "_SCAN_BYTES", slice_bytes)
+        for text in (self.BODY, self.BODY.rstrip("\n")):
+            arr = np.frombuffer(text.encode(), dtype=np.uint8)
+            spans = []
+            assert io_csv._clean_rows(arr, ord(","), 3, True, field, spans) == 30
+            got = [text[a:b] for a, b in zip(np.concatenate([x for x, _ in spans]),
+                                             np.concatenate([y for _, y in spans]))]
+            assert got == [line.split(",")[field] for line in text.splitlines()]
 
 
 class TestParseInPieces:
