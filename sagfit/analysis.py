@@ -116,26 +116,37 @@ def _range_text(lo, hi):
     return f"{format_value(lo, 'A')} ≤ I ≤ {format_value(hi, 'A')}"
 
 
-#: From this many DUTs on, the fit and the checks run on slices of the batch of
+#: From this many DUTs on, the fit and the checks run on slices of the batch of about
 #: ``CHUNK_DUTS`` DUTs each, two at a time in two threads. numpy releases the GIL inside its
 #: array operations, so on a 2-core machine two slices run in about 60 % of the time of one
 #: after the other; and slices of a bounded size reuse the same memory one after the other
 #: instead of touching fresh pages for the whole batch (on 100,000 DUTs the page faults of
-#: one whole-batch pass cost as much as the arithmetic). Every DUT is computed
-#: independently, so the results are the same as from one pass.
+#: one whole-batch pass cost as much as the arithmetic). The slices are of equal size and
+#: come in a multiple of the thread count, so that both threads finish together; larger
+#: slices mean fewer numpy calls, so fewer hand-overs of the GIL between the threads
+#: (100,000 DUTs in 8 slices of 12,500 were 5–20 % faster than in 13 of 8,192, whole
+#: processes, alternated; 4 slices of 25,000 touched 20 % more fresh memory). Every DUT is
+#: computed independently, so the results are the same as from one pass.
 PARALLEL_DUTS = 20_000
-CHUNK_DUTS = 8_192
+CHUNK_DUTS = 12_500
 
 
 def _fit_checked(readings, confidence, level, robust):
     m = readings.n_duts
     if robust or WORKERS < 2 or m < PARALLEL_DUTS:
         return _fit_checked_one(readings, confidence, level, robust)
-    cuts = list(range(0, m, CHUNK_DUTS)) + [m]
+    cuts = _cuts(m, CHUNK_DUTS, WORKERS)
     slices = [readings.dut_range(a, b) for a, b in zip(cuts[:-1], cuts[1:])]
     parts = map_parallel(lambda r: _fit_checked_one(r, confidence, level, robust), slices)
     return Fits.concat(parts).replace(settings={**parts[0].settings,
                                                 "source": readings.source})
+
+
+def _cuts(m: int, size: int, workers: int) -> list[int]:
+    """Slice boundaries of ``m`` DUTs: a multiple of ``workers`` slices of equal size (±1),
+    each close to ``size`` DUTs, so that the threads finish together."""
+    k = workers * max(1, round(m / (size * workers)))
+    return [m * j // k for j in range(k + 1)]
 
 
 def _fit_checked_one(readings, confidence, level, robust):

@@ -204,7 +204,7 @@ class TestTwoThreads:
         monkeypatch.setattr(an, "PARALLEL_DUTS", 10 ** 9)
         one = an.fit(r)
         monkeypatch.setattr(an, "PARALLEL_DUTS", 10)
-        monkeypatch.setattr(an, "CHUNK_DUTS", 64)  # five slices, as on a large batch
+        monkeypatch.setattr(an, "CHUNK_DUTS", 64)  # four slices, as on a large batch
         two = an.fit(r)
         assert one.duts == two.duts and one.error == two.error
         for name in ("vth", "u_vth", "rth", "u_rth", "cov_vr", "chi2", "p_value", "isc"):
@@ -236,3 +236,19 @@ def test_add_flags_appends_and_keeps_tuples_shared(given):
     assert [tuple(f) for f in out.flags] == [tuple(o) + tuple(n)
                                              for o, n in zip(fits.flags, new)]
     assert len({id(f) for f in out.flags}) == len({tuple(f) for f in out.flags})
+
+
+@pytest.mark.parametrize("m,size,workers", [(100_000, 12_500, 2), (125_000, 12_500, 2),
+                                            (20_000, 12_500, 2), (300, 64, 2), (7, 64, 2),
+                                            (1_000, 100, 1)])
+def test_slices_are_equal_and_a_multiple_of_the_threads(m, size, workers):
+    from sagfit.analysis import _cuts
+
+    cuts = _cuts(m, size, workers)
+    widths = np.diff(cuts)
+    assert cuts[0] == 0 and cuts[-1] == m and (widths >= 0).all()
+    assert (len(cuts) - 1) % workers == 0 and widths.max() - widths.min() <= 1
+    if m >= size * workers:  # slices close to the size asked for
+        assert 2 / 3 * size <= widths.mean() <= 3 / 2 * size
+    else:  # one slice per thread
+        assert len(cuts) - 1 == workers
