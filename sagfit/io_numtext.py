@@ -53,6 +53,17 @@ def _patterns() -> np.ndarray:
 
 
 @lru_cache(maxsize=1)
+def _digit_masks():
+    """For keep = 0…9: OR masks of the source words 0, 1 and 2 (digits 0–3, 4–7, 8–9)
+    that turn the digits after digit ``keep`` into PAD."""
+    masks = np.zeros((3, 10), dtype="<u4")
+    for keep in range(10):
+        for digit in range(keep + 1, 10):
+            masks[digit // 4, keep] |= PAD << (8 * (digit % 4))
+    return masks[0], masks[1], masks[2]
+
+
+@lru_cache(maxsize=1)
 def _tables():
     """Lookup tables as little-endian words: the digit characters of 0–9999 (4 bytes) and
     of 0–99 (2 bytes), the exponent words (bytes 12–19 of the source row) for exponents
@@ -123,29 +134,31 @@ def _g10_chunk(x: np.ndarray) -> np.ndarray:
     g2 = rest - g1 * 100
     last = np.maximum(9 - (tz2[g2] + (g2 == 0) * (tz4[g1] + (g1 == 0) * tz4[g0])), 0)
     fixed = (e >= -4) & (e < 10)
+    # trailing zeros of the mantissa, and a '.' with nothing after it, become padding:
+    # digit k is kept for k ≤ keep; OR-ing a word with a mask of 0xFF bytes pads the rest
+    keep = np.where(fixed & (e >= 0), np.maximum(last, e), last)
+    bare_dot = np.where(fixed, (e >= 0) & (keep <= e), keep == 0)
+    w0, w1, w2 = _digit_masks()
     sign = np.where(np.signbit(x), ord("-"), PAD).astype("<u4")
     src = np.empty((n, 5), dtype="<u4")
-    src[:, 0] = t4[g0]
-    src[:, 1] = t4[g1]
-    src[:, 2] = t2[g2] | (ord(".") << 16) | (sign << 24)
+    src[:, 0] = t4[g0] | w0[keep]
+    src[:, 1] = t4[g1] | w1[keep]
+    src[:, 2] = (t2[g2] | w2[keep] | (ord(".") << 16) | (sign << 24)
+                 | (bare_dot.astype("<u4") * np.uint32(PAD << 16)))
     src[:, 3] = exp_lo[e + 400]
     src[:, 4] = exp_hi[e + 400]
     src = src.view(np.uint8)  # (n, 20)
-    # trailing zeros of the mantissa, and a '.' with nothing after it, become padding
-    keep = np.where(fixed & (e >= 0), np.maximum(last, e), last)
-    src[:, :10][np.arange(10)[None, :] > keep[:, None]] = PAD
-    src[:, _S_DOT][np.where(fixed, (e >= 0) & (keep <= e), keep == 0)] = PAD
 
     form = np.where(fixed, e + 4, 14)
     pats = _patterns()
     counts = np.bincount(form, minlength=_FORMS)
-    if counts.max() == n:
-        out = src[:, pats[int(np.argmax(counts))]]
-    else:
-        out = np.empty((n, WIDTH), dtype=np.uint8)
+    top = int(np.argmax(counts))
+    out = src[:, pats[top]]  # every row in the commonest form, then the others redone
+    if counts[top] < n:
         for f in np.flatnonzero(counts):
-            rows = np.flatnonzero(form == f)
-            out[rows] = src[rows][:, pats[f]]
+            if f != top:
+                rows = np.flatnonzero(form == f)
+                out[rows] = src[rows][:, pats[f]]
     if not finite.all():
         out[~finite] = PAD
     for i in np.flatnonzero(odd):  # rare: Python's own formatter, exact by definition
