@@ -302,7 +302,6 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
                                     column=h.strip())
         roles[role] = ColumnRole(role, scale, h.strip(), col)
     meta["ignored_columns"] = ignored
-    meta["sha256"] = sha256.result()
     meta["delimiter"] = delim
     meta["encoding"] = enc
     present = [r for r in ("load", "voltage", "current") if r in roles]
@@ -415,6 +414,7 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         meta["temperature_C"] = numeric("temperature")
     columns = {r: roles[r].header for r in roles}
     columns["load_tolerance_pct"] = columns.get("load_tolerance", "load_tolerance_pct")
+    meta["sha256"] = sha256.result()  # hashed beside the parse
     return Readings.from_arrays(
         voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
         load_tolerance=load_tolerance, source=name, line=lines_of_rows, columns=columns,
