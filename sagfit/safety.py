@@ -34,9 +34,9 @@ def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
     def mx(a):
         if a is None:
             return np.nan
-        a = np.asarray(a, float)
-        a = a[np.isfinite(a)]
-        return float(np.max(np.abs(a))) if a.size else np.nan
+        a = np.abs(np.asarray(a, float))
+        top = float(np.max(a, where=np.isfinite(a), initial=-np.inf)) if a.size else -np.inf
+        return top if top > -np.inf else np.nan
 
     v = np.nanmax([mx(vth), mx(voltages)]) if (vth is not None or voltages is not None) else np.nan
     if v > HAZARDOUS_V:
