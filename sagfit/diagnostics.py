@@ -110,10 +110,10 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
         s22 = _groupsum(g, w * p2 * p2, m)
         g1 = _groupsum(g, wt * dy, m) / s2
         g2 = _groupsum(g, w * p2 * dy, m) / s22
-        line_res = dy - g1[g] * t
+        line_res = dy - _spread(g, g1, m) * t
         chi2_line = _groupsum(g, w * line_res * line_res, m)
         delta = g2 * g2 * s22
-        quad_res = line_res - g2[g] * p2
+        quad_res = line_res - _spread(g, g2, m) * p2
         chi2_quad = _groupsum(g, w * quad_res * quad_res, m)
         # back to powers of x: y = ybar + (g1 − A·g2)·t + g2·(t² − B)
         c = g2 / h ** 2
@@ -441,7 +441,7 @@ def _knee(R: _Rows, level):
     source = _SOURCES[tested.astype(np.intp)]
     refine = tested & (p < KNEE_SCREEN_P)
     # York refit of the chosen split: each segment with its own slope in the weights
-    rows = refine[g]
+    rows = _spread(g, refine, m)
     if rows.any():
         gv = (2 * g[rows] + split_row[rows]).astype(np.int64)
         mv = 2 * m
@@ -583,7 +583,7 @@ def _lack_of_fit(R: _Rows):
     if not (R.ok & (levels > 2) & (R.n > levels)).any():
         return out  # no DUT repeats a load: no pure-error estimate, nothing to test
     w, r = R.w, R.res
-    inb = levels[R.g] > 0
+    inb = _spread(R.g, levels, m) > 0
     c = cell[inb]
     sw = np.bincount(c, weights=w[inb], minlength=offset)
     with np.errstate(divide="ignore", invalid="ignore"):

@@ -126,14 +126,11 @@ def _row_sums(w2):
 
 
 def _spread(g, v, m):
-    """``v[g]``: each group's value on each of its rows. For a sorted ``g``, a repeat over
-    the segment lengths (about three times faster than fancy indexing)."""
-    seg = _segments(g, m)
-    if seg.starts is None:
-        return np.asarray(v)[g]
-    if seg.full:
-        return np.repeat(v, seg.counts)
-    return np.repeat(np.asarray(v)[seg.present], seg.counts)
+    """``v[g]``: each group's value on each of its rows, by ``np.take``. It is about as fast
+    as a repeat over the segment lengths and faster than fancy indexing, and unlike
+    ``np.repeat`` it releases the GIL: with the fit's two threads, ``np.repeat`` ran one
+    thread at a time (measured: 1.0× on two threads against 1.8× for ``np.take``)."""
+    return np.take(np.asarray(v), g)
 
 
 def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
@@ -185,7 +182,7 @@ def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
             # drop the rows of converged DUTs once they are a tenth of the rows left:
             # copying six arrays for a few rows costs more than iterating over them (a
             # converged DUT's slope is no longer updated either way)
-            stale = done[gg]
+            stale = np.take(done, gg)
             if np.count_nonzero(stale) * 10 >= gg.size:
                 keep = ~stale
                 gg, xx, yy = gg[keep], xx[keep], yy[keep]
