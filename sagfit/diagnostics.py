@@ -313,6 +313,15 @@ def _curvature(R: _Rows, level):
     return out, test, run
 
 
+def _reduce_rows(ufunc, v: np.ndarray, dtype=None) -> np.ndarray:
+    """``ufunc.reduce(v, axis=1)`` for many short rows (5–20 readings): one vector
+    operation per column, several times faster than numpy's reduction along each row."""
+    out = v[:, 0].astype(dtype or v.dtype)  # a copy
+    for j in range(1, v.shape[1]):
+        ufunc(out, v[:, j], out=out)
+    return out
+
+
 def _cumsum_rows(v: np.ndarray) -> np.ndarray:
     """``np.cumsum(v, axis=1)`` for many short rows: one vector add per column is several
     times faster than numpy's per-row loop when rows hold only 5–20 readings."""
@@ -370,8 +379,8 @@ def _knee(R: _Rows, level):
     for duts, rows in _dense_blocks(R.n, eligible, 5):
         size = rows.shape[1]
         xr, yr = _take(R.x, rows), _take(R.y, rows)
-        xm = xr.mean(axis=1, keepdims=True)
-        ym = yr.mean(axis=1, keepdims=True)
+        xm = (_reduce_rows(np.add, xr) / size)[:, None]
+        ym = (_reduce_rows(np.add, yr) / size)[:, None]
         X = (xr - xm) / sx[duts, None]
         Y = (yr - ym) / sy[duts, None]
         # order along the source curve: by the angle atan2(I, V), i.e. by load conductance,
@@ -449,10 +458,10 @@ def _knee(R: _Rows, level):
         sxx, syy, sxy = sxx_k[rows], R.syy[rows], R.sxy[rows]
         b, _, conv = _york_kernel(gv, x, y, sxx, syy, sxy, mv, b0.reshape(-1))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            chi = york_state(gv, x, y, sxx, syy, sxy, mv, b)["chi2"].reshape(m, 2).sum(axis=1)
+            chi = _reduce_rows(np.add, york_state(gv, x, y, sxx, syy, sxy, mv, b)["chi2"].reshape(m, 2))
             delta_y = R.chi2 - chi
         # keep the search's metric where York did not settle on a better fit than the line
-        good = (refine & conv.reshape(m, 2).all(axis=1) & np.isfinite(chi)
+        good = (refine & _reduce_rows(np.logical_and, conv.reshape(m, 2)) & np.isfinite(chi)
                 & (delta_y > -1e-9 * np.abs(R.chi2)))
         if good.any():
             st_y, p_y, kn_y = _knee_p(np.maximum(delta_y, 0.0), chi, R.n, R.stated, K, good)
@@ -500,8 +509,8 @@ def _pattern(R: _Rows, level):
     for duts, rows in _dense_blocks(R.n, R.ok, 3):
         order = np.argsort(_take(R.x, rows), axis=1, kind="stable")
         s = np.take_along_axis(_take(R.res, rows), order, 1) >= 0
-        runs = 1 + np.count_nonzero(s[:, 1:] != s[:, :-1], axis=1)
-        npos = s.sum(axis=1)
+        runs = 1 + _reduce_rows(np.add, s[:, 1:] != s[:, :-1], np.int64)
+        npos = _reduce_rows(np.add, s, np.int64)
         nneg = rows.shape[1] - npos
         mean, _, z, p = runs_test(runs, npos, nneg)
         out["runs"][duts] = runs
@@ -522,12 +531,12 @@ def _drift(R: _Rows, level, has_time):
     for duts, rows in _dense_blocks(R.n, R.ok, 5):
         size = rows.shape[1]
         t = _take(R.time, rows)
-        timed = np.isfinite(t).all(axis=1) if has_time else np.zeros(duts.size, bool)
+        timed = _reduce_rows(np.logical_and, np.isfinite(t)) if has_time else np.zeros(duts.size, bool)
         t = np.where(timed[:, None], t, np.arange(size)[None, :])
         rt = _ranks(t)
         rr = _ranks(_take(R.res, rows))
         d = (rt - rr).astype(float)
-        rho = 1.0 - 6.0 * (d * d).sum(axis=1) / (size * (size * size - 1.0))
+        rho = 1.0 - 6.0 * _reduce_rows(np.add, d * d) / (size * (size * size - 1.0))
         with np.errstate(divide="ignore", invalid="ignore"):
             tt = rho * np.sqrt((size - 2.0) / np.maximum(1.0 - rho * rho, 1e-300))
         p = 2.0 * special.stdtr(size - 2.0, -np.abs(tt))
@@ -545,7 +554,7 @@ def _ranks(v: np.ndarray) -> np.ndarray:
     size = v.shape[1]
     ar = np.broadcast_to(np.arange(size), v.shape)
     ranks = np.array(ar)
-    unsorted = ~(v[:, 1:] > v[:, :-1]).all(axis=1)
+    unsorted = ~_reduce_rows(np.logical_and, v[:, 1:] > v[:, :-1])
     if unsorted.any():
         order = np.argsort(v[unsorted], axis=1, kind="stable")
         sub = np.empty_like(order)
@@ -571,10 +580,10 @@ def _lack_of_fit(R: _Rows):
         with np.errstate(invalid="ignore"):  # inf − inf: two open circuits, one level
             close = np.abs(hi_ - lo_) <= 1e-9 * np.abs(lo_)  # np.isclose(rtol=1e-9, atol=0)
         new = np.concatenate([np.ones((duts.size, 1), bool), ~close & (hi_ != lo_)], axis=1)
-        cid_sorted = np.cumsum(new, axis=1) - 1
+        cid_sorted = _cumsum_rows(new.astype(np.int64)) - 1
         cid = np.empty_like(cid_sorted)
         np.put_along_axis(cid, order, cid_sorted, 1)
-        levels[duts] = new.sum(axis=1)
+        levels[duts] = _reduce_rows(np.add, new, np.int64)
         cell[rows] = offset + np.arange(duts.size)[:, None] * size + cid
         offset += duts.size * size
     if offset == 0:

@@ -424,3 +424,19 @@ def test_tls_direction_is_the_principal_axis():
     np.testing.assert_allclose(q, vx ** 2 + vy ** 2)
     one_spot = D._tls(np.zeros(1), np.zeros(1), np.ones(1), np.zeros(1), np.ones(1), 5.0)
     assert one_spot[5][0] == 0.0
+
+
+@pytest.mark.parametrize("width", [1, 2, 5, 8, 13])
+def test_row_reductions_equal_numpys(width):
+    """The column-by-column row reductions of the checks equal numpy's along axis 1
+    (plumbing; sums of integers and booleans exactly, of floats to round-off)."""
+    from sagfit.diagnostics import _cumsum_rows, _reduce_rows
+
+    rng = np.random.default_rng(width)
+    v = rng.normal(size=(50, width))
+    b = v > 0
+    np.testing.assert_allclose(_reduce_rows(np.add, v), v.sum(axis=1), rtol=1e-13, atol=1e-13)
+    np.testing.assert_array_equal(_reduce_rows(np.add, b, np.int64), b.sum(axis=1))
+    np.testing.assert_array_equal(_reduce_rows(np.logical_and, b), b.all(axis=1))
+    np.testing.assert_array_equal(_reduce_rows(np.logical_or, b), b.any(axis=1))
+    np.testing.assert_array_equal(_cumsum_rows(b.astype(np.int64)), np.cumsum(b, axis=1))
