@@ -38,7 +38,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _groupsum, _segments, _spread, _york_kernel, york_state
+from .fit import _counts, _groupsum, _segments, _spread, _york_kernel, york_state
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -91,7 +91,7 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
     g = np.zeros(x.size, np.int64) if group is None else np.asarray(group, np.int64)
     if m is None:
         m = int(g.max()) + 1 if g.size else 0
-    n = np.bincount(g, minlength=m)
+    n = _counts(g, m)
     sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         xbar = _groupsum(g, w * x, m) / sw
@@ -254,7 +254,7 @@ class _Rows:
         self.m = m
         ok = fits.ok
         self.g = readings.group
-        self.n = np.bincount(self.g, minlength=m)
+        self.n = _counts(self.g, m)
         self.ok = ok & (self.n == fits.n)
         stated = self.ok & (fits.method != "ols")
         self.stated = stated

@@ -125,6 +125,17 @@ def _row_sums(w2):
     return w2[:, 0] + res
 
 
+def _counts(g, m):
+    """``np.bincount(g, minlength=m)`` (rows per group), from the cached segments when
+    ``g`` is sorted (bincount holds the GIL)."""
+    seg = _segments(g, m)
+    if seg.starts is None:
+        return np.bincount(g, minlength=m)
+    out = np.zeros(m, dtype=np.int64)
+    out[seg.present] = seg.counts
+    return out
+
+
 def _spread(g, v, m):
     """``v[g]``: each group's value on each of its rows, by ``np.take``. It is about as fast
     as a repeat over the segment lengths and faster than fancy indexing, and unlike
@@ -236,7 +247,7 @@ def york_line(x, y, sx, sy, r=None, *, group=None):
 
 def _line(g, x, y, sxx, syy, sxy, m):
     """Shared kernel: York/WLS/OLS sums for groups; variances are a priori."""
-    n = np.bincount(g, minlength=m)
+    n = _counts(g, m)
     # start from the y-weighted least-squares slope
     w0 = 1.0 / syy if np.all(syy > 0) else 1.0 / np.where(syy > 0, syy, sxx + 1e-300)
     sw0 = _groupsum(g, w0, m)
@@ -341,7 +352,7 @@ def coverage_factors(confidence: float, dof: np.ndarray, type_a: np.ndarray) -> 
 def _validate(readings: Readings, m: int):
     """Per-DUT reasons why a DUT cannot be fitted (vectorised; strings only for failures)."""
     g = readings.group
-    n = np.bincount(g, minlength=m)
+    n = _counts(g, m)
     errors: list[str | None] = [None] * m
     starts = np.concatenate(([0], np.cumsum(n)[:-1]))
     nonempty = n > 0

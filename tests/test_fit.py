@@ -497,4 +497,7 @@ class TestGroupSums:
         for g in (np.sort(rng.integers(0, m, 300)), np.repeat(np.arange(m), 4),
                   rng.integers(0, m, 300), np.zeros(0, np.int64)):
             np.testing.assert_array_equal(F._spread(g, v, m), v[g])
+            counts = F._counts(g, m)
+            np.testing.assert_array_equal(counts, np.bincount(g, minlength=m))
+            assert counts.dtype == np.bincount(g, minlength=m).dtype
             np.testing.assert_array_equal(F._spread(g, v > 0, m), (v > 0)[g])
