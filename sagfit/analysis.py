@@ -10,12 +10,11 @@ import dataclasses
 import math
 
 import numpy as np
-from scipy import special
 
 from ._parallel import WORKERS, gc_paused, map_parallel
 from .diagnostics import diagnose, knee_rows
 from .errors import InputError
-from .fit import fit_lines
+from .fit import chi2_upper, fit_lines
 from .formatting import format_value
 from .predict import prediction_fields
 from .readings import Readings
@@ -283,7 +282,7 @@ def _robust(readings: Readings, fits: Fits, confidence: float) -> Fits:
                            minlength=len(fits))
     chi2 = np.where(ok, chi2, np.nan)
     dof = np.maximum(fits.dof, 1)
-    p_value = np.where(stated, special.chdtrc(dof, chi2), np.nan)
+    p_value = np.where(stated, chi2_upper(dof, chi2), np.nan)
     # a fit without stated uncertainties stays Type A: keep its method, Student-t k and scale
     k = np.where(ols, fits.k, cur.k)
     method = np.where(ols, fits.method, cur.method)

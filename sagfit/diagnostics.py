@@ -38,7 +38,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _counts, _groupsum, _segments, _spread, _york_kernel, york_state
+from .fit import _counts, _groupsum, _segments, _spread, _york_kernel, chi2_upper, york_state
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -296,7 +296,7 @@ def _curvature(R: _Rows, level):
     delta = q["delta"]
     chi2q = np.maximum(R.chi2 - delta, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        p_q = _on(R.stated & run, special.chdtrc, np.maximum(nu, 1), chi2q)
+        p_q = _on(R.stated & run, chi2_upper, np.maximum(nu, 1), chi2q)
         known = R.stated & (p_q >= CONSISTENT_P)
         F = delta / (chi2q / np.maximum(nu, 1))
         # χ²(1) upper tail = erfc(√(x/2)); the F tail only where the scatter is estimated
@@ -492,7 +492,7 @@ def _knee_p(delta, chi_br, n, stated, splits, mask=None):
     # the two-segment model contains the line, so Δχ² < 0 is round-off (exact data)
     delta = np.maximum(delta, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        p_br = _on(mask & stated, special.chdtrc, nu, chi_br)
+        p_br = _on(mask & stated, chi2_upper, nu, chi_br)
         known = stated & (p_br >= CONSISTENT_P)
         F = (delta / 2.0) / (chi_br / nu)
         # χ²(2) upper tail = exp(−x/2); the F tail only where the scatter is estimated
