@@ -84,7 +84,7 @@ def _fmt_num(x, unit="", digits=4) -> str:
 # ---------------------------------------------------------------------------- entry
 def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
                  figures: str = "flagged", inputs: Sequence = (), *,
-                 now: _dt.datetime | None = None, fill_results: bool = False) -> Path:
+                 now: _dt.datetime | None = None) -> Path:
     """Write ``report.html``, one PNG per figure, ``results.json`` and ``results.csv``.
 
     Parameters
@@ -94,10 +94,8 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
     fits, readings
         The fit and the readings it came from.
     doc : mapping
-        The ``sagfit fit --json`` document (written as results.json).
-    fill_results : bool
-        Write ``fits.to_dicts()`` as the document's results instead of ``doc["results"]``
-        (in pieces for a large batch; see :func:`sagfit.outputs.document_pieces`).
+        The ``sagfit fit --json`` document, written as results.json with the results of
+        ``fits`` (in pieces for a large batch; see :func:`sagfit.outputs.document_pieces`).
     settings : mapping
         The fit settings (``instruments`` for the traceability list).
     figures : {"flagged", "all", "none"}
@@ -121,10 +119,8 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
                       png_sink=written.append)
     for name, data in written:
         atomic_write(root / name, data, inputs=inputs, within=root, option="--report")
-    # indented for people; compact for big batches (the C encoder is ~10x faster), the
-    # same rule and the same text as `sagfit fit --json`
-    atomic_write(root / "results.json",
-                 document_pieces(doc, fits if fill_results else None),
+    # the same text as `sagfit fit --json`
+    atomic_write(root / "results.json", document_pieces(doc, fits),
                  inputs=inputs, within=root, option="--report")
     from . import io_csv
 

@@ -83,7 +83,7 @@ def fit_command(
                 from ..report import write_report
 
                 write_report(report, fits, readings, doc, settings, figures=figures,
-                             inputs=[file] + ([bench] if bench else []), fill_results=True)
+                             inputs=[file] + ([bench] if bench else []))
         if json_out:
             write_document(doc, fits)
         else:
