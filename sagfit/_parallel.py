@@ -1,7 +1,8 @@
 """Helpers for the large-batch paths (reading, the fit and checks, the results CSV).
 
 - Two threads: numpy releases the GIL inside its array operations, so on a two-core
-  machine two independent parts of a batch run side by side.
+  machine two independent parts of a batch run side by side (:func:`map_parallel`), or
+  one piece of work runs beside the caller (:class:`Background`).
 - The cyclic garbage collector held off (:func:`gc_paused`) while a batch is worked on.
 
 Pure stdlib; the core and the edges use it.

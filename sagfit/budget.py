@@ -155,18 +155,18 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
     load = readings.load[keep]
     method = np.asarray(fits.method).astype(str)
     type_a = method == "ols"
-    ta = _spread(g, type_a, m)
+    ta = _spread(g, type_a)
     sxx = np.where(ta, 0.0, ui ** 2)
     syy = np.where(ta, 1.0, uv ** 2)
     sxy = np.where(ta, 0.0, cv)
     b = -np.asarray(fits.rth, float)
-    bb = _spread(g, b, m)
+    bb = _spread(g, b)
     st = york_state(g, x, y, sxx, syy, sxy, m, b)
     w, sw, ua, q, xbar_adj = st["weights"], st["sw"], st["ua"], st["q"], st["xbar_adj"]
     a_chk, var_a, var_b = st["a"], st["var_a"], st["var_b"]
     with np.errstate(divide="ignore", invalid="ignore"):
-        cb_y = w * ua / _spread(g, q, m)
-        ca_y = w / _spread(g, sw, m) - _spread(g, xbar_adj, m) * cb_y
+        cb_y = w * ua / _spread(g, q)
+        ca_y = w / _spread(g, sw) - _spread(g, xbar_adj) * cb_y
     # the rows must reproduce the reported line, or the budget would describe another fit
     with np.errstate(invalid="ignore"):
         tol = 1e-6 * np.sqrt(var_a * np.where(type_a, fits.scale, 1.0)) + 1e-12 * np.abs(fits.vth)

@@ -95,25 +95,25 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
     sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         xbar = _groupsum(g, w * x, m) / sw
-        dx = x - _spread(g, xbar, m)
+        dx = x - _spread(g, xbar)
         h = np.sqrt(_groupsum(g, w * dx * dx, m) / sw)
-        t = dx / _spread(g, h, m)
+        t = dx / _spread(g, h)
         ybar = _groupsum(g, w * y, m) / sw
-        dy = y - _spread(g, ybar, m)
+        dy = y - _spread(g, ybar)
         wt = w * t
         wt2 = wt * t
         s2 = _groupsum(g, wt2, m)
         s3 = _groupsum(g, wt2 * t, m)
         A = s3 / s2
         B = s2 / sw
-        p2 = t * t - _spread(g, A, m) * t - _spread(g, B, m)
+        p2 = t * t - _spread(g, A) * t - _spread(g, B)
         s22 = _groupsum(g, w * p2 * p2, m)
         g1 = _groupsum(g, wt * dy, m) / s2
         g2 = _groupsum(g, w * p2 * dy, m) / s22
-        line_res = dy - _spread(g, g1, m) * t
+        line_res = dy - _spread(g, g1) * t
         chi2_line = _groupsum(g, w * line_res * line_res, m)
         delta = g2 * g2 * s22
-        quad_res = line_res - _spread(g, g2, m) * p2
+        quad_res = line_res - _spread(g, g2) * p2
         chi2_quad = _groupsum(g, w * quad_res * quad_res, m)
         # back to powers of x: y = ybar + (g1 − A·g2)·t + g2·(t² − B)
         c = g2 / h ** 2
@@ -260,7 +260,7 @@ class _Rows:
         self.stated = stated
         self.ols = self.ok & ~stated
         g = self.g
-        st = _spread(g, stated, m)
+        st = _spread(g, stated)
         self.x = readings.current
         self.y = readings.voltage
         self.sxx = np.where(st, readings.u_current ** 2, 0.0)
@@ -269,13 +269,13 @@ class _Rows:
         b = -np.where(self.ok, fits.rth, 0.0)
         a = np.where(self.ok, fits.vth, 0.0)
         self.b, self.a = b, a
-        bb = _spread(g, b, m)
-        ok_g = _spread(g, self.ok, m)
+        bb = _spread(g, b)
+        ok_g = _spread(g, self.ok)
         with np.errstate(divide="ignore", invalid="ignore"):
             self.w = np.where(ok_g, 1.0 / (self.syy + bb * bb * self.sxx
                                            - 2.0 * bb * self.sxy), 0.0)
         self.w = np.where(np.isfinite(self.w), self.w, 0.0)
-        self.res = np.where(ok_g, self.y - _spread(g, a, m) - bb * self.x, 0.0)
+        self.res = np.where(ok_g, self.y - _spread(g, a) - bb * self.x, 0.0)
         self.z = self.res * np.sqrt(self.w)
         self.chi2 = np.where(self.ok, fits.chi2, _NAN)
         self.line = readings.line
@@ -346,13 +346,8 @@ def _knee(R: _Rows, level):
     width = _segments(g, m).width
     if width > 1:  # every DUT has the same count: column by column, no segment loop
         x2, y2 = R.x.reshape(m, width), R.y.reshape(m, width)
-        xmin, xmax = x2[:, 0].copy(), x2[:, 0].copy()
-        ymin, ymax = y2[:, 0].copy(), y2[:, 0].copy()
-        for j in range(1, width):
-            np.minimum(xmin, x2[:, j], out=xmin)
-            np.maximum(xmax, x2[:, j], out=xmax)
-            np.minimum(ymin, y2[:, j], out=ymin)
-            np.maximum(ymax, y2[:, j], out=ymax)
+        xmin, xmax = _reduce_rows(np.minimum, x2), _reduce_rows(np.maximum, x2)
+        ymin, ymax = _reduce_rows(np.minimum, y2), _reduce_rows(np.maximum, y2)
     else:
         xmin, xmax = np.full(m, np.inf), np.full(m, -np.inf)
         ymin, ymax = np.full(m, np.inf), np.full(m, -np.inf)
@@ -369,7 +364,7 @@ def _knee(R: _Rows, level):
     sy = np.where(sy > 0, sy, 1e-12 * ry)
     floor = 1e-6 * rx * sy / ry
     sx = np.sqrt(np.maximum(_groupsum(g, R.sxx, m) / cnt, floor ** 2))
-    sxx_k = np.maximum(R.sxx, _spread(g, floor, m) ** 2)
+    sxx_k = np.maximum(R.sxx, _spread(g, floor) ** 2)
 
     split_row = np.zeros(g.size, np.int8)
     tested = np.zeros(m, bool)
@@ -450,7 +445,7 @@ def _knee(R: _Rows, level):
     source = _SOURCES[tested.astype(np.intp)]
     refine = tested & (p < KNEE_SCREEN_P)
     # York refit of the chosen split: each segment with its own slope in the weights
-    rows = _spread(g, refine, m)
+    rows = _spread(g, refine)
     if rows.any():
         gv = (2 * g[rows] + split_row[rows]).astype(np.int64)
         mv = 2 * m
@@ -458,7 +453,8 @@ def _knee(R: _Rows, level):
         sxx, syy, sxy = sxx_k[rows], R.syy[rows], R.sxy[rows]
         b, _, conv = _york_kernel(gv, x, y, sxx, syy, sxy, mv, b0.reshape(-1))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            chi = _reduce_rows(np.add, york_state(gv, x, y, sxx, syy, sxy, mv, b)["chi2"].reshape(m, 2))
+            seg_chi2 = york_state(gv, x, y, sxx, syy, sxy, mv, b)["chi2"].reshape(m, 2)
+            chi = _reduce_rows(np.add, seg_chi2)
             delta_y = R.chi2 - chi
         # keep the search's metric where York did not settle on a better fit than the line
         good = (refine & _reduce_rows(np.logical_and, conv.reshape(m, 2)) & np.isfinite(chi)
@@ -531,7 +527,8 @@ def _drift(R: _Rows, level, has_time):
     for duts, rows in _dense_blocks(R.n, R.ok, 5):
         size = rows.shape[1]
         t = _take(R.time, rows)
-        timed = _reduce_rows(np.logical_and, np.isfinite(t)) if has_time else np.zeros(duts.size, bool)
+        timed = (_reduce_rows(np.logical_and, np.isfinite(t)) if has_time
+                 else np.zeros(duts.size, bool))
         t = np.where(timed[:, None], t, np.arange(size)[None, :])
         rt = _ranks(t)
         rr = _ranks(_take(R.res, rows))
@@ -592,7 +589,7 @@ def _lack_of_fit(R: _Rows):
     if not (R.ok & (levels > 2) & (R.n > levels)).any():
         return out  # no DUT repeats a load: no pure-error estimate, nothing to test
     w, r = R.w, R.res
-    inb = _spread(R.g, levels, m) > 0
+    inb = _spread(R.g, levels) > 0
     c = cell[inb]
     sw = np.bincount(c, weights=w[inb], minlength=offset)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -619,20 +616,20 @@ def _outliers(R: _Rows):
     sw = _groupsum(g, w, m)
     with np.errstate(divide="ignore", invalid="ignore"):
         xbar = _groupsum(g, w * R.x, m) / sw
-        dx = R.x - _spread(g, xbar, m)
+        dx = R.x - _spread(g, xbar)
         sxx = _groupsum(g, w * dx * dx, m)
-        h = w / _spread(g, sw, m) + w * dx * dx / _spread(g, sxx, m)
+        h = w / _spread(g, sw) + w * dx * dx / _spread(g, sxx)
         one_h = np.maximum(1.0 - h, 1e-12)
         nu = (R.n - 2).astype(float)
         z2 = R.z * R.z / one_h
         # deleted scale (Belsley et al. 1980, eq. 2.8); the floor matters only for a line
         # that is not the least-squares one (a robust refit), where it can go negative
-        chi2_g, nu_g = _spread(g, R.chi2, m), _spread(g, nu, m)
+        chi2_g, nu_g = _spread(g, R.chi2), _spread(g, nu)
         s2_del = np.maximum((chi2_g - z2) / (nu_g - 1.0), 1e-6 * chi2_g / nu_g)
-        s2 = np.where(_spread(g, R.stated, m), np.maximum(s2_del, 1.0), s2_del)
+        s2 = np.where(_spread(g, R.stated), np.maximum(s2_del, 1.0), s2_del)
         t = R.z / np.sqrt(one_h * s2)
     run_dut = R.ok & (R.n >= 4)
-    t = np.where(_spread(g, run_dut, m) & np.isfinite(t), t, 0.0)
+    t = np.where(_spread(g, run_dut) & np.isfinite(t), t, 0.0)
     at = np.abs(t)
     starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
     tmax = np.full(m, _NAN)

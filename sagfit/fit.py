@@ -136,7 +136,7 @@ def _counts(g, m):
     return out
 
 
-def _spread(g, v, m):
+def _spread(g, v):
     """``v[g]``: each group's value on each of its rows, by ``np.take``. It is about as fast
     as a repeat over the segment lengths and faster than fancy indexing, and unlike
     ``np.repeat`` it releases the GIL: with the fit's two threads, ``np.repeat`` ran one
@@ -150,9 +150,10 @@ def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
     York's step is a fixed-point iteration b ← f(b) that converges linearly; where two
     successive steps shrink by a steady ratio ρ (|ρ| < 0.5), the rest of the geometric
     series, d·ρ/(1 − ρ), is added at once (Aitken's Δ² extrapolation: A. C. Aitken, Proc.
-    R. Soc. Edinburgh 46, 289–305, 1926; citation from memory). The jump is never larger than the last step, and
-    a DUT converges only on a plain step below the tolerance, so the root is the one the
-    plain iteration finds; on bench sweeps it saves one or two of five or six steps.
+    R. Soc. Edinburgh 46, 289–305, 1926; citation from memory). The jump is never larger
+    than the last step, and a DUT converges only on a plain step below the tolerance, so
+    the root is the one the plain iteration finds; on bench sweeps it saves one or two of
+    five or six steps.
     """
     b = b0.astype(np.float64).copy()
     iters = np.zeros(m, dtype=np.int64)
@@ -204,13 +205,13 @@ def _york_kernel(g, x, y, sxx, syy, sxy, m, b0):
 def _york_step(g, x, y, sxx, syy, sxy, m, b):
     """Steps 1–3 of York et al. (2004) at the slope ``b``: weights W, ΣW, the weighted
     means X̄, Ȳ, the deviations U, V and York's β (variance form)."""
-    bb = _spread(g, b, m)
+    bb = _spread(g, b)
     w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
     sw = _groupsum(g, w, m)
     xbar = _groupsum(g, w * x, m) / sw
     ybar = _groupsum(g, w * y, m) / sw
-    u = x - _spread(g, xbar, m)
-    v = y - _spread(g, ybar, m)
+    u = x - _spread(g, xbar)
+    v = y - _spread(g, ybar)
     beta = w * (u * syy + bb * v * sxx - (bb * u + v) * sxy)
     return w, sw, xbar, ybar, u, v, beta
 
@@ -254,8 +255,8 @@ def _line(g, x, y, sxx, syy, sxy, m):
     with np.errstate(divide="ignore", invalid="ignore"):
         xm = _groupsum(g, w0 * x, m) / sw0
         ym = _groupsum(g, w0 * y, m) / sw0
-        du = x - _spread(g, xm, m)
-        b0 = _groupsum(g, w0 * du * (y - _spread(g, ym, m)), m) / _groupsum(g, w0 * du * du, m)
+        du = x - _spread(g, xm)
+        b0 = _groupsum(g, w0 * du * (y - _spread(g, ym)), m) / _groupsum(g, w0 * du * du, m)
     b0 = np.where(np.isfinite(b0), b0, 0.0)
     b, iters, conv = _york_kernel(g, x, y, sxx, syy, sxy, m, b0)
     xerr_rows = (sxx > 0) | (sxy != 0)
@@ -264,14 +265,14 @@ def _line(g, x, y, sxx, syy, sxy, m):
         # (seen on Amen's 2012 set); restart the errors-in-variables groups from the
         # unweighted slope as well and keep, per group, the root with the smaller χ².
         xg = _groupsum(g, xerr_rows, m) > 0
-        rows = _spread(g, xg, m)
+        rows = _spread(g, xg)
         g2, x2, y2 = g[rows], x[rows], y[rows]
-        n2 = np.maximum(np.bincount(g2, minlength=m), 1)
+        n2 = np.maximum(_counts(g2, m), 1)
         xm2 = _groupsum(g2, x2, m) / n2
         ym2 = _groupsum(g2, y2, m) / n2
-        d2 = x2 - _spread(g2, xm2, m)
+        d2 = x2 - _spread(g2, xm2)
         with np.errstate(divide="ignore", invalid="ignore"):
-            b1 = (_groupsum(g2, d2 * (y2 - _spread(g2, ym2, m)), m)
+            b1 = (_groupsum(g2, d2 * (y2 - _spread(g2, ym2)), m)
                   / _groupsum(g2, d2 * d2, m))
         b1 = np.where(np.isfinite(b1) & xg, b1, b)
         # Only where the slope has the sign of a strong error correlation can the effective
@@ -279,11 +280,11 @@ def _line(g, x, y, sxx, syy, sxy, m):
         # sweeps with I = V/R have r > 0 and a negative slope, so they skip this.
         with np.errstate(divide="ignore", invalid="ignore"):
             r_row = sxy / np.sqrt(sxx * syy)
-        risky_row = (np.abs(r_row) > 0.5) & (r_row * _spread(g, b, m) > 0)
+        risky_row = (np.abs(r_row) > 0.5) & (r_row * _spread(g, b) > 0)
         risky = _groupsum(g, risky_row, m) > 0
         again = xg & risky & (np.abs(b1 - b) > 1e-12 * np.maximum(np.abs(b), 1e-300))
         if again.any():
-            sel = _spread(g, again, m)
+            sel = _spread(g, again)
             b_alt, it_alt, conv_alt = _york_kernel(g[sel], x[sel], y[sel], sxx[sel], syy[sel],
                                                    sxy[sel], m, np.where(again, b1, b))
             s_main = _chi2_at(g, x, y, sxx, syy, sxy, m, b)
@@ -306,18 +307,18 @@ def york_state(g, x, y, sxx, syy, sxy, m, b) -> dict:
     (ΣW·u², so var_b = 1/q), and per-row ``weights``, ``beta``, ``ua`` (adjusted x about
     its weighted mean).
     """
-    bb = _spread(g, b, m)
+    bb = _spread(g, b)
     with np.errstate(divide="ignore", invalid="ignore"):
         w, sw, xbar, ybar, _, _, beta = _york_step(g, x, y, sxx, syy, sxy, m, b)
         a = ybar - b * xbar
-        xadj = _spread(g, xbar, m) + beta
+        xadj = _spread(g, xbar) + beta
         xbar_adj = _groupsum(g, w * xadj, m) / sw
-        ua = xadj - _spread(g, xbar_adj, m)
+        ua = xadj - _spread(g, xbar_adj)
         q = _groupsum(g, w * ua * ua, m)
         var_b = 1.0 / q
         var_a = 1.0 / sw + xbar_adj ** 2 * var_b
         cov_ab = -xbar_adj * var_b
-        res = y - bb * x - _spread(g, a, m)
+        res = y - bb * x - _spread(g, a)
         chi2 = _groupsum(g, w * res * res, m)
     return {"a": a, "b": b, "var_a": var_a, "var_b": var_b, "cov_ab": cov_ab, "chi2": chi2,
             "sw": sw, "xbar": xbar, "ybar": ybar, "xbar_adj": xbar_adj, "q": q,
@@ -326,12 +327,12 @@ def york_state(g, x, y, sxx, syy, sxy, m, b) -> dict:
 
 def _chi2_at(g, x, y, sxx, syy, sxy, m, b):
     """York's objective S(b) per group, with the intercept that minimises it."""
-    bb = _spread(g, b, m)
+    bb = _spread(g, b)
     with np.errstate(divide="ignore", invalid="ignore"):
         w = 1.0 / (syy + bb * bb * sxx - 2.0 * bb * sxy)
         sw = _groupsum(g, w, m)
         a = (_groupsum(g, w * y, m) - b * _groupsum(g, w * x, m)) / sw
-        res = y - bb * x - _spread(g, a, m)
+        res = y - bb * x - _spread(g, a)
         return _groupsum(g, w * res * res, m)
 
 
@@ -346,8 +347,8 @@ def chi2_upper(nu, x) -> np.ndarray:
 
     For integer ν from 1 to 40 (every bench sweep's degrees of freedom) by the finite sums
     of Abramowitz & Stegun, *Handbook of Mathematical Functions* (1964), 26.4.4 and 26.4.5:
-    for even ν, Q = e^(−x/2) Σ_{r<ν/2} (x/2)^r / r!; for odd ν,
-    Q = erfc(√(x/2)) + √(2/π) e^(−x/2) Σ_{r=1}^{(ν−1)/2} x^(r−½) / (1·3·…·(2r−1)).
+    for even ν, Q = e^(−x/2) Σ_{r<ν/2} (x/2)^r / r!; for odd ν, Q = erfc(√(x/2))
+    + √(2/π) e^(−x/2) Σ_{r=1}^{(ν−1)/2} x^(r−½) / (1·3·…·(2r−1)).
     Every term is positive, so the sums keep full relative precision; they take about a
     fifth of the time of scipy's incomplete gamma function on a batch. Anything else
     (fractional ν, non-finite or negative χ², very large χ²) goes to scipy.
@@ -357,13 +358,11 @@ def chi2_upper(nu, x) -> np.ndarray:
     with np.errstate(invalid="ignore"):
         easy = ((nu == np.floor(nu)) & (nu >= 1) & (nu <= _CHI2_NU_MAX)
                 & (x >= 0) & (x <= _CHI2_X_MAX))
-    if not easy.all():
-        out = np.asarray(special.chdtrc(nu, x), dtype=float)
-        if not easy.any():
-            return out
-    else:
-        out = np.empty(x.shape)
-    one = easy.all() and x.size and nu.min() == nu.max()  # a batch of equal sweeps
+    out = np.empty(x.shape)
+    hard = ~easy
+    if hard.any():  # only those (a batch's failed DUTs have a NaN χ²)
+        out[hard] = special.chdtrc(nu[hard], x[hard])
+    one = not hard.any() and x.size and nu.min() == nu.max()  # a batch of equal sweeps
     for k in ([int(nu.flat[0])] if one else np.unique(nu[easy]).astype(int).tolist()):
         sel = ... if one else easy & (nu == k)
         xs = x[sel]
@@ -411,7 +410,7 @@ def _validate(readings: Readings, m: int):
     i, ui, uv = readings.current, readings.u_current, readings.u_voltage
     stated_row = (uv > 0) | (ui > 0)
     stated = _groupsum(g, stated_row, m) > 0
-    zero_row = ~stated_row & _spread(g, stated, m)
+    zero_row = ~stated_row & _spread(g, stated)
     zero_in = _groupsum(g, zero_row, m) > 0
 
     def red(fn, a, empty):
@@ -498,7 +497,7 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
     g = g_all[keep]
     x = readings.current[keep]
     y = readings.voltage[keep]
-    st = _spread(g, stated, m)
+    st = _spread(g, stated)
     sxx = np.where(st, readings.u_current[keep] ** 2, 0.0)
     syy = np.where(st, readings.u_voltage[keep] ** 2, 1.0)
     sxy = np.where(st, readings.cov_iv[keep], 0.0)

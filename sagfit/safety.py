@@ -35,7 +35,7 @@ def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
         if a is None:
             return np.nan
         a = np.abs(np.asarray(a, float))
-        top = float(np.max(a, where=np.isfinite(a), initial=-np.inf)) if a.size else -np.inf
+        top = float(np.max(a, where=np.isfinite(a), initial=-np.inf))  # −inf: none finite
         return top if top > -np.inf else np.nan
 
     v = np.nanmax([mx(vth), mx(voltages)]) if (vth is not None or voltages is not None) else np.nan

@@ -496,11 +496,11 @@ class TestGroupSums:
         v = rng.normal(size=m)
         for g in (np.sort(rng.integers(0, m, 300)), np.repeat(np.arange(m), 4),
                   rng.integers(0, m, 300), np.zeros(0, np.int64)):
-            np.testing.assert_array_equal(F._spread(g, v, m), v[g])
+            np.testing.assert_array_equal(F._spread(g, v), v[g])
             counts = F._counts(g, m)
             np.testing.assert_array_equal(counts, np.bincount(g, minlength=m))
             assert counts.dtype == np.bincount(g, minlength=m).dtype
-            np.testing.assert_array_equal(F._spread(g, v > 0, m), (v > 0)[g])
+            np.testing.assert_array_equal(F._spread(g, v > 0), (v > 0)[g])
 
 
 @pytest.mark.reference("Abramowitz & Stegun, Handbook of Mathematical Functions (1964), "
