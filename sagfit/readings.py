@@ -31,6 +31,11 @@ __all__ = ["Readings", "Note"]
 
 
 @dataclass(frozen=True, slots=True)
+
+def _as_array(values, dtype, copy: bool) -> np.ndarray:
+    """A private copy when ``copy``, else a view where the dtype allows (numpy 1.26 and 2.x)."""
+    return np.array(values, dtype=dtype) if copy else np.asarray(values, dtype=dtype)
+
 class Note:
     """Something about the readings of one DUT worth a flag (not an error)."""
 
@@ -237,7 +242,7 @@ class Readings:
 
         given = {k: v for k, v in (("voltage", voltage), ("current", current), ("load", load))
                  if v is not None}
-        line_arr = None if line is None else np.array(line, dtype=np.int64, copy=copy or None)
+        line_arr = None if line is None else _as_array(line, np.int64, copy)
         if len(given) < 2:
             have = ", ".join(given) or "none"
             raise ReadingsFileError(
@@ -246,7 +251,7 @@ class Readings:
         arrays = {}
         n = None
         for k, v in given.items():
-            a = np.array(v, dtype=np.float64, copy=copy or None).ravel()  # private (see
+            a = _as_array(v, np.float64, copy).ravel()  # private (see
             # __post_init__), unless the caller hands it over
             if n is None:
                 n = a.size
@@ -293,7 +298,7 @@ class Readings:
 
         # ---- DUT grouping
         if group is not None:
-            g = np.array(group, dtype=np.int64, copy=copy or None).ravel()
+            g = _as_array(group, np.int64, copy).ravel()
             names = tuple(duts or ())
             if names and type(names[0]) is not str:
                 names = tuple(str(d) for d in names)

@@ -4,6 +4,7 @@ themselves are checked against references in test_fit.py)."""
 import csv
 import io
 import json
+import pathlib
 import subprocess
 import sys
 
@@ -56,7 +57,8 @@ class TestLargeBatchJson:
     (plumbing test: the standard library's encoder is the reference)."""
 
     @pytest.fixture(scope="class")
-    def batch(self, tmp_path_factory):
+    @staticmethod
+    def batch(tmp_path_factory):
         from sagfit.simulate import run_csv_text, simulate
         from sagfit.units import parse_accuracy
 
@@ -260,7 +262,7 @@ def test_python_dash_m():
 
 def test_console_script_error_has_no_traceback(tmp_path):
     """The installed `sagfit` script prints one error line for a missing file, exit 2."""
-    p = subprocess.run(["sagfit", "fit", str(tmp_path / "missing.csv")], capture_output=True,
+    p = subprocess.run([str(pathlib.Path(sys.executable).with_name("sagfit")), "fit", str(tmp_path / "missing.csv")], capture_output=True,
                        text=True, timeout=120)
     assert p.returncode == 2 and p.stderr.startswith("error:") and "Traceback" not in p.stderr
 

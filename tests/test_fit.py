@@ -33,7 +33,8 @@ class TestPearsonYork:
     """York's benchmark: values as reproduced in SOURCES.md §1 (bfsl, LinearFitXYerrors.jl)."""
 
     @pytest.fixture(scope="class")
-    def result(self):
+    @staticmethod
+    def result():
         x, wx, y, wy = load("pearson_york.csv", 5).T
         return york_line(x, y, 1 / np.sqrt(wx), 1 / np.sqrt(wy))
 
@@ -99,7 +100,8 @@ class TestNorris:
             "rss": 26.6173985294224}
 
     @pytest.fixture(scope="class")
-    def fitted(self):
+    @staticmethod
+    def fitted():
         x, y = load("nist_norris.csv", 4).T
         return fit_lines(Readings.from_arrays(current=x, voltage=y))[0]
 
