@@ -30,12 +30,12 @@ from .units import Accuracy
 __all__ = ["Readings", "Note"]
 
 
-@dataclass(frozen=True, slots=True)
-
 def _as_array(values, dtype, copy: bool) -> np.ndarray:
     """A private copy when ``copy``, else a view where the dtype allows (numpy 1.26 and 2.x)."""
     return np.array(values, dtype=dtype) if copy else np.asarray(values, dtype=dtype)
 
+
+@dataclass(frozen=True, slots=True)
 class Note:
     """Something about the readings of one DUT worth a flag (not an error)."""
 
