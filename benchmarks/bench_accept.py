@@ -44,8 +44,8 @@ rule = "guarded"
 def make_file(path: Path, duts: int, seed: int = 20261201) -> None:
     """Write an invented readings file with sagfit.simulate: ``duts`` 5 V regulator boards,
     eight loads from open circuit to 1.5 A, voltage and current both read back."""
-    from sagfit.simulate import run_csv_text, simulate
-    from sagfit.units import parse_accuracy
+    from sagfit.core.simulate import run_csv_text, simulate
+    from sagfit.core.units import parse_accuracy
 
     loads = [float("inf"), 50.0, 20.0, 10.0, 6.8, 4.7, 3.9, 3.3]
     run = simulate(5.02, 0.02, loads, duts=duts, seed=seed, vth_spread=0.004,

@@ -21,8 +21,8 @@ import numpy as np
 
 def make(duts: int, seed: int = 3):
     """Invented readings drawn with sagfit.simulate: 12.7 V packs, 22 mΩ, eight loads."""
-    from sagfit.simulate import simulate
-    from sagfit.units import parse_accuracy
+    from sagfit.core.simulate import simulate
+    from sagfit.core.units import parse_accuracy
 
     va = parse_accuracy("0.05%+2mV", "V")
     run = simulate(12.7, 0.022, [np.inf, 47, 22, 10, 4.7, 2.2, 1.0, 0.47], duts=duts, seed=seed,
@@ -32,8 +32,8 @@ def make(duts: int, seed: int = 3):
 
 
 def main() -> None:
-    from sagfit.diagnostics import diagnose
-    from sagfit.fit import fit_lines
+    from sagfit.core.diagnostics import diagnose
+    from sagfit.core.fit import fit_lines
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--duts", type=int, default=100_000)

@@ -35,8 +35,8 @@ SPEC = ("0.015", "0.002")  # voltmeter ±(0.015 % + 2 mV)
 
 
 def make(path: pathlib.Path, duts: int, seed: int = 1) -> None:
-    from sagfit.simulate import run_csv_text, simulate
-    from sagfit.units import parse_accuracy
+    from sagfit.core.simulate import run_csv_text, simulate
+    from sagfit.core.units import parse_accuracy
 
     run = simulate(12.6, 0.05, LOADS, duts=duts, seed=seed, vth_spread=0.01, rth_spread=0.2,
                    voltage_accuracy=parse_accuracy("0.015%+2mV", "V"), load_tolerance=1.0)

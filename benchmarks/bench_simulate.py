@@ -1,4 +1,4 @@
-"""Benchmark of ``sagfit.simulate.simulate`` against two peers timed in the same run.
+"""Benchmark of ``sagfit.core.simulate.simulate`` against two peers timed in the same run.
 
 Peers, alternating, repeated, in this process:
   (a) a per-DUT Python loop drawing the same model (what an ad-hoc generator does),
@@ -28,8 +28,8 @@ LOADS = [math.inf, 100, 47, 22, 10, 4.7, 2.2, 1.0]
 
 
 def run_sagfit(duts: int):
-    from sagfit.simulate import simulate
-    from sagfit.units import parse_accuracy
+    from sagfit.core.simulate import simulate
+    from sagfit.core.units import parse_accuracy
 
     return simulate(12.6, 0.05, LOADS, duts=duts, seed=1, vth_spread=0.01, rth_spread=0.2,
                     voltage_accuracy=parse_accuracy("0.015%+2mV", "V"), load_tolerance=1.0)

@@ -1,4 +1,4 @@
-"""Benchmark: ``sagfit.trend.analyse_trends`` against a per-DUT loop peer, same run.
+"""Benchmark: ``sagfit.core.trend.analyse_trends`` against a per-DUT loop peer, same run.
 
 Peer: for each DUT, ``numpy.polyfit(t, rth, 1, w=1/u, cov="unscaled")`` plus the same
 S² = max(1, χ²/ν) scaling — the obvious per-DUT way to get a weighted rate. Goal
@@ -24,7 +24,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from sagfit.trend import DAY, analyse_trends  # noqa: E402
+from sagfit.core.trend import DAY, analyse_trends  # noqa: E402
 
 
 def make(duts: int, per: int = 8, seed: int = 20261201):
@@ -77,9 +77,9 @@ def main() -> None:
           f"{min(theirs):.3f} s; ratio {ratio:.3f} (goal ≤ 0.2) -> "
           f"{'OK' if ratio <= 0.2 else 'MISSED'}; {int(tr.flagged.sum())} flagged")
 
-    from sagfit.fit import fit_lines
-    from sagfit.history import History
-    from sagfit.readings import Readings
+    from sagfit.core.fit import fit_lines
+    from sagfit.io.history import History
+    from sagfit.core.readings import Readings
 
     rng = np.random.default_rng(1)
     i = np.tile([0.0, 25.0, 50.0, 75.0], a.duts)

@@ -8,16 +8,16 @@
 <FitResult pack_a Vth=12.7396±0.0013 V Rth=21.53±0.15 mΩ york>
 """
 
-from .acceptance import accept
-from .analysis import fit
-from .errors import (FitError, HistoryError, InputError, OptionError, ReadingsFileError,
+from .core.acceptance import accept
+from .core.analysis import fit
+from .core.errors import (FitError, HistoryError, InputError, OptionError, ReadingsFileError,
                      SagfitError, SpecFileError)
-from .fit import york_line
-from .io_csv import read_readings
-from .io_spec import read_spec
-from .readings import Readings
-from .results import Estimate, FitResult, Fits, Flag
-from .units import Accuracy, parse_accuracy
+from .core.fit import york_line
+from .io.readings_csv import read_readings
+from .io.spec import read_spec
+from .core.readings import Readings
+from .core.results import Estimate, FitResult, Fits, Flag
+from .core.units import Accuracy, parse_accuracy
 
 __version__ = "0.1.0"
 

@@ -12,8 +12,8 @@ from __future__ import annotations
 import math
 import pathlib
 
-from sagfit.simulate import simulate
-from sagfit.units import parse_accuracy
+from sagfit.core.simulate import simulate
+from sagfit.core.units import parse_accuracy
 
 HERE = pathlib.Path(__file__).resolve().parent
 HEAD = ("# INVENTED DATA for sagfit demos: a field technician's monthly check of 12 V\n"

@@ -149,7 +149,7 @@ class TestOutputs:
         """Above outputs.JSON_BIG DUTs the decisions are encoded in pieces; the text must
         be json.dumps of the whole document (plumbing: the stdlib encoder is the
         reference)."""
-        import sagfit.outputs as outputs
+        import sagfit.io.outputs as outputs
 
         whole = cli(*BASE, "--json").out
         doc = json.loads(whole)
@@ -228,8 +228,8 @@ class TestOutputs:
         import numpy as np
         import pandas as pd
 
-        from sagfit.acceptance import Check, Spec, accept
-        from sagfit.report_accept import acceptance_csv, acceptance_table
+        from sagfit.core.acceptance import Check, Spec, accept
+        from sagfit.report.accept_report import acceptance_csv, acceptance_table
         from test_acceptance import make_fits
 
         fits = make_fits([5.0, 4.0, np.nan, 5.1], 0.005,

@@ -8,11 +8,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sagfit.acceptance import (ERROR, FAIL, INCONCLUSIVE, PASS, Acceptance, Check, Condition,
+from sagfit.core.acceptance import (ERROR, FAIL, INCONCLUSIVE, PASS, Acceptance, Check, Condition,
                                DecisionRule, Spec, accept, check_values,
                                conformance_probability, decide, terminal_voltage)
-from sagfit.errors import InputError
-from sagfit.results import Fits, Flag
+from sagfit.core.errors import InputError
+from sagfit.core.results import Fits, Flag
 
 JCGM106 = ("JCGM 106:2012, Evaluation of measurement data - The role of measurement "
            "uncertainty in conformity assessment, normal PDF conformance probability")
@@ -371,9 +371,9 @@ class TestExtrapolation:
     def test_operating_point_outside_measured_currents(self):
         """A terminal-voltage check at a current (or load) beyond the swept currents is
         marked as extrapolated; one inside the sweep is not; decisions are unchanged."""
-        from sagfit.analysis import fit
-        from sagfit.readings import Readings
-        from sagfit.units import Accuracy
+        from sagfit.core.analysis import fit
+        from sagfit.core.readings import Readings
+        from sagfit.core.units import Accuracy
 
         i = np.tile([0.0, 0.25, 0.5, 0.75, 1.0], 2)
         v = np.repeat([5.0, 5.01], 5) - 0.05 * i

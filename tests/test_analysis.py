@@ -15,11 +15,11 @@ import math
 import numpy as np
 import pytest
 
-from sagfit.analysis import fit
-from sagfit.errors import InputError
-from sagfit.io_csv import read_readings
-from sagfit.readings import Readings
-from sagfit.units import parse_accuracy
+from sagfit.core.analysis import fit
+from sagfit.core.errors import InputError
+from sagfit.io.readings_csv import read_readings
+from sagfit.core.readings import Readings
+from sagfit.core.units import parse_accuracy
 
 from conftest import SAMPLES
 
@@ -194,8 +194,8 @@ class TestTwoThreads:
         """A large batch is fitted and checked in slices, two threads at a time; every
         number, flag and diagnostic equals the one-pass result (plumbing: DUTs are
         independent)."""
-        import sagfit.analysis as an
-        from sagfit.simulate import simulate
+        import sagfit.core.analysis as an
+        from sagfit.core.simulate import simulate
 
         run = simulate(12.0, 0.05, [math.inf, 10, 4.7, 2.2, 1.0, 0.47, 0.33], duts=300,
                        seed=8, voltage_accuracy=VA, load_tolerance=1.0, vth_spread=0.01,
@@ -220,7 +220,7 @@ class TestTwoThreads:
 def test_add_flags_appends_and_keeps_tuples_shared(given):
     """Fits.add_flags appends each DUT's new flags (few or many DUTs given some) and DUTs
     with the same flags share one tuple (plumbing test against a plain loop)."""
-    from sagfit.results import Flag
+    from sagfit.core.results import Flag
 
     m = 40
     v = np.tile([12.0, 11.9, 11.8], m) + np.repeat(np.linspace(0, 0.1, m), 3)
@@ -242,7 +242,7 @@ def test_add_flags_appends_and_keeps_tuples_shared(given):
                                             (20_000, 12_500, 2), (300, 64, 2), (7, 64, 2),
                                             (1_000, 100, 1)])
 def test_slices_are_equal_and_a_multiple_of_the_threads(m, size, workers):
-    from sagfit.analysis import _cuts
+    from sagfit.core.analysis import _cuts
 
     cuts = _cuts(m, size, workers)
     widths = np.diff(cuts)

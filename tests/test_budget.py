@@ -8,9 +8,9 @@ import pathlib
 import numpy as np
 import pytest
 
-from sagfit.budget import budget_arrays, budgets
-from sagfit.fit import fit_lines, york_line
-from sagfit.readings import Readings
+from sagfit.core.budget import budget_arrays, budgets
+from sagfit.core.fit import fit_lines, york_line
+from sagfit.core.readings import Readings
 
 DATA = pathlib.Path(__file__).parent / "data"
 
@@ -58,7 +58,7 @@ def _pack(seed=3, n_duts=1, noise=1.0):
         rows_r += list(loads)
         rows_v += list(v)
         rows_d += [f"P{d:03d}"] * 6
-    from sagfit.units import parse_accuracy
+    from sagfit.core.units import parse_accuracy
 
     return Readings.from_arrays(voltage=rows_v, load=rows_r, dut=rows_d, load_tolerance=1.0,
                                 voltage_accuracy=parse_accuracy("0.015%+2mV", "V"))
@@ -176,7 +176,7 @@ class TestAgainstFiniteDifferences:
     def test_voltage_from_current_and_load(self):
         """V = I·R (current and load columns): the groups are current readings and
         resistors, and they add up to the fit's uncertainty."""
-        from sagfit.units import parse_accuracy
+        from sagfit.core.units import parse_accuracy
 
         cur = np.array([0.5, 1.0, 1.5, 2.0, 2.5])
         r = np.array([9.9, 4.9, 3.2, 2.4, 1.9])
@@ -269,7 +269,7 @@ class TestShapes:
         from hypothesis import given, settings
         from hypothesis import strategies as st
 
-        from sagfit.units import parse_accuracy
+        from sagfit.core.units import parse_accuracy
 
         @settings(max_examples=25, deadline=None)
         @given(st.lists(st.integers(3, 9), min_size=1, max_size=6), st.integers(0, 2 ** 31))

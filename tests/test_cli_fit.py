@@ -59,8 +59,8 @@ class TestLargeBatchJson:
     @pytest.fixture(scope="class")
     @staticmethod
     def batch(tmp_path_factory):
-        from sagfit.simulate import run_csv_text, simulate
-        from sagfit.units import parse_accuracy
+        from sagfit.core.simulate import run_csv_text, simulate
+        from sagfit.core.units import parse_accuracy
 
         run = simulate(12.6, 0.05, [float("inf"), 10, 4.7, 2.2, 1.0], duts=130, seed=4,
                        vth_spread=0.01, rth_spread=0.2,
@@ -70,7 +70,7 @@ class TestLargeBatchJson:
         return path
 
     def test_pieces_equal_one_dump(self, cli, monkeypatch, tmp_path, batch):
-        import sagfit.outputs as outputs
+        import sagfit.io.outputs as outputs
 
         args = ("fit", batch, "--voltage-accuracy", "0.015%+2mV", "--load-tolerance", "1%",
                 "--json")
@@ -89,8 +89,8 @@ class TestLargeBatchJson:
         assert (rep / "results.json").read_text() == pieced
 
     def test_a_failing_piece_leaves_no_file(self, monkeypatch, tmp_path):
-        import sagfit.outputs as outputs
-        from sagfit.outputs import OutputError
+        import sagfit.io.outputs as outputs
+        from sagfit.io.outputs import OutputError
 
         def pieces():
             yield "{"

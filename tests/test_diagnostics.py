@@ -13,10 +13,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import special
 
-from sagfit.diagnostics import CODES, diagnose, quadratic_fit, runs_test
-from sagfit.fit import fit_lines
-from sagfit.readings import Readings
-from sagfit.units import parse_accuracy
+from sagfit.core.diagnostics import CODES, diagnose, quadratic_fit, runs_test
+from sagfit.core.fit import fit_lines
+from sagfit.core.readings import Readings
+from sagfit.core.units import parse_accuracy
 
 DATA = pathlib.Path(__file__).parent / "data"
 VA = parse_accuracy("0.05%+2mV", "V")
@@ -389,8 +389,8 @@ class TestVectorisation:
 def test_exact_line_raises_no_numeric_warning():
     """Noise-free readings (Δχ² at round-off, possibly below zero) give p = 1 for the knee,
     without an overflow warning (regression: found by the hypothesis property test)."""
-    from sagfit.analysis import fit as full_fit
-    from sagfit.readings import Readings
+    from sagfit.core.analysis import fit as full_fit
+    from sagfit.core.readings import Readings
 
     vth, rth = 5627.0, 1.0
     i = np.concatenate(([0.0], np.array([0.9375, 0.95, 0.95 - 2e-16, 0.25, 0.01]) * vth / rth))
@@ -405,7 +405,7 @@ def test_tls_direction_is_the_principal_axis():
     zero vector."""
     import sys
 
-    D = sys.modules["sagfit.diagnostics"]
+    D = sys.modules["sagfit.core.diagnostics"]
     rng = np.random.default_rng(11)
     n = 20_000
     sx, sy = rng.normal(size=n), rng.normal(size=n)
@@ -430,7 +430,7 @@ def test_tls_direction_is_the_principal_axis():
 def test_row_reductions_equal_numpys(width):
     """The column-by-column row reductions of the checks equal numpy's along axis 1
     (plumbing; sums of integers and booleans exactly, of floats to round-off)."""
-    from sagfit.diagnostics import _cumsum_rows, _reduce_rows
+    from sagfit.core.diagnostics import _cumsum_rows, _reduce_rows
 
     rng = np.random.default_rng(width)
     v = rng.normal(size=(50, width))

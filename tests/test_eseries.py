@@ -9,8 +9,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sagfit import eseries
-from sagfit.errors import InputError
+from sagfit.core import eseries
+from sagfit.core.errors import InputError
 
 DATA = pathlib.Path(__file__).parent / "data" / "e_series.csv"
 IEC = "IEC 60063:2015, Preferred number series for resistors and capacitors, Tables 1-3"

@@ -9,9 +9,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import sagfit
-from sagfit.fit import fit_lines, york_line
-from sagfit.readings import Readings
-from sagfit.units import Accuracy
+from sagfit.core.fit import fit_lines, york_line
+from sagfit.core.readings import Readings
+from sagfit.core.units import Accuracy
 
 DATA = pathlib.Path(__file__).parent / "data"
 
@@ -326,7 +326,7 @@ def _simulate(n, seed, vth, rth, loads, uv, tol_pct, uniform_r=True):
     for rectangular resistor errors; Gaussian resistor errors, which sagfit.simulate does not
     draw, by hand."""
     if uniform_r:
-        from sagfit.simulate import simulate
+        from sagfit.core.simulate import simulate
 
         run = simulate(vth, rth, list(loads), duts=n, seed=seed, per_dut_loads=True,
                        voltage_accuracy=Accuracy(0.0, uv * math.sqrt(3)),
@@ -454,7 +454,7 @@ class TestGroupSums:
     def test_sorted_with_gaps_unsorted_and_empty(self, seed):
         import sys
 
-        F = sys.modules["sagfit.fit"]
+        F = sys.modules["sagfit.core.fit"]
         rng = np.random.default_rng(seed)
         m = 50
         g = np.sort(rng.integers(0, m, 400))  # some groups absent
@@ -479,7 +479,7 @@ class TestGroupSums:
         DUT's result must not depend on the other DUTs)."""
         import sys
 
-        F = sys.modules["sagfit.fit"]
+        F = sys.modules["sagfit.core.fit"]
         rng = np.random.default_rng(width)
         m = 300
         g = np.repeat(np.arange(m), width)
@@ -492,7 +492,7 @@ class TestGroupSums:
     def test_spread_equals_fancy_indexing(self, seed):
         import sys
 
-        F = sys.modules["sagfit.fit"]
+        F = sys.modules["sagfit.core.fit"]
         rng = np.random.default_rng(seed)
         m = 40
         v = rng.normal(size=m)
@@ -512,7 +512,7 @@ def test_chi2_upper_tail_equals_scipy():
     function to 1e-12 relative; other arguments are scipy's own result."""
     from scipy import special
 
-    from sagfit.fit import chi2_upper
+    from sagfit.core.fit import chi2_upper
 
     x = np.concatenate([np.linspace(0, 5, 101), np.geomspace(1e-9, 1400, 300)])
     for k in range(1, 41):

@@ -2,7 +2,7 @@
 
 import pytest
 
-from sagfit.formatting import format_estimate, format_interval, format_p, format_value, si_prefix
+from sagfit.core.formatting import format_estimate, format_interval, format_p, format_value, si_prefix
 
 
 @pytest.mark.reference("JCGM 100:2008 (GUM) 7.2.6: two significant digits for u, the estimate "

@@ -25,8 +25,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import sagfit
-from sagfit.readings import Readings
-from sagfit.units import Accuracy
+from sagfit.core.readings import Readings
+from sagfit.core.units import Accuracy
 
 from conftest import SAMPLES, digest
 
@@ -332,7 +332,7 @@ class TestOutputs:
 
     def test_sigint_leaves_no_partial_output(self, tmp_path):  # noqa: C901
         """Ctrl-C during a large fit leaves neither the output nor a temporary file."""
-        from sagfit.simulate import run_csv_text, simulate
+        from sagfit.core.simulate import run_csv_text, simulate
 
         run = simulate(12.6, 0.05, [math.inf, 10, 4.7, 2.2, 1.0, 0.47], duts=60_000, seed=3,
                        voltage_accuracy=Accuracy(0.015, 0.002), load_tolerance=1.0)
@@ -371,7 +371,7 @@ class TestOutputs:
                     "open,10,4.7,2.2,1", "--duts", "150000", "--voltage-accuracy",
                     "0.015%+2mV", "--out", str(out / "sim.csv")]
         else:
-            from sagfit.simulate import run_csv_text, simulate
+            from sagfit.core.simulate import run_csv_text, simulate
 
             run = simulate(5.02, 0.02, [math.inf, 50, 20, 10, 6.8, 4.7, 3.9, 3.3],
                            duts=40_000, seed=4, measure_current=True,
@@ -406,7 +406,7 @@ class TestOutputs:
         passes SQLite's integrity check, and nothing of the interrupted run is half-written."""
         import sqlite3
 
-        from sagfit.simulate import run_csv_text, simulate
+        from sagfit.core.simulate import run_csv_text, simulate
 
         db = tmp_path / "h.sqlite"
         small = tmp_path / "small.csv"

@@ -16,12 +16,12 @@ import textwrap
 import numpy as np
 import pytest
 
-from sagfit.errors import HistoryError, OptionError, ReadingsFileError
-from sagfit.fit import fit_lines
-from sagfit.history import (SCHEMA_VERSION, History, dut_group_labels, dut_test_times,
+from sagfit.core.errors import HistoryError, OptionError, ReadingsFileError
+from sagfit.core.fit import fit_lines
+from sagfit.io.history import (SCHEMA_VERSION, History, dut_group_labels, dut_test_times,
                             parse_date)
-from sagfit.io_csv import parse_table
-from sagfit.readings import Readings
+from sagfit.io.readings_csv import parse_table
+from sagfit.core.readings import Readings
 
 T0 = 1_775_520_000.0  # 2026-04-07 UTC
 
@@ -178,9 +178,9 @@ class TestRefusals:
 CHILD = textwrap.dedent("""
     import sys, time
     import numpy as np
-    from sagfit.history import History
-    from sagfit.readings import Readings
-    from sagfit.fit import fit_lines
+    from sagfit.io.history import History
+    from sagfit.core.readings import Readings
+    from sagfit.core.fit import fit_lines
 
     class Slow(History):
         def _before_commit(self):

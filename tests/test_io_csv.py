@@ -10,9 +10,9 @@ import math
 import numpy as np
 import pytest
 
-from sagfit.errors import ReadingsFileError
-from sagfit.io_csv import classify_header, read_readings
-from sagfit.units import Accuracy
+from sagfit.core.errors import ReadingsFileError
+from sagfit.io.readings_csv import classify_header, read_readings
+from sagfit.core.units import Accuracy
 
 from conftest import SAMPLES, digest
 
@@ -238,7 +238,7 @@ class TestLineScan:
 
     @pytest.mark.parametrize("slice_bytes", [1, 7, 64, 1 << 20])
     def test_same_readings_for_any_slice_size(self, tmp_path, monkeypatch, slice_bytes):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         p = write(tmp_path, self.TEXT)
         whole = read_readings(p)
@@ -250,7 +250,7 @@ class TestLineScan:
 
     @pytest.mark.parametrize("slice_bytes", [1, 5, 13, 1 << 20])
     def test_wrong_field_count_found_on_its_line(self, tmp_path, monkeypatch, slice_bytes):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         lines = self.TEXT.splitlines()
         lines[17] += ",extra"  # file line 18
@@ -308,7 +308,7 @@ class TestPlainTableFastPath:
     @pytest.mark.parametrize("case", sorted(CASES))
     @pytest.mark.parametrize("slice_bytes", [16, 64, 1 << 20])
     def test_same_as_full_scan(self, tmp_path, monkeypatch, case, slice_bytes):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         p = write(tmp_path, self.CASES[case])
         monkeypatch.setattr(io_csv, "_SCAN_BYTES", slice_bytes)
@@ -320,7 +320,7 @@ class TestPlainTableFastPath:
         np.testing.assert_array_equal(fast.voltage, full.voltage)
 
     def test_only_plain_tables_take_it(self):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         def count(text, ncols=3):
             arr = np.frombuffer(text.encode(), dtype=np.uint8)
@@ -339,7 +339,7 @@ class TestPlainTableFastPath:
     @pytest.mark.parametrize("field", [0, 1, 2])
     def test_field_spans(self, monkeypatch, slice_bytes, field):
         """The byte spans of a field on every line, as a plain split of each line gives."""
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         monkeypatch.setattr(io_csv, "_SCAN_BYTES", slice_bytes)
         for text in (self.BODY, self.BODY.rstrip("\n")):
@@ -381,7 +381,7 @@ class TestParseInPieces:
 
     @staticmethod
     def read_both(monkeypatch, path):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         monkeypatch.setattr(io_csv, "PARSE_BYTES", 1 << 30)
         whole = read_readings(path)
@@ -416,7 +416,7 @@ class TestParseInPieces:
 
     def test_pieces_are_cut_at_line_ends(self):
         import pandas as pd
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         body = self.CASES["plain"].split("\n", 1)[1].encode()
         kw = dict(sep=",", header=None, names=[0, 1, 2], usecols=[0, 1, 2], decimal=".",
@@ -433,7 +433,7 @@ class TestParseInPieces:
         np.testing.assert_array_equal(frame[2].to_numpy(), one[2].to_numpy())
 
     def test_a_bad_cell_is_still_found_on_its_line(self, tmp_path, monkeypatch):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         lines = self.CASES["plain"].splitlines()
         lines[30] = lines[30].rsplit(",", 1)[0] + ",12.x"  # file line 31
@@ -461,7 +461,7 @@ class TestIdsFromBytes:
         return "\n".join(lines) + "\n"
 
     def both(self, monkeypatch, path):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         seen = []
         real = io_csv._ids_from_spans
@@ -495,7 +495,7 @@ class TestIdsFromBytes:
         names = dict(zip(("U1", "U2", "U3"), ids))
         rows = [(names[d], ld, v) for d, ld, v in self.ROWS]
         path = write(tmp_path, self.table(rows))
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         real = io_csv._ids_from_spans
         seen = []
@@ -517,7 +517,7 @@ class TestIdsFromBytes:
         assert exc.value.line == 5
 
     def test_many_rows_across_comparison_blocks(self, tmp_path, monkeypatch):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         monkeypatch.setattr(io_csv, "_ID_ROWS", 7)  # runs of equal ids cut by the blocks
         rng = np.random.default_rng(3)
@@ -534,7 +534,7 @@ class TestIdWords:
 
     @staticmethod
     def spans(ids, tail=b""):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         body = b"".join(i + b",1\n" for i in ids) + tail
         arr = np.frombuffer(body, dtype=np.uint8)
@@ -558,7 +558,7 @@ class TestIdWords:
         assert [texts[c] for c in codes] == [i.decode() for i in ids]
 
     def test_the_last_id_at_the_very_end_of_the_data(self):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         body = b"1,AB\n2,ABCDEFGHIJ"  # the id column last, no final line end
         arr = np.frombuffer(body, dtype=np.uint8)
@@ -570,7 +570,7 @@ class TestIdWords:
         assert self.spans([b"U1", bad, b"U2"]) is None
 
     def test_many_rows_across_blocks_and_repeats(self, monkeypatch):
-        import sagfit.io_csv as io_csv
+        import sagfit.io.readings_csv as io_csv
 
         monkeypatch.setattr(io_csv, "_ID_ROWS", 5)
         rng = np.random.default_rng(7)
@@ -585,7 +585,7 @@ def test_ids_and_digest_in_a_worker_thread_read_the_same(tmp_path, monkeypatch, 
     """A large file reads its DUT ids and its SHA-256 beside the parse, in a worker thread
     (BACKGROUND_BYTES lowered here so that a small file takes that path); the readings and
     errors are the same as in one thread."""
-    import sagfit.io_csv as io_csv
+    import sagfit.io.readings_csv as io_csv
 
     names = dict(zip(("U1", "U2", "U3"), ids))
     rows = [(names[d], ld, v) for d, ld, v in TestIdsFromBytes.ROWS]

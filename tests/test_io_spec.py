@@ -8,8 +8,8 @@ import math
 
 import pytest
 
-from sagfit.errors import SpecFileError
-from sagfit.io_spec import parse_spec, read_spec
+from sagfit.core.errors import SpecFileError
+from sagfit.io.spec import parse_spec, read_spec
 
 MINIMAL = """
 [limits.vth]
@@ -178,8 +178,8 @@ class TestErrorsNameTheKey:
 def test_integer_too_large_for_a_float_is_a_clean_error(tmp_path, body):
     """A TOML integer beyond the float range is refused with a one-line error naming the
     key (not an internal error)."""
-    from sagfit.errors import SpecFileError
-    from sagfit.io_spec import read_spec
+    from sagfit.core.errors import SpecFileError
+    from sagfit.io.spec import read_spec
 
     p = tmp_path / "s.toml"
     p.write_text("[limits.rth]\nmax = \"40mohm\"\n" + body + "\n")

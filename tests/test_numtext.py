@@ -16,8 +16,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sagfit.io_csv import table_csv
-from sagfit.io_numtext import PAD, g10_matrix, join_rows, text_matrix
+from sagfit.io.readings_csv import table_csv
+from sagfit.io.numtext import PAD, g10_matrix, join_rows, text_matrix
 
 
 def _cells(mat):
@@ -83,7 +83,7 @@ class TestTextAndRows:
 def _old_table_csv(columns):
     """The row-wise writer sagfit used before (one '%'-format per row): the reference for
     the whole table."""
-    from sagfit.io_csv import _csv_text_cell, _csv_text_column
+    from sagfit.io.readings_csv import _csv_text_cell, _csv_text_column
 
     names = list(columns)
     parts, fmts = [], []

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from sagfit import Readings, fit
-from sagfit._parallel import Background, gc_paused, map_parallel, quick_gil_handover
+from sagfit.core._parallel import Background, gc_paused, map_parallel, quick_gil_handover
 
 
 @pytest.fixture

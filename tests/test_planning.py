@@ -7,13 +7,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from sagfit import eseries
-from sagfit.errors import InputError
-from sagfit.fit import fit_lines
-from sagfit.planning import plan
-from sagfit.safety import DEFERRAL
-from sagfit.simulate import simulate
-from sagfit.units import parse_accuracy
+from sagfit.core import eseries
+from sagfit.core.errors import InputError
+from sagfit.core.fit import fit_lines
+from sagfit.core.planning import plan
+from sagfit.core.safety import DEFERRAL
+from sagfit.core.simulate import simulate
+from sagfit.core.units import parse_accuracy
 
 VA = parse_accuracy("0.05%+2mV", "V")
 IA = parse_accuracy("0.2%+1mA", "A")

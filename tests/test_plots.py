@@ -9,12 +9,12 @@ import sys
 import numpy as np
 import pytest
 
-from sagfit import plots
-from sagfit.fit import fit_lines
-from sagfit.outputs import OutputError
-from sagfit.readings import Readings
-from sagfit.results import Flag
-from sagfit.units import parse_accuracy
+from sagfit.report import plots
+from sagfit.core.fit import fit_lines
+from sagfit.io.outputs import OutputError
+from sagfit.core.readings import Readings
+from sagfit.core.results import Flag
+from sagfit.core.units import parse_accuracy
 
 
 @pytest.fixture(scope="module")
@@ -94,7 +94,7 @@ class TestOutput:
 
     def test_importing_plots_does_not_import_matplotlib(self):
         """matplotlib is imported only when a figure is drawn."""
-        code = "import sys, sagfit.plots, sagfit.report; print('matplotlib' in sys.modules)"
+        code = "import sys, sagfit.report.plots, sagfit.report.fit_report; print('matplotlib' in sys.modules)"
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                              check=True, timeout=60).stdout.strip()
         assert out == "False"

@@ -8,10 +8,10 @@ import math
 import numpy as np
 import pytest
 
-from sagfit.analysis import fit
-from sagfit.errors import InputError
-from sagfit.predict import models_from_document, predict
-from sagfit.readings import Readings
+from sagfit.core.analysis import fit
+from sagfit.core.errors import InputError
+from sagfit.core.predict import models_from_document, predict
+from sagfit.core.readings import Readings
 
 from conftest import SAMPLES
 

@@ -11,10 +11,10 @@ from html.parser import HTMLParser
 import numpy as np
 import pytest
 
-from sagfit import report
-from sagfit.errors import ReadingsFileError
-from sagfit.formatting import format_estimate
-from sagfit.io_csv import read_readings
+from sagfit.report import fit_report as report
+from sagfit.core.errors import ReadingsFileError
+from sagfit.core.formatting import format_estimate
+from sagfit.io.readings_csv import read_readings
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 SAMPLES = ROOT / "sample_runs"
@@ -203,8 +203,8 @@ class TestSafety:
 
 class TestManyDuts:
     def _many(self, n, seed=0):
-        from sagfit.readings import Readings
-        from sagfit.units import parse_accuracy
+        from sagfit.core.readings import Readings
+        from sagfit.core.units import parse_accuracy
 
         rng = np.random.default_rng(seed)
         loads = np.array([np.inf, 10.0, 4.7, 2.2])
@@ -224,8 +224,8 @@ class TestManyDuts:
     def test_many_duts_table_is_capped_with_histograms(self, tmp_path, monkeypatch):
         """A file of many DUTs gets a capped summary table, histograms and a capped, stated
         number of per-DUT sections."""
-        from sagfit.analysis import fit
-        from sagfit.results import Flag
+        from sagfit.core.analysis import fit
+        from sagfit.core.results import Flag
 
         monkeypatch.setattr(report, "MAX_TABLE_ROWS", 50)
         monkeypatch.setattr(report, "MAX_DUT_SECTIONS", 2)
@@ -251,8 +251,8 @@ class TestManyDuts:
 
     def test_past_due_calibration_is_a_warning(self, tmp_path):
         """An instrument past its calibration date on the test date is a warning."""
-        from sagfit.analysis import fit
-        from sagfit.io_bench import Instrument
+        from sagfit.core.analysis import fit
+        from sagfit.io.bench import Instrument
 
         rd = self._many(3)
         fits = fit(rd)
@@ -266,8 +266,8 @@ class TestManyDuts:
 
     def test_temperature_column_is_summarised(self, tmp_path):
         """A temperature column is carried into the report as its range and median."""
-        from sagfit.analysis import fit
-        from sagfit.readings import Readings
+        from sagfit.core.analysis import fit
+        from sagfit.core.readings import Readings
 
         rd = self._many(2)
         meta = dict(rd.meta, temperature_C=np.array([21.0, 21.4, 22.0, 21.2] * 2))

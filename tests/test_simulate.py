@@ -7,10 +7,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sagfit.errors import InputError
-from sagfit.fit import fit_lines
-from sagfit.simulate import run_csv_text, simulate
-from sagfit.units import parse_accuracy
+from sagfit.core.errors import InputError
+from sagfit.core.fit import fit_lines
+from sagfit.core.simulate import run_csv_text, simulate
+from sagfit.core.units import parse_accuracy
 
 VA = parse_accuracy("0.05%+2mV", "V")
 IA = parse_accuracy("0.2%+1mA", "A")
@@ -313,7 +313,7 @@ class TestPerDutValues:
 
         import numpy as np
 
-        from sagfit.simulate import simulate
+        from sagfit.core.simulate import simulate
 
         run = simulate([12.7, 12.5], [0.02, 0.04], [math.inf, 10.0, 1.0], seed=3,
                        dut_names=["PK-A", "PK-B"])
@@ -328,8 +328,8 @@ class TestPerDutValues:
         """Per-DUT arrays of different lengths, or names that do not match, are refused."""
         import pytest
 
-        from sagfit.errors import InputError
-        from sagfit.simulate import simulate
+        from sagfit.core.errors import InputError
+        from sagfit.core.simulate import simulate
 
         with pytest.raises(InputError):
             simulate([1.0, 2.0], [0.1, 0.2, 0.3], [10.0])

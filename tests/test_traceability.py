@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import datetime as dt
 
-from sagfit.io_bench import Instrument
-from sagfit.traceability import (DUE_SOON_DAYS, calibration_warnings, date_of_test,
+from sagfit.io.bench import Instrument
+from sagfit.core.traceability import (DUE_SOON_DAYS, calibration_warnings, date_of_test,
                                  instrument_rows)
 
 D = dt.date
@@ -61,7 +61,7 @@ class TestRecord:
         """The record has the test date, its source, the rows and the warnings."""
         import json
 
-        from sagfit.traceability import traceability_record
+        from sagfit.core.traceability import traceability_record
 
         rec = traceability_record(TestCalibration.INST, {"date": "2026-11-03"})
         assert rec["test_date"] == "2026-11-03" and rec["test_date_source"] == "file"

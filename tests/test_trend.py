@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from sagfit.errors import InputError
-from sagfit.trend import DAY, Baseline, Threshold, analyse_trends, iso_date
+from sagfit.core.errors import InputError
+from sagfit.core.trend import DAY, Baseline, Threshold, analyse_trends, iso_date
 
 T0 = 1_775_520_000.0  # 2026-04-07 00:00 UTC
 

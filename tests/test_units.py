@@ -4,8 +4,8 @@ import math
 
 import pytest
 
-from sagfit.errors import InputError
-from sagfit.units import (parse_accuracy, parse_percent, parse_quantity, parse_resistance,
+from sagfit.core.errors import InputError
+from sagfit.core.units import (parse_accuracy, parse_percent, parse_quantity, parse_resistance,
                           unit_dimension)
 
 

@@ -66,7 +66,7 @@ def _one_line(text: str) -> str:
 
 def main(argv: list[str] | None = None) -> None:
     """Console-script entry point."""
-    from ..errors import SagfitError
+    from ..core.errors import SagfitError
 
     try:
         code = app(args=argv, prog_name="sagfit", standalone_mode=False)

@@ -44,10 +44,10 @@ def accept_command(
     """Decide every DUT against the spec's limits, taking the measurement uncertainty
     into account (JCGM 106:2012, ILAC-G8:09/2019)."""
     with guarded(file):
-        from ..acceptance import RULES, accept
-        from ..analysis import fit
-        from ..errors import OptionError
-        from ..io_spec import read_spec
+        from ..core.acceptance import RULES, accept
+        from ..core.analysis import fit
+        from ..core.errors import OptionError
+        from ..io.spec import read_spec
 
         if rule is not None and rule not in RULES:
             raise OptionError("--rule", f"{rule!r}: use one of {', '.join(RULES)}")
@@ -67,15 +67,15 @@ def accept_command(
         need_doc = json_out or report or (out and out.lower().endswith(".json"))
         doc = accept_document(acc, fits, readings, settings) if need_doc else None
         if out:
-            from ..outputs import atomic_write, document_pieces
-            from ..report_accept import acceptance_csv
+            from ..io.outputs import atomic_write, document_pieces
+            from ..report.accept_report import acceptance_csv
 
             if out.lower().endswith(".json"):
                 atomic_write(out, document_pieces(doc, acc), inputs=inputs)
             else:
                 atomic_write(out, acceptance_csv(acc), inputs=inputs)
         if report:
-            from ..report_accept import write_accept_report
+            from ..report.accept_report import write_accept_report
 
             write_accept_report(report, acc, fits, readings,
                                 {**doc, "results": acc.to_dicts()}, inputs=inputs)
@@ -90,8 +90,8 @@ def accept_document(acc, fits, readings, settings) -> dict:
     """The JSON document of ``sagfit accept --json``, with an empty ``results`` list: the
     decisions are built where they are written (``outputs.document_pieces(doc, acc)``)."""
     from .. import __version__
-    from ..acceptance import DECISIONS
-    from ..safety import fit_cautions
+    from ..core.acceptance import DECISIONS
+    from ..core.safety import fit_cautions
 
     spec = acc.spec
     r = acc.rule
@@ -142,8 +142,8 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
     import numpy as np
     from rich.console import Console
 
-    from ..acceptance import ERROR
-    from ..safety import fit_cautions
+    from ..core.acceptance import ERROR
+    from ..core.safety import fit_cautions
 
     tty = sys.stdout.isatty()
     console = Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
@@ -194,8 +194,8 @@ def _print_many(console, acc) -> None:
     import numpy as np
     from rich.table import Table
 
-    from ..acceptance import DECISIONS, ERROR, FAIL, PASS
-    from ..report_accept import format_check, limits_text
+    from ..core.acceptance import DECISIONS, ERROR, FAIL, PASS
+    from ..report.accept_report import format_check, limits_text
 
     order = np.argsort(-_rank(acc.decision), kind="stable")
     shown = order[:MAX_TABLE_ROWS]
@@ -227,9 +227,9 @@ def _print_one(console, acc) -> None:
     import numpy as np
     from rich.table import Table
 
-    from ..acceptance import DECISIONS, STATEMENTS
-    from ..formatting import format_p, format_value
-    from ..report_accept import format_check, limits_text
+    from ..core.acceptance import DECISIONS, STATEMENTS
+    from ..core.formatting import format_p, format_value
+    from ..report.accept_report import format_check, limits_text
 
     def lim(x, unit):
         if not np.isfinite(x):

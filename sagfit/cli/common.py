@@ -9,7 +9,7 @@ from typing import Annotated, Iterator, Optional
 
 import typer
 
-from ..errors import InputError, OptionError, SagfitError
+from ..core.errors import InputError, OptionError, SagfitError
 
 # Options shared by every command that fits readings (declared once, used by each).
 DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only this DUT (comma-separated "
@@ -62,13 +62,13 @@ def guarded(source: str = "") -> Iterator[None]:
 def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=None,
                  bench=None, confidence=None) -> dict:
     """Merge the command-line options over a bench profile into fit settings."""
-    from ..units import parse_accuracy, parse_percent
+    from ..core.units import parse_accuracy, parse_percent
 
     settings: dict = {"voltage_accuracy": None, "current_accuracy": None,
                       "load_tolerance": None, "confidence": 0.95, "instruments": (),
                       "bench": None}
     if bench:
-        from ..io_bench import read_bench
+        from ..io.bench import read_bench
 
         prof = read_bench(bench)
         settings.update(voltage_accuracy=prof.voltage_accuracy,
@@ -113,8 +113,8 @@ def settings_record(settings: dict) -> dict:
 
 def load_readings(file: str, settings: dict, dut: str | None = None):
     """Read a readings file with the settings, optionally keeping some DUTs."""
-    from .._parallel import gc_paused
-    from ..io_csv import read_readings
+    from ..core._parallel import gc_paused
+    from ..io.readings_csv import read_readings
     from . import settle_long_lived
 
     with gc_paused():
@@ -134,7 +134,7 @@ def check_out_option(out: str | None, inputs) -> None:
     """``--out``: a .csv or .json file name in an existing folder, never an input file."""
     if not out:
         return
-    from ..outputs import check_output_path
+    from ..io.outputs import check_output_path
 
     check_output_path(out, inputs)
     if not out.lower().endswith((".csv", ".json")):
@@ -144,7 +144,7 @@ def check_out_option(out: str | None, inputs) -> None:
 def require_some_fit(file: str, fits) -> None:
     """A file in which no DUT could be fitted is bad input (exit 2), with the reason."""
     if len(fits) and not fits.ok.any():
-        from ..errors import ReadingsFileError
+        from ..core.errors import ReadingsFileError
 
         who = "" if len(fits) == 1 else f"no DUT could be fitted; {fits.duts[0]}: "
         raise ReadingsFileError(file, who + str(fits.error[0]))
@@ -166,7 +166,7 @@ def show_progress(file: str, json_out: bool) -> bool:
 def write_document(doc, results=None) -> None:
     """Print a JSON document to stdout, with the per-DUT ``results`` of a Fits or an
     Acceptance when given (``outputs.document_pieces``: in pieces for a large batch)."""
-    from ..outputs import document_pieces
+    from ..io.outputs import document_pieces
 
     for piece in document_pieces(doc, results):
         write_stdout(piece)

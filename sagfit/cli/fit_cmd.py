@@ -46,8 +46,8 @@ def fit_command(
     """Fit V = Vth − Rth·I for every DUT: open-circuit voltage, internal resistance,
     short-circuit current and maximum power, with uncertainties."""
     with guarded(file):
-        from ..analysis import fit
-        from ..errors import OptionError
+        from ..core.analysis import fit
+        from ..core.errors import OptionError
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence)
@@ -55,7 +55,7 @@ def fit_command(
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
         if report:
-            from ..report import FIGURE_CHOICES
+            from ..report.fit_report import FIGURE_CHOICES
 
             if figures not in FIGURE_CHOICES:
                 raise OptionError("--figures", f"{figures!r}: choose one of "
@@ -70,7 +70,7 @@ def fit_command(
             step("preparing the results")
             need_results = bool(json_out or report or (out and out.lower().endswith(".json")))
             if need_results:
-                from ..budget import budgets
+                from ..core.budget import budgets
 
                 fits = fits.replace(extra={**fits.extra, "budget": budgets(
                     readings, fits, used=fits.used_rows)})
@@ -80,7 +80,7 @@ def fit_command(
             if out:
                 write_results(out, fits, doc, [file])
             if report:
-                from ..report import write_report
+                from ..report.fit_report import write_report
 
                 write_report(report, fits, readings, doc, settings, figures=figures,
                              inputs=[file] + ([bench] if bench else []))
@@ -97,8 +97,8 @@ def parse_current_range(text: str | None):
     """``'LO:HI'`` with optional units (either end may be empty) → (lo, hi) in A, or None."""
     if text is None:
         return None
-    from ..errors import InputError, OptionError
-    from ..units import parse_quantity
+    from ..core.errors import InputError, OptionError
+    from ..core.units import parse_quantity
 
     if ":" not in text:
         raise OptionError("--current-range", f"{text!r}: write LO:HI, e.g. '0:2.5A'")
@@ -118,9 +118,9 @@ def fit_document(fits, readings, settings) -> dict:
     per-DUT results are built only where they are written (``outputs.document_pieces(doc,
     fits)``, in pieces for a large batch); the terminal view does not need them."""
     from .. import __version__
-    from ..safety import fit_cautions
+    from ..core.safety import fit_cautions
 
-    from ..traceability import traceability_record
+    from ..core.traceability import traceability_record
 
     trace = traceability_record(settings.get("instruments", ()), readings.meta)
     return {
@@ -140,11 +140,11 @@ def fit_document(fits, readings, settings) -> dict:
 
 def write_results(out: str, fits, doc, inputs) -> None:
     """``--out``: CSV (one row per DUT) or JSON (the same document as --json)."""
-    from ..outputs import atomic_write, document_pieces
+    from ..io.outputs import atomic_write, document_pieces
 
     if out.lower().endswith(".json"):
         atomic_write(out, document_pieces(doc, fits), inputs=inputs)
     else:
-        from ..io_csv import fits_csv
+        from ..io.readings_csv import fits_csv
 
         atomic_write(out, fits_csv(fits), inputs=inputs)

@@ -40,9 +40,9 @@ def record_command(
     """Fit every DUT in FILE and append the results to the history database."""
     with guarded(file):
         from .. import __version__
-        from ..analysis import fit
-        from ..history import History, check_db_path, dut_group_labels, dut_test_times
-        from ..safety import fit_cautions
+        from ..core.analysis import fit
+        from ..io.history import History, check_db_path, dut_group_labels, dut_test_times
+        from ..core.safety import fit_cautions
 
         inputs = [file] + ([bench] if bench else [])
         check_db_path(db, inputs)
@@ -65,7 +65,7 @@ def record_command(
                 date_source=date_source, tool_version=__version__, force=force)
             total = hist.count()
         failed = [(d, e) for d, e in zip(fits.duts, fits.error) if e is not None]
-        from ..trend import iso_date
+        from ..core.trend import iso_date
 
         dates = sorted({iso_date(t) for t, e in zip(times, fits.error) if e is None})
         doc = {"tool": "sagfit", "version": __version__, "database": db,
@@ -111,10 +111,10 @@ _DATE_RE = re.compile(r"^\d{4}-\d{2}-\d{2}")
 
 def parse_baseline(text: str):
     """``first``, a date ``YYYY-MM-DD`` or a resistance with its unit (``0.6mohm``)."""
-    from ..errors import InputError, OptionError
-    from ..history import parse_date
-    from ..trend import Baseline
-    from ..units import parse_quantity
+    from ..core.errors import InputError, OptionError
+    from ..io.history import parse_date
+    from ..core.trend import Baseline
+    from ..core.units import parse_quantity
 
     s = text.strip()
     if s.lower() == "first":
@@ -136,9 +136,9 @@ def parse_baseline(text: str):
 
 def parse_threshold(text: str):
     """``1.5x`` (× baseline), ``25%`` (above baseline) or ``0.8mohm`` (absolute)."""
-    from ..errors import InputError, OptionError
-    from ..trend import Threshold
-    from ..units import parse_quantity
+    from ..core.errors import InputError, OptionError
+    from ..core.trend import Threshold
+    from ..core.units import parse_quantity
 
     s = text.strip().replace(" ", "")
     hint = "write e.g. 1.5x, 25% or 0.8mohm"
@@ -159,7 +159,7 @@ def parse_threshold(text: str):
 
 def parse_days(text: str, option: str = "--horizon") -> float:
     """``180d``, ``26w``, ``6mo`` (30 d), ``1y`` (365 d) or a bare number of days."""
-    from ..errors import OptionError
+    from ..core.errors import OptionError
 
     m = re.fullmatch(r"\s*([0-9]*\.?[0-9]+)\s*(d|days?|w|weeks?|mo|months?|y|years?)?\s*",
                      text.lower())
@@ -170,7 +170,7 @@ def parse_days(text: str, option: str = "--horizon") -> float:
 
 
 def parse_excess(text: str) -> float:
-    from ..errors import OptionError
+    from ..core.errors import OptionError
 
     s = text.strip().rstrip("%").strip()
     try:
@@ -212,9 +212,9 @@ def trend_command(
     threshold crossing, and each DUT against its group. Exit 1 when a DUT is flagged."""
     with guarded(db):
         from .. import __version__
-        from ..errors import HistoryError, OptionError
-        from ..history import History, parse_date
-        from ..trend import analyse_trends
+        from ..core.errors import HistoryError, OptionError
+        from ..io.history import History, parse_date
+        from ..core.trend import analyse_trends
 
         conf = 0.95 if confidence is None else confidence
         if not (0 < conf < 1 and math.isfinite(conf)):
@@ -250,7 +250,7 @@ def trend_command(
             recs = _records_of(recs, names)
         doc = trend_document(trends, db, __version__, len(recs))
         if report:
-            from ..report_trend import write_trend_report
+            from ..report.trend_report import write_trend_report
 
             write_trend_report(report, trends, recs, doc, inputs=[db])
         if json_out:
@@ -305,8 +305,8 @@ def print_trends(trends, doc) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    from ..formatting import format_estimate, format_percent, format_value
-    from ..trend import iso_date
+    from ..core.formatting import format_estimate, format_percent, format_value
+    from ..core.trend import iso_date
 
     import sys
 

@@ -18,7 +18,7 @@ INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
 
 # ------------------------------------------------------------------ option parsing
 def _opt_error(option: str, exc: Exception):
-    from ..errors import OptionError
+    from ..core.errors import OptionError
 
     msg = str(exc)
     if msg.startswith(option + ": "):
@@ -29,8 +29,8 @@ def _opt_error(option: str, exc: Exception):
 def _quantity(text: str | None, dimension: str, option: str, *, positive=True):
     if text is None:
         return None
-    from ..errors import InputError
-    from ..units import parse_quantity
+    from ..core.errors import InputError
+    from ..core.units import parse_quantity
 
     try:
         value = parse_quantity(text, dimension, what=option)
@@ -42,7 +42,7 @@ def _quantity(text: str | None, dimension: str, option: str, *, positive=True):
 
 
 def _resistance(text: str, option: str, *, allow_open=True, allow_short=True) -> float:
-    from ..units import parse_resistance
+    from ..core.units import parse_resistance
 
     try:
         r = parse_resistance(text)
@@ -72,8 +72,8 @@ def _resistances(text: str, option: str) -> list[float]:
 def _percent(text: str | None, option: str, *, upper: float = 100.0) -> float | None:
     if text is None:
         return None
-    from ..errors import InputError
-    from ..units import parse_percent
+    from ..core.errors import InputError
+    from ..core.units import parse_percent
 
     try:
         value = parse_percent(text, what=option)
@@ -98,8 +98,8 @@ def _drift(text: str | None) -> float:
     """``'2mV/h'``, ``'-0.1 mV/s'``, ``'1e-5'`` (V/s) → V/s."""
     if text is None:
         return 0.0
-    from ..errors import InputError
-    from ..units import parse_quantity
+    from ..core.errors import InputError
+    from ..core.units import parse_quantity
 
     num, _, per = text.partition("/")
     try:
@@ -121,8 +121,8 @@ def _curvature(text: str | None) -> float:
     """``'0.002'``, ``'2m'``, ``'2mV/A2'``, ``'2 mΩ/A'`` → V/A²."""
     if text is None:
         return 0.0
-    from ..errors import InputError
-    from ..units import parse_quantity
+    from ..core.errors import InputError
+    from ..core.units import parse_quantity
 
     s = text.strip()
     for suffix in ("V/A²", "V/A^2", "V/A2", "ohm/A", "Ω/A", "Ω/A"):
@@ -179,9 +179,9 @@ def simulate_command(
 ) -> None:
     """Write invented bench readings (labelled as such) for demos, tests and benchmarks."""
     with guarded(out):
-        from ..errors import InputError, OptionError
-        from ..outputs import atomic_write, check_output_path
-        from ..simulate import run_csv_text, simulate
+        from ..core.errors import InputError, OptionError
+        from ..io.outputs import atomic_write, check_output_path
+        from ..core.simulate import run_csv_text, simulate
 
         v = _quantity(vth, "V", "--vth")
         r = _resistance(rth, "--rth", allow_open=False, allow_short=False)
@@ -284,7 +284,7 @@ def _refuse_real_file(out: str, option: str = "--out") -> None:
     """Never overwrite a file that is not itself a simulation (it may be real readings)."""
     import os
 
-    from ..errors import OptionError
+    from ..core.errors import OptionError
 
     if not os.path.exists(out):
         return
@@ -330,10 +330,10 @@ def plan_command(
     """Propose loads for a load test: expected readings, dissipation, and the predicted
     uncertainties of Vth and Rth, with the usual cautions."""
     with guarded("plan"):
-        from ..planning import plan
+        from ..core.planning import plan
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench)
-        from ..errors import InputError
+        from ..core.errors import InputError
 
         try:
             result = plan(
@@ -348,7 +348,7 @@ def plan_command(
                 have=None if have is None else _resistances(have, "--have"),
                 derating=_percent(derating, "--derating"), battery=battery)
         except InputError as exc:
-            from ..errors import OptionError
+            from ..core.errors import OptionError
 
             if isinstance(exc, OptionError):
                 raise
@@ -363,8 +363,8 @@ def plan_command(
 
 
 def _series(text: str) -> str:
-    from ..eseries import series_name
-    from ..errors import InputError
+    from ..core.eseries import series_name
+    from ..core.errors import InputError
 
     try:
         return series_name(text)
@@ -373,7 +373,7 @@ def _series(text: str) -> str:
 
 
 def _points(n: int) -> int:
-    from ..planning import MAX_POINTS, MIN_POINTS
+    from ..core.planning import MAX_POINTS, MIN_POINTS
 
     if not MIN_POINTS <= n <= MAX_POINTS:
         raise _opt_error("--points", ValueError(
@@ -384,7 +384,7 @@ def _points(n: int) -> int:
 
 def _plan_option_error(exc):
     """A planning refusal: name the option when the message names a parameter."""
-    from ..errors import InputError, OptionError
+    from ..core.errors import InputError, OptionError
 
     msg = str(exc)
     head, _, rest = msg.partition(": ")
@@ -398,7 +398,7 @@ def _plan_option_error(exc):
 def _print_plan(p) -> None:
     from rich.table import Table
 
-    from ..formatting import format_value
+    from ..core.formatting import format_value
     from .render import _console
 
     console = _console()

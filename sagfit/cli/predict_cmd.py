@@ -27,8 +27,8 @@ def predict_command(
     with a confidence interval for the mean and, for the voltage, a prediction interval
     for one new reading."""
     with guarded(results):
-        from ..errors import OptionError
-        from ..predict import models_from_document, predict
+        from ..core.errors import OptionError
+        from ..core.predict import models_from_document, predict
 
         loads = _parse_list(load, "--load", _resistance)
         currents = _parse_list(current, "--current", _current)
@@ -57,8 +57,8 @@ def predict_command(
 
 def _warnings_and_cautions(preds, models) -> tuple[list[str], list[str]]:
     """Operating points no passive load reaches, and the usual safety cautions."""
-    from ..formatting import format_value
-    from ..safety import cautions
+    from ..core.formatting import format_value
+    from ..core.safety import cautions
 
     warnings = []
     for p in preds:
@@ -78,19 +78,19 @@ def _warnings_and_cautions(preds, models) -> tuple[list[str], list[str]]:
 
 
 def _resistance(text: str) -> float:
-    from ..units import parse_resistance
+    from ..core.units import parse_resistance
 
     return parse_resistance(text)
 
 
 def _current(text: str) -> float:
-    from ..units import parse_quantity
+    from ..core.units import parse_quantity
 
     return parse_quantity(text, "A", what="current")
 
 
 def _parse_list(text, option, parse):
-    from ..errors import InputError, OptionError
+    from ..core.errors import InputError, OptionError
 
     if text is None:
         return []
@@ -111,7 +111,7 @@ def _parse_list(text, option, parse):
 def _read_document(path: str):
     import json
 
-    from ..errors import InputError
+    from ..core.errors import InputError
 
     try:
         with open(path, "rb") as fh:
@@ -131,7 +131,7 @@ def _read_document(path: str):
 def _print(preds, models) -> None:
     from rich.table import Table
 
-    from ..formatting import format_estimate, format_interval, format_value
+    from ..core.formatting import format_estimate, format_interval, format_value
     from .render import _console
 
     console = _console()

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..formatting import format_estimate, format_interval, format_p, format_value
+from ..core.formatting import format_estimate, format_interval, format_p, format_value
 
 MAX_TABLE_ROWS = 40
 

@@ -16,8 +16,8 @@ import pathlib
 
 import numpy as np
 
-from sagfit.simulate import simulate
-from sagfit.units import parse_accuracy
+from sagfit.core.simulate import simulate
+from sagfit.core.units import parse_accuracy
 
 HERE = pathlib.Path(__file__).resolve().parent
 DATES = [dt.date(2026, 4, 7) + dt.timedelta(days=28 * k) for k in range(8)]

@@ -24,12 +24,12 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .budget import GROUP_LABELS, budget_arrays
-from .errors import OptionError
-from .formatting import format_estimate, format_interval, format_p, format_value
-from .outputs import atomic_write, document_pieces, prepare_folder, safe_filename
-from .safety import DEFERRAL, HAZARDOUS_V, HIGH_CURRENT_A, HOT_RESISTOR_W, fit_cautions
-from .traceability import calibration_warnings, date_of_test, instrument_rows
+from ..core.budget import GROUP_LABELS, budget_arrays
+from ..core.errors import OptionError
+from ..core.formatting import format_estimate, format_interval, format_p, format_value
+from ..io.outputs import atomic_write, document_pieces, prepare_folder, safe_filename
+from ..core.safety import DEFERRAL, HAZARDOUS_V, HIGH_CURRENT_A, HOT_RESISTOR_W, fit_cautions
+from ..core.traceability import calibration_warnings, date_of_test, instrument_rows
 
 __all__ = ["write_report", "build_html", "MAX_TABLE_ROWS", "MAX_DUT_SECTIONS",
            "SMALL_FILE_DUTS", "FIGURE_CHOICES"]
@@ -122,7 +122,7 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
     # the same text as `sagfit fit --json`
     atomic_write(root / "results.json", document_pieces(doc, fits),
                  inputs=inputs, within=root, option="--report")
-    from . import io_csv
+    from ..io import readings_csv as io_csv
 
     atomic_write(root / "results.csv", io_csv.fits_csv(fits), inputs=inputs, within=root,
                  option="--report")
@@ -550,7 +550,7 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
 def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str = "flagged",
                now: _dt.datetime | None = None, png_sink=None) -> str:
     """The report page as one HTML string; PNGs go to ``png_sink((name, bytes))``."""
-    from . import __version__
+    from .. import __version__
 
     png_sink = png_sink or (lambda item: None)
     now = now or _dt.datetime.now(_dt.timezone.utc)

@@ -14,8 +14,8 @@ import math
 
 import numpy as np
 
-from .acceptance import DECISIONS, ERROR, FAIL, INCONCLUSIVE, PASS, STATEMENTS
-from .formatting import format_estimate, format_percent, format_value
+from ..core.acceptance import DECISIONS, ERROR, FAIL, INCONCLUSIVE, PASS, STATEMENTS
+from ..core.formatting import format_estimate, format_percent, format_value
 
 __all__ = ["acceptance_table", "acceptance_csv", "limits_text", "format_check",
            "write_accept_report"]
@@ -57,7 +57,7 @@ def limits_text(check) -> str:
 def _columns(acc) -> list[tuple[str, str, object]]:
     """The CSV columns as (name, kind, data): kind ``num`` (float array), ``word`` (our own
     vocabulary: decisions, rule, booleans) or ``text`` (from user data, neutralised)."""
-    from .io_csv import neutralise
+    from ..io.readings_csv import neutralise
 
     names = np.array(DECISIONS, dtype=object)
     check_names = np.array(DECISIONS[:3] + ("",), dtype=object)
@@ -114,7 +114,7 @@ def acceptance_csv(acc) -> str:
     Written whole columns at a time by the same writer as ``fit --out``
     (:func:`sagfit.io_csv.csv_rows`), not with ``DataFrame.to_csv``.
     """
-    from .io_csv import Encoded, coded, csv_rows
+    from ..io.readings_csv import Encoded, coded, csv_rows
 
     cols, header = {}, []
     for j, (name, kind, data) in enumerate(_columns(acc)):
@@ -209,7 +209,7 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
     """Write the acceptance report into ``folder`` (created if needed)."""
     from pathlib import Path
 
-    from .outputs import atomic_write, prepare_folder, safe_filename
+    from ..io.outputs import atomic_write, prepare_folder, safe_filename
     from .plots import figure_svg, save_png
 
     root = prepare_folder(folder, inputs)

@@ -19,9 +19,9 @@ from __future__ import annotations
 import datetime as _dt
 from dataclasses import dataclass, field
 
-from .errors import InputError, SpecFileError
-from .io_toml import check_layout, read_toml
-from .units import Accuracy, parse_accuracy, parse_percent
+from ..core.errors import InputError, SpecFileError
+from .tomlfile import check_layout, read_toml
+from ..core.units import Accuracy, parse_accuracy, parse_percent
 
 __all__ = ["BenchProfile", "Instrument", "read_bench"]
 

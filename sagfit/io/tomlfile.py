@@ -9,8 +9,8 @@ from __future__ import annotations
 import tomllib
 from typing import Mapping
 
-from .errors import SpecFileError
-from .io_files import read_input
+from ..core.errors import SpecFileError
+from .files import read_input
 
 __all__ = ["MAX_TOML_BYTES", "read_bytes", "read_toml", "parse_toml", "check_layout"]
 

@@ -14,7 +14,7 @@ import tempfile
 from pathlib import Path
 from typing import Iterable, Iterator
 
-from .errors import OptionError, SagfitError
+from ..core.errors import OptionError, SagfitError
 
 __all__ = ["atomic_write", "check_output_path", "safe_filename", "OutputError", "prepare_folder"]
 
@@ -159,7 +159,7 @@ def document_pieces(doc: dict, results=None) -> Iterator[str]:
     """
     import json
 
-    from ._parallel import gc_paused
+    from ..core._parallel import gc_paused
 
     n = 0 if results is None else len(results)
     if n <= JSON_BIG:

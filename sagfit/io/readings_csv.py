@@ -19,10 +19,10 @@ from typing import Mapping
 
 import numpy as np
 
-from ._parallel import Background, gc_paused
-from .errors import ReadingsFileError
-from .readings import Readings
-from .units import Accuracy, parse_header_unit, parse_resistance
+from ..core._parallel import Background, gc_paused
+from ..core.errors import ReadingsFileError
+from ..core.readings import Readings
+from ..core.units import Accuracy, parse_header_unit, parse_resistance
 
 __all__ = ["read_readings", "parse_table", "classify_header", "fits_table", "neutralise",
            "MAX_BYTES", "MAX_LINE", "MAX_COLUMNS"]
@@ -217,7 +217,7 @@ def read_readings(
     ReadingsFileError
         With the file name, and the line and column of a bad cell.
     """
-    from .io_files import read_input
+    from .files import read_input
 
     limit = MAX_BYTES if max_bytes is None else int(max_bytes)
     data = read_input(path, ReadingsFileError, what="readings file", limit=limit,
@@ -951,7 +951,7 @@ def _text_block(vals) -> np.ndarray:
     """A text column (list of str, or :class:`Coded`) as a padded byte matrix; a column of
     few distinct values (method, flags, errors, decisions) is encoded once per value and
     gathered."""
-    from .io_numtext import text_matrix
+    from .numtext import text_matrix
 
     if not isinstance(vals, Coded):
         head = vals[:64]
@@ -995,7 +995,7 @@ def csv_rows(columns: Mapping[str, object]) -> list:
     n = len(columns[names[0]])
     if n < PARALLEL_ROWS:
         return [_csv_body(columns)]
-    from ._parallel import map_parallel
+    from ..core._parallel import map_parallel
 
     half = n // 2
     return map_parallel(_csv_body, [{k: (Encoded(v[a:b]) if isinstance(v, Encoded) else v[a:b])
@@ -1004,7 +1004,7 @@ def csv_rows(columns: Mapping[str, object]) -> list:
 
 
 def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
-    from .io_numtext import g10_matrix, join_rows, small_set_matrix, text_matrix
+    from .numtext import g10_matrix, join_rows, small_set_matrix, text_matrix
 
     blocks = []
     for col in columns.values():

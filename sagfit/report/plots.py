@@ -29,7 +29,7 @@ from typing import Iterator, Mapping, Sequence
 
 import numpy as np
 
-from .formatting import format_estimate, format_interval, format_value, si_prefix
+from ..core.formatting import format_estimate, format_interval, format_value, si_prefix
 
 __all__ = ["house_style", "si_axis", "figure_svg", "save_png", "new_figure", "COLORS",
            "fit_figure", "residual_figure", "power_figure", "histogram_figure",
@@ -264,7 +264,7 @@ def png_bytes(fig, dpi: float | None = None) -> bytes:
 def save_png(fig, path, within, *, inputs: Sequence = (), dpi: float | None = None):
     """Write the figure as a PNG at ``path``, atomically, refusing any path outside the
     folder ``within`` (and any input file); returns the path written."""
-    from .outputs import atomic_write
+    from ..io.outputs import atomic_write
 
     return atomic_write(path, png_bytes(fig, dpi), inputs=list(inputs), within=within,
                         option="--report")

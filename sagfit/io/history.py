@@ -31,7 +31,7 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .errors import HistoryError, ReadingsFileError
+from ..core.errors import HistoryError, ReadingsFileError
 
 __all__ = ["History", "HistoryRecords", "RecordOutcome", "SCHEMA_VERSION", "DEFAULT_DB",
            "parse_date", "dut_test_times", "dut_group_labels"]
@@ -128,7 +128,7 @@ def dut_test_times(readings, date: str | None = None) -> tuple[np.ndarray, str]:
         try:
             return np.full(m, parse_date(date)), "option --date"
         except ValueError as exc:
-            from .errors import OptionError
+            from ..core.errors import OptionError
 
             raise OptionError("--date", str(exc)) from None
     comment = readings.meta.get("date")
@@ -517,7 +517,7 @@ def check_db_path(db: str, inputs: Iterable[str] = ()) -> str:
         except OSError:
             same = False
         if same or p.resolve() == Path(src).resolve():
-            from .errors import OptionError
+            from ..core.errors import OptionError
 
             raise OptionError("--db", f"{db} is an input file; give another database name")
     return db

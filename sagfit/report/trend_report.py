@@ -21,8 +21,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .formatting import format_estimate, format_percent, format_value
-from .trend import DAY, iso_date
+from ..core.formatting import format_estimate, format_percent, format_value
+from ..core.trend import DAY, iso_date
 
 __all__ = ["write_trend_report", "ALL_FIGURES_UP_TO", "MAX_FIGURES"]
 
@@ -121,7 +121,7 @@ def _fleet_figure(trends, members, key, excess_pct):
 def _csv(trends) -> str:
     """``trend.csv``: one row per DUT, through the project's CSV writer (numbers as
     ``%.10g``, non-finite values as empty cells, text neutralised and quoted as needed)."""
-    from .io_csv import table_csv
+    from ..io.readings_csv import table_csv
 
     def dates(a):
         return [iso_date(t) or "" for t in np.asarray(a, float).tolist()]
@@ -162,7 +162,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     """
     from scipy import special
 
-    from .outputs import atomic_write, document_text, prepare_folder, safe_filename
+    from ..io.outputs import atomic_write, document_text, prepare_folder, safe_filename
     from .plots import figure_svg, save_png
 
     root = prepare_folder(folder, inputs)

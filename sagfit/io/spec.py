@@ -41,10 +41,10 @@ import hashlib
 import math
 import re
 
-from .acceptance import RULES, Check, Condition, DecisionRule, Spec
-from .errors import InputError, SpecFileError
-from .io_toml import check_layout, parse_toml, read_bytes
-from .units import PREFIXES, parse_percent, parse_quantity, parse_resistance
+from ..core.acceptance import RULES, Check, Condition, DecisionRule, Spec
+from ..core.errors import InputError, SpecFileError
+from .tomlfile import check_layout, parse_toml, read_bytes
+from ..core.units import PREFIXES, parse_percent, parse_quantity, parse_resistance
 
 __all__ = ["read_spec", "parse_spec"]
 

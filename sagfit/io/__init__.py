@@ -1,0 +1,1 @@
+"""The file edges: readings, bench profiles, specs, results files and the SQLite history."""

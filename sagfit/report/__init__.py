@@ -1,0 +1,1 @@
+"""Figures and the HTML reports (matplotlib; reads the core's results)."""
