@@ -149,7 +149,7 @@ def simulate_command(
     out: Annotated[str, typer.Option("--out", help="Readings CSV to write (input format of "
                                                    "'sagfit fit').")],
     duts: Annotated[int, typer.Option("--duts", help="Number of DUTs.")] = 1,
-    seed: Annotated[int, typer.Option("--seed", help="Random seed (same seed, same file).")] = 1,
+    seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed (same seed, same file).")] = 1,
     voltage_accuracy: VoltageAccOpt = None,
     current_accuracy: CurrentAccOpt = None,
     load_tolerance: LoadTolOpt = None,

@@ -85,7 +85,9 @@ def _dut_figure(trends, recs, i, rows, k_show):
                         color=COLORS["flag"], ms=5, label=f"crossing {when}")
         ax.set_xlabel("Test date")
         si_axis(ax, "y", "Ω", "Internal resistance")
-        fig.autofmt_xdate()
+        # rotated date labels; fig.autofmt_xdate() would call subplots_adjust, which a
+        # constrained-layout figure refuses with a warning on some matplotlib releases
+        ax.tick_params(axis="x", labelrotation=30)
         ax.legend(loc="best", ncols=2)
     return fig
 
