@@ -656,7 +656,10 @@ def accept(fits: Fits, spec: Spec, *, rule: str | None = None,
         lo, hi = _current_range(readings, m)
     for c in spec.checks:
         value, u = check_values(fits, c)
-        U = k * u
+        kq = k if decision.k is not None else (
+            np.asarray(fits.k_rth, float) if c.quantity == "rth" else
+            np.fmax(k, np.asarray(fits.k_rth, float)) if c.quantity != "vth" else k)
+        U = kq * u
         r = decide(value, u, U, c.lower, c.upper, decision)
         ex = None if lo is None else _extrapolated(fits, c, lo, hi)
         results.append(CheckResult(check=c, value=value, u=u, U=U, extrapolated=ex, **r))

@@ -502,12 +502,21 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
     syy = np.where(st, readings.u_voltage[keep] ** 2, 1.0)
     sxy = np.where(st, readings.cov_iv[keep], 0.0)
     res = _line(g, x, y, sxx, syy, sxy, m)
+    prop = None
+    if readings.errors is not None:
+        from .systematic import propagate  # only when errors are shared
+
+        with np.errstate(all="ignore"):
+            prop = propagate(g, x, y, readings.load[keep], readings.errors.take(keep), res, m,
+                             n, confidence)
 
     with np.errstate(all="ignore"):  # NaN/inf of DUTs in error are masked below
-        return _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence)
+        return _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
+                         prop)
 
 
-def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence) -> Fits:
+def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
+              prop=None) -> Fits:
     xerr = _groupsum(g, (sxx > 0) | (sxy != 0), m) > 0
     # one shared str per method (not 100,000 new strings)
     method = np.array(["wls", "york", "ols"], dtype=object)[np.where(~stated, 2,
@@ -527,6 +536,16 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence)
     var_v = res["var_a"] * scale
     var_r = res["var_b"] * scale
     cov_vr = -res["cov_ab"] * scale
+    extra = {}
+    k_rth = k
+    if prop is not None:  # shared meter/resistor errors: the covariance of systematic.py
+        sel = stated & ~bad
+        var_v = np.where(sel, prop.total[0], var_v)
+        var_r = np.where(sel, prop.total[1], var_r)
+        cov_vr = np.where(sel, -prop.total[2], cov_vr)
+        k_rth = np.where(sel, prop.k[1], k)
+        k = np.where(sel, prop.k[0], k)
+        extra["uncertainty"] = _uncertainty_rows(prop, sel, k, k_rth)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         pos = rth > 0
         isc = np.where(pos, vth / rth, np.nan)
@@ -546,8 +565,36 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence)
         dof=dof, p_value=p_value * nan, scale=scale * nan, k=k, isc=isc * nan,
         u_isc=u_isc * nan, pmax=pmax * nan, u_pmax=u_pmax * nan,
         converged=res["converged"] & ~bad, error=tuple(errors), flags=flags,
-        confidence=float(confidence),
+        confidence=float(confidence), extra=extra, k_rth=k_rth,
         settings={"confidence": float(confidence), "source": readings.source})
+
+
+def _uncertainty_rows(prop, sel, k, k_rth) -> list:
+    """Per-DUT JSON of the shared-error model: which random part, ν_eff, k and why, and
+    the standard uncertainty each shared component gives Vth and Rth."""
+    names = list(prop.components)
+    cols = {nm: (np.abs(prop.components[nm][0]).tolist(), np.abs(prop.components[nm][1]).tolist())
+            for nm in names}
+    rand_v, rand_r = (np.sqrt(np.maximum(np.where(prop.use_type_a, prop.type_a[j],
+                                                  prop.random_stated[j] + prop.resistor_sharing[j]),
+                                         0.0)).tolist() for j in (0, 1))
+    dof = [None if not math.isfinite(d) else round(d, 1) for d in prop.dof_eff.tolist()]
+    use_a = prop.use_type_a.tolist()
+    out = []
+    for i, (ok, kk, kr, why) in enumerate(zip(sel.tolist(), k.tolist(), k_rth.tolist(),
+                                              prop.k_reason)):
+        if not ok:
+            out.append(None)
+            continue
+        out.append({
+            "model": "meter gain and offset shared by the sweep; resistor errors shared by "
+                     "repeats at one load (GUM 5.2, F.1.2.1)",
+            "random": {"source": "scatter (Type A)" if use_a[i] else "stated",
+                       "u_vth": rand_v[i], "u_rth": rand_r[i]},
+            "shared": {nm: {"u_vth": cols[nm][0][i], "u_rth": cols[nm][1][i]} for nm in names},
+            "effective_dof": dof[i], "coverage_factor_vth": kk, "coverage_factor_rth": kr,
+            "coverage_basis": why})
+    return out
 
 
 def _basic_flags(readings: Readings, m, bad, stated, scale, dof, converged):

@@ -25,6 +25,7 @@ import numpy as np
 
 from ._frozen import freeze_arrays
 from .errors import InputError, ReadingsFileError
+from .systematic import ErrorModel
 from .units import Accuracy
 
 __all__ = ["Readings", "Note"]
@@ -76,6 +77,12 @@ class Readings:
         Cross-check findings (for example V/I disagreeing with the stated load).
     meta : mapping
         Free-form metadata from the file (``date``, ``temperature_C``, columns ignored).
+    errors : ErrorModel or None
+        The split of each reading's error into a random part and the components shared
+        by a sweep (meter gain and offset) or by repeats (a load resistor); ``None`` when
+        every error is independent (then ``u_voltage``, ``u_current``, ``cov_iv`` are the
+        random part). ``u_voltage``, ``u_current`` and ``cov_iv`` always hold the whole
+        spec as if independent: they weight the fit.
     """
 
     duts: tuple[str, ...]
@@ -93,6 +100,7 @@ class Readings:
     voltage_from: str = "measured"
     notes: tuple[Note, ...] = ()
     meta: Mapping[str, object] = field(default_factory=dict)
+    errors: ErrorModel | None = None
 
     def __post_init__(self):
         # from_arrays copies what the caller passed in, so freezing in place is safe
@@ -126,7 +134,8 @@ class Readings:
             u_voltage=self.u_voltage[mask], cov_iv=self.cov_iv[mask], load=self.load[mask],
             time=self.time[mask], line=self.line[mask], source=self.source,
             current_from=self.current_from, voltage_from=self.voltage_from,
-            notes=self.notes, meta=self.meta)
+            notes=self.notes, meta=self.meta,
+            errors=None if self.errors is None else self.errors.take(mask))
 
     def dut_range(self, lo: int, hi: int) -> "Readings":
         """The readings of DUTs ``lo`` … ``hi − 1`` (renumbered from 0), as views: rows of
@@ -141,7 +150,8 @@ class Readings:
             u_voltage=self.u_voltage[a:b], cov_iv=self.cov_iv[a:b], load=self.load[a:b],
             time=self.time[a:b], line=self.line[a:b], source=self.source,
             current_from=self.current_from, voltage_from=self.voltage_from, notes=notes,
-            meta=self.meta)
+            meta=self.meta, errors=None if self.errors is None else self.errors.take(
+                slice(a, b)))
 
     def only_duts(self, names: Sequence[str]) -> "Readings":
         """The readings of the named DUTs, renumbered in the given order."""
@@ -165,7 +175,7 @@ class Readings:
             u_voltage=sub.u_voltage[order], cov_iv=sub.cov_iv[order], load=sub.load[order],
             time=sub.time[order], line=sub.line[order], source=self.source,
             current_from=self.current_from, voltage_from=self.voltage_from, notes=notes,
-            meta=self.meta)
+            meta=self.meta, errors=None if sub.errors is None else sub.errors.take(order))
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -320,9 +330,32 @@ class Readings:
 
         # ---- derive I and V and their uncertainty model
         def acc_u(acc: Accuracy | None, reading: np.ndarray) -> np.ndarray:
+            """Weighting uncertainty: the whole spec as one term, plus the noise."""
             if acc is None:
                 return np.zeros(n)
-            return np.asarray(acc.standard_uncertainty(reading), dtype=np.float64)
+            u = np.asarray(acc.standard_uncertainty(reading), dtype=np.float64)
+            if acc.has_noise:
+                u = np.hypot(u, acc.noise(reading))
+            return u
+
+        def rand_u(acc: Accuracy | None, reading: np.ndarray, col) -> np.ndarray:
+            """Random part: the noise where the spec is shared, else the whole spec."""
+            if acc is None:
+                base = np.zeros(n)
+            elif acc.shared:
+                base = np.asarray(acc.noise(reading), dtype=np.float64) * np.ones(n)
+            else:
+                base = acc_u(acc, reading)
+            return override(base, col)
+
+        def shared_parts(acc: Accuracy | None, reading: np.ndarray, col):
+            """(gain, offset) change of each reading for one standard uncertainty."""
+            if acc is None or not acc.shared or (acc.percent == 0 and acc.offset == 0):
+                return np.zeros(n), np.zeros(n)
+            own = np.zeros(n, bool) if col is None else ~np.isnan(col)
+            gain = np.where(own, 0.0, acc.gain_u * reading)
+            off = np.where(own, 0.0, acc.offset_u)
+            return gain, off
 
         def override(base: np.ndarray, col: np.ndarray | None) -> np.ndarray:
             if col is None:
@@ -347,12 +380,20 @@ class Readings:
         r = arrays.get("load")
         if r is None:
             r = np.full(n, np.nan)
+        zeros = np.zeros(n)
+        dv = np.zeros((4, n))
+        di = np.zeros((4, n))
+        res_dv, res_di = zeros, zeros
         if "voltage" in arrays and "current" in arrays:
             v, i = arrays["voltage"], arrays["current"]
             uv = override(acc_u(voltage_accuracy, v), uv_col)
             ui = override(acc_u(current_accuracy, i), ui_col)
             cov = np.zeros(n)
             current_from = voltage_from = "measured"
+            uv_r, ui_r, cov_r = (rand_u(voltage_accuracy, v, uv_col),
+                                 rand_u(current_accuracy, i, ui_col), zeros)
+            dv[0], dv[1] = shared_parts(voltage_accuracy, v, uv_col)
+            di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
             if "load" in arrays:
                 notes += _cross_check(g, v, i, r, uv, ui, load_u(r), load_tolerance, tol_col,
                                       line_arr)
@@ -387,6 +428,13 @@ class Readings:
                 i[is_open] = 0.0
                 ui[is_open] = 0.0
                 cov[is_open] = 0.0
+                inv_r = np.where(is_open, 0.0, 1.0 / rr)
+                uv_r = rand_u(voltage_accuracy, v, uv_col)
+                res_di = i * ur * inv_r  # one u(R) of the resistor: δI = −I·u(R)/R
+                ui_r = np.hypot(uv_r * inv_r, res_di)
+                cov_r = uv_r * uv_r * inv_r
+                dv[0], dv[1] = shared_parts(voltage_accuracy, v, uv_col)
+                di[0], di[1] = dv[0] * inv_r, dv[1] * inv_r
             current_from, voltage_from = "load", "measured"
         else:  # (R, I): V = I·R
             i = arrays["current"]
@@ -400,6 +448,15 @@ class Readings:
             uv = np.sqrt((r * ui) ** 2 + (i * ur) ** 2)
             cov = r * ui ** 2
             current_from, voltage_from = "measured", "load"
+            ui_r = rand_u(current_accuracy, i, ui_col)
+            res_dv = i * ur
+            uv_r = np.hypot(r * ui_r, res_dv)
+            cov_r = r * ui_r ** 2
+            di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
+            dv[2], dv[3] = di[2] * r, di[3] * r
+        rect = np.array([_is_rect(voltage_accuracy)] * 2 + [_is_rect(current_accuracy)] * 2)
+        shares = bool(dv.any() or di.any() or np.any(res_dv) or np.any(res_di))
+        errors = ErrorModel(uv_r, ui_r, cov_r, dv, di, rect, res_dv, res_di) if shares else None
 
         with np.errstate(over="ignore", invalid="ignore"):
             overflow = ~(np.isfinite(i) & np.isfinite(v) & np.isfinite(ui) & np.isfinite(uv)
@@ -416,11 +473,17 @@ class Readings:
         if g.size > 1 and (g[1:] < g[:-1]).any():
             order = np.argsort(g, kind="stable")
             g, i, v, ui, uv, cov, r, t, ln = (a[order] for a in (g, i, v, ui, uv, cov, r, t, ln))
+            if errors is not None:
+                errors = errors.take(order)
 
         return cls(duts=names, group=g, current=i, voltage=v, u_current=ui, u_voltage=uv,
                    cov_iv=cov, load=r, time=t, line=ln, source=source,
                    current_from=current_from, voltage_from=voltage_from,
-                   notes=tuple(notes), meta=dict(meta or {}))
+                   notes=tuple(notes), meta=dict(meta or {}), errors=errors)
+
+
+def _is_rect(acc: Accuracy | None) -> bool:
+    return acc is None or abs(acc.divisor - math.sqrt(3.0)) < 1e-12
 
 
 def _cross_check(g, v, i, r, uv, ui, ur, load_tolerance, tol_col, line_arr) -> list[Note]:

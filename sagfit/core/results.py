@@ -192,7 +192,8 @@ def _jsonable(x):
 
 
 _ARRAY_FIELDS = ("n", "vth", "u_vth", "rth", "u_rth", "cov_vr", "chi2", "dof", "p_value",
-                 "scale", "k", "isc", "u_isc", "pmax", "u_pmax", "converged", "method")
+                 "scale", "k", "isc", "u_isc", "pmax", "u_pmax", "converged", "method",
+                 "k_rth")
 
 
 @dataclass(frozen=True)
@@ -250,8 +251,11 @@ class Fits:
     extra: Mapping[str, object] = field(default_factory=dict)
     settings: Mapping[str, object] = field(default_factory=dict)
     used_rows: np.ndarray | None = None
+    k_rth: np.ndarray | None = None
 
     def __post_init__(self):
+        if self.k_rth is None:  # one coverage factor for both unless the fit gave two
+            object.__setattr__(self, "k_rth", np.asarray(self.k))
         freeze_arrays(self, _ARRAY_FIELDS)
 
     def __len__(self) -> int:
@@ -298,9 +302,10 @@ class Fits:
     def __getitem__(self, key) -> FitResult:
         i = self.index(key)
         lvl = self.confidence
-        k = float(self.k[i])
+        k_v, k_r = float(self.k[i]), float(self.k_rth[i])
+        k = max(k_v, k_r)  # derived quantities: the larger of the two
 
-        def est(v, u, unit):
+        def est(v, u, unit, k=k):
             v, u = float(v), float(u)
             return Estimate(v, u, v - k * u, v + k * u, lvl, unit)
 
@@ -315,7 +320,8 @@ class Fits:
         extra = {name: col[i] for name, col in self.extra.items() if col[i] is not None}
         return FitResult(
             dut=self.duts[i], n=int(self.n[i]), method=str(self.method[i]),
-            vth=est(self.vth[i], self.u_vth[i], "V"), rth=est(self.rth[i], self.u_rth[i], "Ω"),
+            vth=est(self.vth[i], self.u_vth[i], "V", k_v),
+            rth=est(self.rth[i], self.u_rth[i], "Ω", k_r),
             isc=est(self.isc[i], self.u_isc[i], "A"), pmax=est(self.pmax[i], self.u_pmax[i], "W"),
             corr_vth_rth=corr, cov=cov, chi2=float(self.chi2[i]), dof=int(self.dof[i]),
             p_value=p if math.isfinite(p) else None, scale=float(self.scale[i]),
@@ -404,17 +410,19 @@ class Fits:
         if m == 0:
             return []
         k = self.k
+        k_r = self.k_rth
+        k_d = np.fmax(k, k_r)  # derived quantities: the larger of the two
 
         def col(a):
             return [_f(x) for x in np.asarray(a, dtype=float).tolist()]
 
-        def est(v, u):
+        def est(v, u, k=k_d):
             vv, uu = col(v), col(u)
             lo, hi = col(v - k * u), col(v + k * u)
             return [{"value": a, "u": b, "ci": [c, d]} for a, b, c, d in zip(vv, uu, lo, hi)]
 
         with np.errstate(invalid="ignore", divide="ignore"):
-            vth, rth = est(self.vth, self.u_vth), est(self.rth, self.u_rth)
+            vth, rth = est(self.vth, self.u_vth, k), est(self.rth, self.u_rth, k_r)
             isc, pmax = est(self.isc, self.u_isc), est(self.pmax, self.u_pmax)
             corr = col(self.cov_vr / (self.u_vth * self.u_rth))
             sf = col(np.sqrt(self.scale))

@@ -26,8 +26,11 @@ rectangular half-width, as in :mod:`sagfit.readings`). By default it is drawn on
 used for every DUT, as on a real bench; ``per_dut_loads=True`` draws one per DUT and
 reading position (independent runs, used to check an uncertainty prediction).
 
-Meters: an accuracy ±(p % of reading + offset) is a half-width a. The error of each
-reading is drawn uniform on [−a, a] (``error_distribution="rectangular"``, the default:
+Meters: an accuracy ±(p % of reading + offset) has two parts, a gain error (the % of
+reading) and an offset error. By default (``meter_errors="per_sweep"``) each is drawn
+once per DUT's sweep, uniform within its half-width, as a real meter's calibration
+deviation is one value for a whole sweep; with ``meter_errors="per_reading"`` the error
+of each reading is drawn on its own, uniform on [−a, a] (``error_distribution="rectangular"``, the default:
 the literal reading of the spec, and the same standard uncertainty a/√3 that
 :mod:`sagfit.readings` assigns, GUM JCGM 100:2008 4.3.7), or normal with standard
 deviation a/√3 (``"normal"``). a is evaluated at the true value. Without
@@ -168,13 +171,29 @@ def _dut_names(prefix: str, m: int) -> tuple[str, ...]:
     return tuple(np.char.add(prefix, numbers).tolist())
 
 
-def _meter_error(rng, acc: Accuracy | None, true: np.ndarray, distribution: str):
+def _meter_error(rng, acc: Accuracy | None, true: np.ndarray, distribution: str,
+                 group: np.ndarray | None = None, m: int = 0):
+    """Meter errors of every reading. With ``group`` (per-sweep errors, the default of
+    :func:`simulate`) the gain and the offset error are drawn once per DUT's sweep, each
+    within its half of the spec; without, each reading gets its own draw of the whole
+    half-width. A stated noise adds a normal error per reading."""
     if acc is None or acc.is_zero:
         return np.zeros_like(true)
-    half = acc.percent / 100.0 * np.abs(true) + acc.offset
-    if distribution == "rectangular":
-        return half * rng.uniform(-1.0, 1.0, true.size)
-    return half / math.sqrt(3.0) * rng.standard_normal(true.size)
+
+    def draw(size):
+        if distribution == "rectangular":
+            return rng.uniform(-1.0, 1.0, size)
+        return rng.standard_normal(size) / math.sqrt(3.0)
+
+    if group is None:
+        half = acc.percent / 100.0 * np.abs(true) + acc.offset
+        err = half * draw(true.size)
+    else:
+        w = draw((2, m))
+        err = acc.percent / 100.0 * true * w[0][group] + acc.offset * w[1][group]
+    if acc.has_noise:
+        err = err + acc.noise(true) * rng.standard_normal(true.size)
+    return err
 
 
 def simulate(
@@ -198,6 +217,7 @@ def simulate(
     per_dut_loads: bool = False,
     error_distribution: str = "rectangular",
     dut_names: Sequence[str] | None = None,
+    meter_errors: str = "per_sweep",
 ) -> SimulatedRun:
     """Draw bench readings of ``duts`` DUTs, each read at every load in ``loads``.
 
@@ -239,6 +259,10 @@ def simulate(
         Distribution of the meter errors (same standard uncertainty a/√3 either way).
     dut_names : sequence of str, optional
         Names of the DUTs instead of ``dut_prefix`` + number.
+    meter_errors : {"per_sweep", "per_reading"}
+        ``"per_sweep"`` (default, what a real bench does): each meter's gain and offset
+        error is drawn once per DUT's sweep; ``"per_reading"``: each reading's error is
+        drawn on its own (different meters, or a range change between readings).
 
     Returns
     -------
@@ -332,10 +356,15 @@ def simulate(
     else:
         limited = np.zeros(n, dtype=bool)
 
-    voltage = v_true + _meter_error(rng, voltage_accuracy, v_true, error_distribution)
+    if meter_errors not in ("per_sweep", "per_reading"):
+        raise InputError(f"meter_errors: must be 'per_sweep' or 'per_reading' "
+                         f"(got {meter_errors!r})")
+    sweep = (group, m) if meter_errors == "per_sweep" else (None, 0)
+    voltage = v_true + _meter_error(rng, voltage_accuracy, v_true, error_distribution, *sweep)
     current = None
     if measure_current:
-        current = i_true + _meter_error(rng, current_accuracy, i_true, error_distribution)
+        current = i_true + _meter_error(rng, current_accuracy, i_true, error_distribution,
+                                        *sweep)
 
     settings = {
         "vth": vth if np.ndim(vth) == 0 else "per DUT", "rth": rth if np.ndim(rth) == 0
@@ -343,6 +372,7 @@ def simulate(
         "seed": seed, "voltage_accuracy": voltage_accuracy.text if voltage_accuracy else None,
         "current_accuracy": current_accuracy.text if current_accuracy else None,
         "load_tolerance": load_tolerance, "measure_current": bool(measure_current),
+        "meter_errors": meter_errors,
         "vth_spread": vth_spread, "rth_spread": rth_spread, "knee_current": knee_current,
         "curvature": curvature, "drift": drift, "interval_s": interval_s,
         "per_dut_loads": bool(per_dut_loads), "error_distribution": error_distribution,

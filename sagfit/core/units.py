@@ -161,23 +161,66 @@ class Accuracy:
     ``offset`` is in SI units of the quantity. ``divisor`` turns the half-width into a
     standard uncertainty: √3 for a rectangular distribution (GUM 4.3.7), or the stated
     coverage factor k for a normal one.
+
+    The two parts of the spec are calibration deviations of the meter, not noise: one
+    unknown gain error (the % of reading) and one unknown offset error, each the same for
+    every reading the meter takes on one range in one sweep. With ``shared`` (the
+    default) sagfit models them so (GUM, JCGM 100:2008, 5.2 and F.1.2.1: input quantities
+    correlated through a common effect); ``shared=False`` treats each reading's error as
+    independent of the others' (different meters, a range change mid-sweep, readings
+    days apart). ``noise_percent`` and ``noise_offset`` state the meter's random error
+    per reading (repeatability, resolution), as a standard uncertainty (1σ), independent
+    from reading to reading.
     """
 
     percent: float = 0.0
     offset: float = 0.0
     divisor: float = math.sqrt(3.0)
     text: str = ""
+    shared: bool = True
+    noise_percent: float = 0.0
+    noise_offset: float = 0.0
 
     def standard_uncertainty(self, reading):
-        """Standard uncertainty of each reading (array or float), same unit as the reading."""
+        """Standard uncertainty of each reading from the spec alone (array or float), same
+        unit as the reading: the whole half-width as one rectangular (or normal) term."""
         import numpy as np
 
         half_width = self.percent / 100.0 * np.abs(reading) + self.offset
         return half_width / self.divisor
 
+    def noise(self, reading):
+        """Random standard uncertainty of each reading (the stated noise; 0 if none)."""
+        import numpy as np
+
+        return self.noise_percent / 100.0 * np.abs(reading) + self.noise_offset
+
+    @property
+    def gain_u(self) -> float:
+        """Standard uncertainty of the relative gain error (the % of reading part)."""
+        return self.percent / 100.0 / self.divisor
+
+    @property
+    def offset_u(self) -> float:
+        """Standard uncertainty of the offset error, in the unit of the quantity."""
+        return self.offset / self.divisor
+
+    @property
+    def has_noise(self) -> bool:
+        return self.noise_percent > 0.0 or self.noise_offset > 0.0
+
     @property
     def is_zero(self) -> bool:
-        return self.percent == 0.0 and self.offset == 0.0
+        return self.percent == 0.0 and self.offset == 0.0 and not self.has_noise
+
+    def with_noise(self, noise: "Accuracy") -> "Accuracy":
+        """This spec with the random part ``noise`` (parsed like a spec, read as 1σ)."""
+        return Accuracy(self.percent, self.offset, self.divisor, self.text, self.shared,
+                        noise.percent, noise.offset)
+
+    def with_shared(self, shared: bool) -> "Accuracy":
+        return Accuracy(self.percent, self.offset, self.divisor, self.text, bool(shared),
+                        self.noise_percent, self.noise_offset)
 
 
 def parse_accuracy(text: str, dimension: str, *, what: str = "accuracy") -> Accuracy:
