@@ -8,7 +8,7 @@ import pathlib
 import numpy as np
 import pytest
 
-from sagfit.core.budget import budget_arrays, budgets
+from sagfit.core.budget import GROUPS, budget_arrays, budgets
 from sagfit.core.fit import fit_lines, york_line
 from sagfit.core.readings import Readings
 
@@ -60,8 +60,10 @@ def _pack(seed=3, n_duts=1, noise=1.0):
         rows_d += [f"P{d:03d}"] * 6
     from sagfit.core.units import parse_accuracy
 
+    # independent errors: these tests check the linearisation of the classic budget
     return Readings.from_arrays(voltage=rows_v, load=rows_r, dut=rows_d, load_tolerance=1.0,
-                                voltage_accuracy=parse_accuracy("0.015%+2mV", "V"))
+                                voltage_accuracy=parse_accuracy("0.015%+2mV",
+                                                                "V").with_shared(False))
 
 
 class TestCombinedEqualsFit:
@@ -181,7 +183,8 @@ class TestAgainstFiniteDifferences:
         cur = np.array([0.5, 1.0, 1.5, 2.0, 2.5])
         r = np.array([9.9, 4.9, 3.2, 2.4, 1.9])
         rd = Readings.from_arrays(current=cur, load=r, load_tolerance=0.5,
-                                  current_accuracy=parse_accuracy("0.1%+1mA", "A"))
+                                  current_accuracy=parse_accuracy("0.1%+1mA",
+                                                                  "A").with_shared(False))
         fits = fit_lines(rd)
         b = budget_arrays(rd, fits)
         assert b.contribution[("vth", "voltage")][0] == 0.0
@@ -262,8 +265,9 @@ class TestJson:
 
 
 class TestShapes:
+    @pytest.mark.parametrize("shared", [False, True], ids=["independent", "shared"])
     @pytest.mark.parametrize("mode", ["vi", "rv", "ri"])
-    def test_any_shape_closes_to_the_fit(self, mode):
+    def test_any_shape_closes_to_the_fit(self, mode, shared):
         """For random numbers of DUTs and readings, in each column layout, the groups add up
         to the reported u(Vth) and u(Rth) of every fitted DUT."""
         from hypothesis import given, settings
@@ -288,15 +292,16 @@ class TestShapes:
                     "ri": ("load", "current")}[mode]
             rd = Readings.from_arrays(**{k: cols[k] for k in keys}, dut=cols["dut"],
                                       load_tolerance=1.0,
-                                      voltage_accuracy=parse_accuracy("0.05%+2mV", "V"),
-                                      current_accuracy=parse_accuracy("0.2%+1mA", "A"))
+                                      voltage_accuracy=parse_accuracy(
+                                          "0.05%+2mV", "V").with_shared(shared),
+                                      current_accuracy=parse_accuracy(
+                                          "0.2%+1mA", "A").with_shared(shared))
             fits = fit_lines(rd)
             b = budget_arrays(rd, fits)
             ok = fits.ok
             assert np.all(b.valid == ok)
             for y, u in (("vth", fits.u_vth), ("rth", fits.u_rth)):
-                tot = np.sqrt(sum(b.contribution[(y, g)] ** 2
-                                  for g in ("voltage", "current", "load", "scale")))
+                tot = np.sqrt(sum(b.contribution[(y, g)] ** 2 for g in ("type_a",) + GROUPS))
                 np.testing.assert_allclose(tot[ok], u[ok], rtol=1e-9)
             json.dumps(budgets(rd, fits), allow_nan=False)
 

@@ -149,12 +149,18 @@ class TestWarningsAndCautions:
         assert set(d["predicted"]) >= {"u_vth", "u_rth"}
 
 
+# meters with a stated noise: the plan then predicts with the shared-error model, and the
+# simulation draws the same bench (gain and offset once per sweep, noise per reading)
+VA_N = VA.with_noise(parse_accuracy("0.3mV", "V"))
+IA_N = IA.with_noise(parse_accuracy("0.5mA", "A"))
+
+
 def _scatter(p, runs, *, seed, measure_current, tol):
-    run = simulate(p.vth, p.rth, p.load, duts=runs, seed=seed, voltage_accuracy=VA,
-                   current_accuracy=IA if measure_current else None, load_tolerance=tol,
+    run = simulate(p.vth, p.rth, p.load, duts=runs, seed=seed, voltage_accuracy=VA_N,
+                   current_accuracy=IA_N if measure_current else None, load_tolerance=tol,
                    measure_current=measure_current, per_dut_loads=True)
-    fits = fit_lines(run.to_readings(voltage_accuracy=VA,
-                                     current_accuracy=IA if measure_current else None,
+    fits = fit_lines(run.to_readings(voltage_accuracy=VA_N,
+                                     current_accuracy=IA_N if measure_current else None,
                                      load_tolerance=tol))
     return np.std(fits.vth, ddof=1), np.std(fits.rth, ddof=1)
 
@@ -167,8 +173,8 @@ class TestPrediction:
     def test_predicted_uncertainty_matches_simulated_scatter(self, measure_current):
         """The predicted u(Rth) and u(Vth) match the scatter of 2,000 simulated runs of the
         plan (resistors drawn per run) within Monte-Carlo error."""
-        kw = dict(current_accuracy=IA) if measure_current else {}
-        p = plan(12.6, 0.05, max_current=20, series="E24", points=7, voltage_accuracy=VA,
+        kw = dict(current_accuracy=IA_N) if measure_current else {}
+        p = plan(12.6, 0.05, max_current=20, series="E24", points=7, voltage_accuracy=VA_N,
                  load_tolerance=2.0, **kw)
         sd_v, sd_r = _scatter(p, 2000, seed=61, measure_current=measure_current, tol=2.0)
         # the standard deviation of 2,000 draws has a relative standard error of 1.6 %;

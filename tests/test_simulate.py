@@ -106,12 +106,25 @@ class TestModel:
     def test_meter_errors_have_the_spec_standard_uncertainty(self, dist):
         """Voltmeter errors have standard deviation a/√3 for either distribution."""
         run = simulate(10.0, 0.1, [math.inf], duts=20000, voltage_accuracy=VA, seed=5,
-                       error_distribution=dist)
+                       error_distribution=dist, meter_errors="per_reading")
         err = run.voltage_V - run.true_voltage_V
         a = 0.0005 * 10.0 + 0.002
         assert abs(err.std() / (a / math.sqrt(3)) - 1) < 0.03
         if dist == "rectangular":
             assert np.abs(err).max() <= a
+
+    @pytest.mark.reference("JCGM 100:2008 (GUM) 4.3.7 and F.1.2.1: a gain and an offset "
+                           "error, each rectangular, shared by one sweep")
+    def test_per_sweep_errors_are_one_gain_and_one_offset(self):
+        """By default each DUT's sweep has one gain and one offset error: the error of a
+        reading is g·V + o, with g and o each within their half of the spec."""
+        run = simulate(10.0, 0.1, [math.inf, math.inf, math.inf], duts=20000,
+                       voltage_accuracy=VA, seed=5)
+        err = (run.voltage_V - run.true_voltage_V).reshape(-1, 3)
+        assert np.ptp(err, axis=1).max() < 1e-12            # the same in one sweep
+        a_gain, a_off = 0.0005 * 10.0, 0.002
+        assert abs(err[:, 0].std() / math.sqrt((a_gain ** 2 + a_off ** 2) / 3) - 1) < 0.03
+        assert np.abs(err).max() <= a_gain + a_off
 
     def test_spreads_have_the_stated_relative_deviation(self):
         """vth_spread and rth_spread are relative standard deviations across DUTs."""
@@ -153,8 +166,9 @@ class TestRoundTrip:
                        load_tolerance=1.0, per_dut_loads=True, vth_spread=0.01,
                        rth_spread=0.1)
         fits = fit_lines(run.to_readings(voltage_accuracy=VA, load_tolerance=1.0))
-        for est, true, u in ((fits.vth, run.vth, fits.u_vth), (fits.rth, run.rth, fits.u_rth)):
-            covered = np.abs(est - true) <= fits.k * u
+        for est, true, u, k in ((fits.vth, run.vth, fits.u_vth, fits.k),
+                                (fits.rth, run.rth, fits.u_rth, fits.k_rth)):
+            covered = np.abs(est - true) <= k * u
             assert 0.93 <= covered.mean() <= 0.98
 
     def test_measured_current_round_trip(self):
@@ -165,7 +179,7 @@ class TestRoundTrip:
         fits = fit_lines(run.to_readings(voltage_accuracy=VA, current_accuracy=IA,
                                          load_tolerance=1.0))
         assert set(fits.method) == {"york"}
-        covered = np.abs(fits.rth - run.rth) <= fits.k * fits.u_rth
+        covered = np.abs(fits.rth - run.rth) <= fits.k_rth * fits.u_rth
         assert 0.92 <= covered.mean() <= 0.99
 
 

@@ -43,8 +43,11 @@ Per group, the budget gives the root-sum-square c = √Σc_i² of the per-readin
 sensitivity coefficients and the sensitivity-weighted rms input uncertainty
 u = √(Σc_i²u_i² / Σc_i²), so that the contribution is u_i(y) = c·u, as in a GUM table.
 
-Assumption, as in the fit: each reading's error is independent of the others'. A gain
-error common to every reading of one meter is not in this model (see docs/report.md).
+With an accuracy spec shared by a sweep (the default), the voltage and current rows hold
+the random part only (the stated noise), the load row adds the sharing between repeats
+at one resistor, the Type A row is the scatter where it exceeds the stated random part,
+and one row per shared meter component (voltmeter gain and offset, ammeter gain and
+offset) gives its effect on Vth and Rth (:mod:`sagfit.core.systematic`).
 """
 
 from __future__ import annotations
@@ -58,18 +61,21 @@ from ._parallel import gc_paused
 from .fit import _groupsum, _spread, york_state
 from .readings import Readings
 from .results import Fits
+from .systematic import COMPONENT_LABELS, COMPONENTS
 
 __all__ = ["Budget", "budget_arrays", "budgets", "GROUPS", "GROUP_LABELS"]
 
-GROUPS = ("voltage", "current", "load", "scale")
+GROUPS = ("voltage", "current", "load", "scale") + COMPONENTS
 GROUP_LABELS = {
+    **COMPONENT_LABELS,
     "voltage": "voltage readings",
     "current": "current readings",
     "load": "load resistors",
     "scale": "excess scatter (scale factor S)",
     "type_a": "scatter of the readings (Type A)",
 }
-_INPUT_UNIT = {"voltage": "V", "current": "A", "load": "Ω", "scale": "", "type_a": "V"}
+_INPUT_UNIT = {"voltage": "V", "current": "A", "load": "Ω", "scale": "", "type_a": "V",
+               "v_gain": "", "v_offset": "V", "i_gain": "", "i_offset": "A"}
 _SENS_UNIT = {  # unit of ∂y/∂x for y in (vth, rth)
     ("vth", "voltage"): "V/V", ("vth", "current"): "V/A", ("vth", "load"): "V/Ω",
     ("rth", "voltage"): "Ω/V", ("rth", "current"): "Ω/A", ("rth", "load"): "Ω/Ω",
@@ -162,6 +168,14 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
     b = -np.asarray(fits.rth, float)
     bb = _spread(g, b)
     st = york_state(g, x, y, sxx, syy, sxy, m, b)
+    prop = None
+    if readings.errors is not None:  # shared meter and resistor errors (systematic.py)
+        from .systematic import propagate
+
+        er = readings.errors.take(keep)
+        with np.errstate(all="ignore"):
+            prop = propagate(g, x, y, load, er, st, m, fits.n, fits.confidence)
+        ui, uv, cv = er.u_current, er.u_voltage, er.cov_iv  # the random part, per group
     w, sw, ua, q, xbar_adj = st["weights"], st["sw"], st["ua"], st["q"], st["xbar_adj"]
     a_chk, var_a, var_b = st["a"], st["var_a"], st["var_b"]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -229,6 +243,9 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
                     n_input[gname] = np.zeros(m, np.int64)
     u_ap = {"vth": np.where(valid, np.sqrt(var_a), np.nan),
             "rth": np.where(valid, np.sqrt(var_b), np.nan)}
+    if prop is not None:
+        return _shared_budget(fits, prop, valid, type_a, method, contribution, sensitivity,
+                              u_input, n_input, u_ap, reason)
     scale = np.where(np.isfinite(fits.scale), fits.scale, 1.0)
     s2 = np.where(type_a, 1.0, np.maximum(scale, 1.0))
     u_comb = {}
@@ -246,9 +263,57 @@ def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
         u_comb[yname] = np.where(type_a, s * u_ap[yname], np.sqrt(s2) * u_ap[yname])
     n_input["scale"] = np.zeros(m, np.int64)
     n_input["type_a"] = np.where(type_a, fits.n, 0)
+    for name in COMPONENTS:  # no shared meter errors in this model
+        n_input[name] = np.zeros(m, np.int64)
+        for yname in ("vth", "rth"):
+            contribution[(yname, name)] = zeros
+            sensitivity[(yname, name)] = np.full(m, np.nan)
+            u_input[(yname, name)] = np.full(m, np.nan)
     return Budget(duts=fits.duts, valid=valid, type_a=type_a, method=method,
                   contribution=contribution, sensitivity=sensitivity, u_input=u_input,
                   n_input=n_input, u_apriori=u_ap, u_combined=u_comb, scale=s2, reason=reason)
+
+
+def _shared_budget(fits, prop, valid, type_a, method, contribution, sensitivity, u_input,
+                   n_input, u_ap, reason) -> Budget:
+    """The budget under shared meter errors: random rows (or the Type A scatter where it
+    exceeds them), the resistors with their repeats' sharing, and one row per shared
+    meter component; the rows add in quadrature to the reported u."""
+    m = len(fits)
+    st = valid & ~type_a
+    use_a = prop.use_type_a
+    u_comb = {}
+    for j, yname in enumerate(("vth", "rth")):
+        for gname in ("voltage", "current"):
+            contribution[(yname, gname)] = np.where(st & ~use_a,
+                                                    contribution[(yname, gname)], 0.0)
+        load2 = contribution[(yname, "load")] ** 2 + prop.resistor_sharing[j]
+        contribution[(yname, "load")] = np.where(st & ~use_a,
+                                                 np.sqrt(np.maximum(load2, 0.0)), 0.0)
+        contribution[(yname, "scale")] = np.zeros(m)
+        ua = np.sqrt(np.maximum(np.nan_to_num(prop.type_a[j]), 0.0))
+        contribution[(yname, "type_a")] = np.where(valid & (use_a | type_a), ua, 0.0)
+        sensitivity[(yname, "type_a")] = np.full(m, np.nan)
+        u_input[(yname, "type_a")] = np.full(m, np.nan)
+        for name in COMPONENTS:
+            if name in prop.components:
+                c = np.abs(prop.components[name][j])
+                contribution[(yname, name)] = np.where(st, c, 0.0)
+            else:
+                contribution[(yname, name)] = np.zeros(m)
+            sensitivity[(yname, name)] = np.full(m, np.nan)
+            u_input[(yname, name)] = np.full(m, np.nan)
+        u_comb[yname] = np.where(valid, np.sqrt(np.maximum(prop.total[j], 0.0)), np.nan)
+        u_comb[yname] = np.where(type_a, np.asarray(fits.u_vth if j == 0 else fits.u_rth),
+                                 u_comb[yname])
+    for name in COMPONENTS:
+        n_input[name] = np.where(st & (name in prop.components), fits.n, 0)
+    n_input["type_a"] = np.where(use_a | type_a, fits.n, 0)
+    n_input["scale"] = np.zeros(m, np.int64)
+    return Budget(duts=fits.duts, valid=valid, type_a=type_a, method=method,
+                  contribution=contribution, sensitivity=sensitivity, u_input=u_input,
+                  n_input=n_input, u_apriori=u_ap, u_combined=u_comb, scale=np.ones(m),
+                  reason=reason)
 
 
 def _num(x) -> float | None:
@@ -268,7 +333,7 @@ def budgets(readings: Readings, fits: Fits, *, used=None) -> list[dict | None]:
     """
     bud = budget_arrays(readings, fits, used=used)
     out: list[dict | None] = [None] * len(fits)
-    names_stated = ("voltage", "current", "load", "scale")
+    names_stated = GROUPS
     # plain Python lists: indexing them in the per-DUT loop is ~10x cheaper than numpy
     dom = {y: bud.dominant(y).tolist() for y in ("vth", "rth")}
     contrib = {key: col.tolist() for key, col in bud.contribution.items()}
@@ -284,7 +349,7 @@ def budgets(readings: Readings, fits: Fits, *, used=None) -> list[dict | None]:
         for y, unit in (("vth", "V"), ("rth", "Ω")):
             total = u_cb[y][k]
             comps = []
-            for gname in (("type_a",) if type_a[k] else names_stated):
+            for gname in (("type_a",) if type_a[k] else ("type_a",) + names_stated):
                 c = contrib[(y, gname)][k]
                 if not c > 0:
                     continue

@@ -371,6 +371,7 @@ def plan(
 
     # ---- predicted uncertainties from the fit's covariance at the planned points
     u_vth = u_rth = u_ends = u_meters = math.nan
+    floor_note = None
     if voltage_accuracy is None:
         warnings.append("no voltmeter accuracy given (--voltage-accuracy): the uncertainties "
                         "cannot be predicted")
@@ -385,6 +386,13 @@ def plan(
             warnings.append("no resistor tolerance given (--load-tolerance): the prediction "
                             "treats the resistors as exact, which understates u(Rth) when the "
                             "current is computed from the load")
+        floor = vth_floor(voltage_accuracy, vth)
+        if floor > 0 and math.isfinite(u_vth) and floor >= 0.5 * u_vth:
+            floor_note = (f"u(Vth) cannot go below about {format_value(floor, 'V', 2)} with this "
+                         "voltmeter, however many readings: it is its calibration (gain and "
+                         "offset shared by the sweep). A better meter, not more readings, "
+                         "reduces it; u(Rth) is not limited the same way (an offset shared by "
+                          "every reading does not change a slope)")
         if math.isfinite(u_rth) and u_rth > 0.1 * rth:
             warnings.append(f"Rth will be poorly resolved: predicted u(Rth) = "
                             f"{format_value(u_rth, 'Ω', 2)}, {u_rth / rth:.0%} of the expected "
@@ -395,6 +403,8 @@ def plan(
     notes = _notes(vth, rth, top, i_cap, u_rth, u_ends, u_meters, n_loaded, measure_current,
                    load_tolerance, _binding(vth, rth, top, i_cap, p_allow, have is None),
                    current_accuracy)
+    if floor_note:
+        notes = type(notes)(list(notes) + [floor_note])
     cautions = _cautions(vth, isc, cur, volt, pwr, src_pwr, top, battery, max_power,
                          derating, (loads_r == 0).any())
     settings = {
@@ -439,12 +449,36 @@ def _predict(loads_r, cur, volt, n_loaded, va, ia, tol, measure_current):
         kw["current"] = i
     try:
         fits = fit_lines(Readings.from_arrays(**kw))
+        urth, uvth = np.array(fits.u_rth, float), np.array(fits.u_vth, float)
+        # A meter whose noise is not stated: its spec also bounds the per-reading error,
+        # which noise-free planned readings cannot show; take the larger prediction of the
+        # shared model (calibration parts, the floor of u(Vth)) and the independent one.
+        quiet = [a for a in (kw["voltage_accuracy"], kw["current_accuracy"])
+                 if a is not None and a.shared and not a.has_noise]
+        if quiet:
+            kw2 = dict(kw, voltage_accuracy=_independent(kw["voltage_accuracy"]),
+                       current_accuracy=_independent(kw["current_accuracy"]))
+            alt = fit_lines(Readings.from_arrays(**kw2))
+            urth = np.fmax(urth, alt.u_rth)
+            uvth = np.fmax(uvth, alt.u_vth)
     except InputError:
         return (math.nan,) * 4
-    u = [math.nan if fits.error[k] is not None else float(fits.u_rth[k]) for k in range(3)]
-    u_vth = math.nan if fits.error[0] is not None else float(fits.u_vth[0])
+    u = [math.nan if fits.error[k] is not None else float(urth[k]) for k in range(3)]
+    u_vth = math.nan if fits.error[0] is not None else float(uvth[0])
     meters = u[2] if (tol or 0) > 0 and not measure_current else math.nan
     return u_vth, u[0], u[1], meters
+
+
+def _independent(acc):
+    return None if acc is None or acc.has_noise else acc.with_shared(False)
+
+
+def vth_floor(voltage_accuracy: Accuracy | None, vth: float) -> float:
+    """The part of u(Vth) no number of readings removes: the voltmeter's shared gain and
+    offset errors (GUM 5.2; see sagfit.core.systematic)."""
+    if voltage_accuracy is None or not voltage_accuracy.shared:
+        return 0.0
+    return math.hypot(voltage_accuracy.gain_u * abs(vth), voltage_accuracy.offset_u)
 
 
 def _binding(vth, rth, top, i_cap, p_allow, from_series):

@@ -455,7 +455,8 @@ class Readings:
             di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
             dv[2], dv[3] = di[2] * r, di[3] * r
         rect = np.array([_is_rect(voltage_accuracy)] * 2 + [_is_rect(current_accuracy)] * 2)
-        shares = bool(dv.any() or di.any() or np.any(res_dv) or np.any(res_di))
+        shares = bool(dv.any() or di.any()) or (
+            bool(np.any(res_dv) or np.any(res_di)) and _repeats_a_load(g, r))
         errors = ErrorModel(uv_r, ui_r, cov_r, dv, di, rect, res_dv, res_di) if shares else None
 
         with np.errstate(over="ignore", invalid="ignore"):
@@ -480,6 +481,15 @@ class Readings:
                    cov_iv=cov, load=r, time=t, line=ln, source=source,
                    current_from=current_from, voltage_from=voltage_from,
                    notes=tuple(notes), meta=dict(meta or {}), errors=errors)
+
+
+def _repeats_a_load(g: np.ndarray, r: np.ndarray) -> bool:
+    """Whether any DUT reads the same (finite) load value twice: one resistor, used twice."""
+    fin = np.isfinite(r)
+    if not fin.any():
+        return False
+    pairs = np.unique(np.stack([g[fin].astype(np.float64), r[fin]]), axis=1)
+    return pairs.shape[1] < int(fin.sum())
 
 
 def _is_rect(acc: Accuracy | None) -> bool:
