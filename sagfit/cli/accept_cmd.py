@@ -12,7 +12,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
+from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
                      VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, settings_record, show_progress, write_document)
 
@@ -32,6 +32,9 @@ def accept_command(
     voltage_accuracy: VoltageAccOpt = None,
     current_accuracy: CurrentAccOpt = None,
     load_tolerance: LoadTolOpt = None,
+    voltage_noise: VoltageNoiseOpt = None,
+    current_noise: CurrentNoiseOpt = None,
+    independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
@@ -56,7 +59,9 @@ def accept_command(
         if confidence is None:
             confidence = the_spec.decision.confidence
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
-                                confidence)
+                                confidence, voltage_noise=voltage_noise,
+                                current_noise=current_noise,
+                                independent_errors=independent_errors)
         check_out_option(out, inputs)
         with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             readings = load_readings(file, settings, dut)

@@ -23,6 +23,15 @@ CurrentAccOpt = Annotated[Optional[str], typer.Option(
     "--current-accuracy", help="Ammeter spec, e.g. '0.2%+1mA'.")]
 LoadTolOpt = Annotated[Optional[str], typer.Option(
     "--load-tolerance", help="Load resistor tolerance, e.g. '1%'.")]
+VoltageNoiseOpt = Annotated[Optional[str], typer.Option(
+    "--voltage-noise", help="Voltmeter noise per reading, a standard deviation, e.g. '50uV' "
+                            "or '0.001%+20uV' (independent from reading to reading).")]
+CurrentNoiseOpt = Annotated[Optional[str], typer.Option(
+    "--current-noise", help="Ammeter noise per reading, a standard deviation, e.g. '0.2mA'.")]
+IndependentOpt = Annotated[bool, typer.Option(
+    "--independent-errors", help="Treat each reading's meter error as independent (different "
+                                 "meters, a range change mid-sweep, readings days apart) "
+                                 "instead of one gain and one offset error per sweep.")]
 BenchOpt = Annotated[Optional[str], typer.Option(
     "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document to stdout.")]
@@ -60,7 +69,8 @@ def guarded(source: str = "") -> Iterator[None]:
 
 
 def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=None,
-                 bench=None, confidence=None) -> dict:
+                 bench=None, confidence=None, *, voltage_noise=None, current_noise=None,
+                 independent_errors=False) -> dict:
     """Merge the command-line options over a bench profile into fit settings."""
     from ..core.units import parse_accuracy, parse_percent
 
@@ -89,6 +99,22 @@ def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=No
                "--current-accuracy" if current_accuracy and "A" in str(exc) else
                "--load-tolerance")
         raise OptionError(opt, str(exc).split(": ", 1)[-1]) from None
+    for key, text, dim, opt in (("voltage_accuracy", voltage_noise, "V", "--voltage-noise"),
+                                ("current_accuracy", current_noise, "A", "--current-noise")):
+        if text is None:
+            continue
+        if settings[key] is None:
+            raise OptionError(opt, f"give the meter's accuracy as well (--{key.replace('_', '-')})"
+                                   ": the noise is its random part")
+        try:
+            noise = parse_accuracy(text, dim, what=opt)
+        except InputError as exc:
+            raise OptionError(opt, str(exc).split(": ", 1)[-1]) from None
+        settings[key] = settings[key].with_noise(noise)
+    if independent_errors:
+        for key in ("voltage_accuracy", "current_accuracy"):
+            if settings[key] is not None:
+                settings[key] = settings[key].with_shared(False)
     if settings["load_tolerance"] is not None and not 0 <= settings["load_tolerance"] < 100:
         raise OptionError("--load-tolerance", "must be between 0 % and 100 %")
     if confidence is not None:
@@ -102,7 +128,10 @@ def settings_record(settings: dict) -> dict:
     """The settings as plain JSON values (for outputs, reports and the history)."""
     def acc(a):
         return None if a is None else {"text": a.text, "percent": a.percent, "offset": a.offset,
-                                       "divisor": a.divisor}
+                                       "divisor": a.divisor,
+                                       "errors": "shared" if a.shared else "independent",
+                                       "noise_percent": a.noise_percent,
+                                       "noise_offset": a.noise_offset}
     return {"confidence": settings["confidence"],
             "voltage_accuracy": acc(settings["voltage_accuracy"]),
             "current_accuracy": acc(settings["current_accuracy"]),

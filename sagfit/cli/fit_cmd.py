@@ -7,7 +7,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
+from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
                      VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_document)
@@ -23,6 +23,9 @@ def fit_command(
     voltage_accuracy: VoltageAccOpt = None,
     current_accuracy: CurrentAccOpt = None,
     load_tolerance: LoadTolOpt = None,
+    voltage_noise: VoltageNoiseOpt = None,
+    current_noise: CurrentNoiseOpt = None,
+    independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
@@ -50,7 +53,9 @@ def fit_command(
         from ..core.errors import OptionError
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
-                                confidence)
+                                confidence, voltage_noise=voltage_noise,
+                                current_noise=current_noise,
+                                independent_errors=independent_errors)
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")

@@ -9,7 +9,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
+from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
                      VoltageAccOpt, fit_settings, guarded, interactive, load_readings, progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
@@ -34,6 +34,9 @@ def record_command(
     voltage_accuracy: VoltageAccOpt = None,
     current_accuracy: CurrentAccOpt = None,
     load_tolerance: LoadTolOpt = None,
+    voltage_noise: VoltageNoiseOpt = None,
+    current_noise: CurrentNoiseOpt = None,
+    independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
     json_out: JsonOpt = False,
 ) -> None:
@@ -47,7 +50,9 @@ def record_command(
         inputs = [file] + ([bench] if bench else [])
         check_db_path(db, inputs)
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
-                                confidence)
+                                confidence, voltage_noise=voltage_noise,
+                                current_noise=current_noise,
+                                independent_errors=independent_errors)
         with progress("reading " + file, show_progress(file, json_out), total=2) as step:
             readings = load_readings(file, settings, None)
             labels = dict(zip(readings.duts, dut_group_labels(readings)))

@@ -10,7 +10,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, fit_settings,
+from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, fit_settings,
                      guarded, interactive, progress, write_document, write_stdout)
 
 INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
@@ -317,6 +317,9 @@ def plan_command(
     voltage_accuracy: VoltageAccOpt = None,
     current_accuracy: CurrentAccOpt = None,
     load_tolerance: LoadTolOpt = None,
+    voltage_noise: VoltageNoiseOpt = None,
+    current_noise: CurrentNoiseOpt = None,
+    independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
     have: Annotated[Optional[str], typer.Option(
         "--have", help="Your own resistors instead of a series, e.g. '1,2.2,4.7,10'.")] = None,
@@ -332,7 +335,9 @@ def plan_command(
     with guarded("plan"):
         from ..core.planning import plan
 
-        settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench)
+        settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
+                                voltage_noise=voltage_noise, current_noise=current_noise,
+                                independent_errors=independent_errors)
         from ..core.errors import InputError
 
         try:

@@ -559,6 +559,8 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
 
     nan = np.where(bad, np.nan, 1.0)
     flags = _basic_flags(readings, m, bad, stated, scale, dof, res["converged"])
+    if prop is not None:
+        flags = _calibration_flags(flags, prop, stated & ~bad)
     return Fits(
         duts=readings.duts, n=n, method=method, vth=vth * nan, u_vth=np.sqrt(var_v) * nan,
         rth=rth * nan, u_rth=np.sqrt(var_r) * nan, cov_vr=cov_vr * nan, chi2=chi2 * nan,
@@ -567,6 +569,41 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
         converged=res["converged"] & ~bad, error=tuple(errors), flags=flags,
         confidence=float(confidence), extra=extra, k_rth=k_rth,
         settings={"confidence": float(confidence), "source": readings.source})
+
+
+_METER = {"v_gain": "voltmeter", "v_offset": "voltmeter", "i_gain": "ammeter",
+          "i_offset": "ammeter"}
+
+
+def _calibration_flags(flags, prop, sel):
+    """An info flag where one meter's shared (calibration) errors make up more than half of
+    the variance of Vth or Rth: more readings will not reduce it, a better meter will."""
+    names = list(prop.components)
+    if not names:
+        return flags
+    # per DUT one code for (Vth's meter, Rth's meter), 0 = not limited; one shared tuple
+    # of flags per code, so a large batch builds a handful of Flag objects
+    meters = ("voltmeter", "ammeter")
+    code = np.zeros(sel.size, np.int64)
+    for j in (0, 1):
+        by_meter = [sum((prop.components[nm][j] ** 2 for nm in names if _METER[nm] == mt),
+                        np.zeros(sel.size)) for mt in meters]
+        stack = np.vstack(by_meter)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            limited = sel & (np.max(stack, axis=0) / prop.total[j] > 0.5)
+        code += np.where(limited, 1 + np.argmax(stack, axis=0), 0) * (3 ** j)
+    extra = {}
+    for c in np.unique(code[code > 0]).tolist():
+        fl = []
+        for j, q in enumerate(("Vth", "Rth")):
+            which = (c // 3 ** j) % 3
+            if which:
+                fl.append(Flag("calibration-limited", "info",
+                               f"{q} is limited by the {meters[which - 1]}'s calibration: a "
+                               "better meter, not more readings, reduces it"))
+        extra[c] = tuple(fl)
+    out = [f if c == 0 else tuple(f) + extra[c] for f, c in zip(flags, code.tolist())]
+    return tuple(out)
 
 
 def _uncertainty_rows(prop, sel, k, k_rth) -> list:

@@ -4,6 +4,9 @@ Edge module (reads one file). Format, in docs/input-format.md::
 
     [voltage]
     accuracy = "0.015%+2mV"      # ±(% of reading + offset), a rectangular half-width
+    noise = "50uV"               # optional: random error per reading, a standard deviation
+    errors = "shared"            # optional: "shared" (default: one gain and one offset
+                                 # error per sweep) or "independent" (per reading)
     instrument = "DMM-T2"        # optional: identifier, for the report's traceability list
     calibration_due = 2027-05-01 # optional: a TOML date
     [current]
@@ -26,8 +29,10 @@ from ..core.units import Accuracy, parse_accuracy, parse_percent
 __all__ = ["BenchProfile", "Instrument", "read_bench"]
 
 _ALLOWED = {
-    "voltage": {"accuracy", "instrument", "calibration_due", "distribution", "k"},
-    "current": {"accuracy", "instrument", "calibration_due", "distribution", "k"},
+    "voltage": {"accuracy", "instrument", "calibration_due", "distribution", "k", "noise",
+                "errors"},
+    "current": {"accuracy", "instrument", "calibration_due", "distribution", "k", "noise",
+                "errors"},
     "load": {"tolerance", "instrument", "calibration_due"},
     "fit": {"confidence"},
     "bench": {"name", "operator", "location", "notes"},
@@ -88,7 +93,20 @@ def read_bench(path: str) -> BenchProfile:
             elif "k" in sec:
                 raise SpecFileError(path, "k applies only with distribution = 'normal'",
                                     key=f"{role}.k")
-            out[f"{role}_accuracy"] = acc
+            if "noise" in sec:
+                if not isinstance(sec["noise"], str):
+                    raise SpecFileError(path, "write the noise as a string, e.g. \"50uV\"",
+                                        key=f"{role}.noise")
+                try:
+                    acc = acc.with_noise(parse_accuracy(sec["noise"], dim, what=f"{role}.noise"))
+                except InputError as exc:
+                    raise SpecFileError(path, str(exc), key=f"{role}.noise") from None
+            errors = sec.get("errors", "shared")
+            if errors not in ("shared", "independent"):
+                raise SpecFileError(path, "must be 'shared' (one gain and one offset error per "
+                                    "sweep) or 'independent' (per reading)",
+                                    key=f"{role}.errors")
+            out[f"{role}_accuracy"] = acc.with_shared(errors == "shared")
         instruments += _instrument(path, role, sec)
     sec = doc.get("load", {})
     if "tolerance" in sec:
