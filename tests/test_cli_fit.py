@@ -48,7 +48,20 @@ class TestJson:
         b = json.loads(cli("fit", PACK, "--bench", BENCH, "--json", "--confidence", "0.99")
                        .out)["results"][0]["vth"]
         wa, wb = a["ci"][1] - a["ci"][0], b["ci"][1] - b["ci"][0]
-        assert wb / wa == pytest.approx(2.5758293035489 / 1.959963984540054, rel=1e-9)
+        # the bench's meters are shared by the sweep: k comes from the distribution of the
+        # sum (a rectangular part, Type A with ν = n − 2), not from z alone; the interval
+        # still widens, and it is the value ± k·u of the stated k
+        assert wb > 1.2 * wa
+        ka = json.loads(cli("fit", PACK, "--bench", BENCH, "--json").out)["results"][0][
+            "coverage_factor"]
+        assert wa == pytest.approx(2 * ka * a["u"], rel=1e-9)
+        c = json.loads(cli("fit", PACK, "--bench", BENCH, "--json", "--independent-errors",
+                           "--confidence", "0.99").out)["results"][0]["vth"]
+        d = json.loads(cli("fit", PACK, "--bench", BENCH, "--json", "--independent-errors")
+                       .out)["results"][0]["vth"]
+        # independent errors: the normal quantile ratio, as before
+        assert (c["ci"][1] - c["ci"][0]) / (d["ci"][1] - d["ci"][0]) == pytest.approx(
+            2.5758293035489 / 1.959963984540054, rel=1e-9)
 
 
 class TestLargeBatchJson:
@@ -208,7 +221,8 @@ class TestTraceability:
         bud = doc["results"][0]["budget"]["vth"]
         total = sum(c["contribution"] ** 2 for c in bud["components"]) ** 0.5
         assert total == pytest.approx(bud["u_combined"], rel=1e-9)
-        assert bud["dominant"] in {"voltage", "current", "load", "scale"}
+        assert bud["dominant"] in {"voltage", "current", "load", "scale", "type_a", "v_gain",
+                                   "v_offset", "i_gain", "i_offset"}
 
 
 class TestCautions:

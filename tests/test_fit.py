@@ -330,7 +330,8 @@ def _simulate(n, seed, vth, rth, loads, uv, tol_pct, uniform_r=True):
 
         run = simulate(vth, rth, list(loads), duts=n, seed=seed, per_dut_loads=True,
                        voltage_accuracy=Accuracy(0.0, uv * math.sqrt(3)),
-                       load_tolerance=tol_pct, error_distribution="normal")
+                       load_tolerance=tol_pct, error_distribution="normal",
+                       meter_errors="per_reading")  # u_voltage states independent noise
         return run.load_ohm, run.voltage_V, run.group
     rng = np.random.default_rng(seed)
     r_nom = np.tile(loads, n)
