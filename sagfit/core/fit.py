@@ -31,7 +31,7 @@ from scipy import special
 
 from .errors import InputError
 from .readings import Readings
-from .results import Fits, Flag
+from .results import ColumnRows, Fits, Flag
 
 __all__ = ["fit_lines", "york_line", "coverage_factors"]
 
@@ -507,7 +507,9 @@ def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
         from .systematic import propagate  # only when errors are shared
 
         with np.errstate(all="ignore"):
-            prop = propagate(g, x, y, readings.load[keep], readings.errors.take(keep), res, m,
+            every = bool(keep.all())
+            prop = propagate(g, x, y, readings.load if every else readings.load[keep],
+                             readings.errors if every else readings.errors.take(keep), res, m,
                              n, confidence)
 
     with np.errstate(all="ignore"):  # NaN/inf of DUTs in error are masked below
@@ -606,32 +608,36 @@ def _calibration_flags(flags, prop, sel):
     return tuple(out)
 
 
-def _uncertainty_rows(prop, sel, k, k_rth) -> list:
-    """Per-DUT JSON of the shared-error model: which random part, ν_eff, k and why, and
-    the standard uncertainty each shared component gives Vth and Rth."""
-    names = list(prop.components)
-    cols = {nm: (np.abs(prop.components[nm][0]).tolist(), np.abs(prop.components[nm][1]).tolist())
-            for nm in names}
-    rand_v, rand_r = (np.sqrt(np.maximum(np.where(prop.use_type_a, prop.type_a[j],
-                                                  prop.random_stated[j] + prop.resistor_sharing[j]),
-                                         0.0)).tolist() for j in (0, 1))
-    dof = [None if not math.isfinite(d) else round(d, 1) for d in prop.dof_eff.tolist()]
-    use_a = prop.use_type_a.tolist()
-    out = []
-    for i, (ok, kk, kr, why) in enumerate(zip(sel.tolist(), k.tolist(), k_rth.tolist(),
-                                              prop.k_reason)):
-        if not ok:
-            out.append(None)
-            continue
-        out.append({
-            "model": "meter gain and offset shared by the sweep; resistor errors shared by "
-                     "repeats at one load (GUM 5.2, F.1.2.1)",
-            "random": {"source": "scatter (Type A)" if use_a[i] else "stated",
-                       "u_vth": rand_v[i], "u_rth": rand_r[i]},
-            "shared": {nm: {"u_vth": cols[nm][0][i], "u_rth": cols[nm][1][i]} for nm in names},
-            "effective_dof": dof[i], "coverage_factor_vth": kk, "coverage_factor_rth": kr,
-            "coverage_basis": why})
-    return out
+def _uncertainty_rows(prop, sel, k, k_rth) -> ColumnRows:
+    """Per-DUT JSON of the shared-error model (built when a document asks): which random
+    part, ν_eff, k and why, and the standard uncertainty each shared component gives Vth
+    and Rth."""
+    cols = {"sel": sel, "k": k, "k_rth": k_rth, "use_a": prop.use_type_a,
+            "dof": prop.dof_eff, "why": np.asarray(prop.k_reason, dtype=object)}
+    for j, q in enumerate(("vth", "rth")):
+        cols["rand_" + q] = np.sqrt(np.maximum(np.where(
+            prop.use_type_a, prop.type_a[j],
+            prop.random_stated[j] + prop.resistor_sharing[j]), 0.0))
+        for nm, comp in prop.components.items():
+            cols[f"{nm}_{q}"] = np.abs(comp[j])
+    names = tuple(prop.components)
+    return ColumnRows(cols, lambda c, i: _uncertainty_row(c, i, names))
+
+
+def _uncertainty_row(c, i, names):
+    if not c["sel"][i]:
+        return None
+    dof = float(c["dof"][i])
+    return {
+        "model": "meter gain and offset shared by the sweep; resistor errors shared by "
+                 "repeats at one load (GUM 5.2, F.1.2.1)",
+        "random": {"source": "scatter (Type A)" if c["use_a"][i] else "stated",
+                   "u_vth": float(c["rand_vth"][i]), "u_rth": float(c["rand_rth"][i])},
+        "shared": {nm: {"u_vth": float(c[nm + "_vth"][i]), "u_rth": float(c[nm + "_rth"][i])}
+                   for nm in names},
+        "effective_dof": round(dof, 1) if math.isfinite(dof) else None,
+        "coverage_factor_vth": float(c["k"][i]), "coverage_factor_rth": float(c["k_rth"][i]),
+        "coverage_basis": str(c["why"][i])}
 
 
 def _basic_flags(readings: Readings, m, bad, stated, scale, dof, converged):

@@ -488,8 +488,10 @@ def _repeats_a_load(g: np.ndarray, r: np.ndarray) -> bool:
     fin = np.isfinite(r)
     if not fin.any():
         return False
-    pairs = np.unique(np.stack([g[fin].astype(np.float64), r[fin]]), axis=1)
-    return pairs.shape[1] < int(fin.sum())
+    gf, rf = g[fin], r[fin]
+    order = np.lexsort((rf, gf))
+    gs, rs = gf[order], rf[order]
+    return bool(np.any((gs[1:] == gs[:-1]) & (rs[1:] == rs[:-1])))
 
 
 def _is_rect(acc: Accuracy | None) -> bool:

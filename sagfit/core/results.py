@@ -191,6 +191,36 @@ def _jsonable(x):
     return x
 
 
+class ColumnRows:
+    """A per-DUT sequence of JSON dicts kept as columns and built on demand: ``rows[i]``
+    gives one DUT's dict (or ``None``), ``rows[lo:hi]`` a slice. A large batch then holds
+    a few arrays instead of one dict per DUT until a document asks for them.
+
+    ``build(columns, i)`` makes the dict of row ``i`` from the sliced ``columns``.
+    """
+
+    def __init__(self, columns: dict, build):
+        self.columns = columns
+        self.build = build
+
+    def __len__(self) -> int:
+        return len(next(iter(self.columns.values())))
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return ColumnRows({k: v[i] for k, v in self.columns.items()}, self.build)
+        return self.build(self.columns, i)
+
+    def __iter__(self):
+        return (self[i] for i in range(len(self)))
+
+    @classmethod
+    def concat(cls, parts: "list[ColumnRows]") -> "ColumnRows":
+        keys = parts[0].columns
+        return cls({k: np.concatenate([np.asarray(p.columns[k]) for p in parts])
+                    for k in keys}, parts[0].build)
+
+
 _ARRAY_FIELDS = ("n", "vth", "u_vth", "rth", "u_rth", "cov_vr", "chi2", "dof", "p_value",
                  "scale", "k", "isc", "u_isc", "pmax", "u_pmax", "converged", "method",
                  "k_rth")
@@ -391,8 +421,11 @@ class Fits:
             name: {f: np.concatenate([np.asarray(p.diagnostics[name][f]) for p in parts])
                    for f in cols}
             for name, cols in first.diagnostics.items()}
-        changes["extra"] = {name: [x for p in parts for x in p.extra[name]]
-                            for name in first.extra}
+        changes["extra"] = {
+            name: (type(first.extra[name]).concat([p.extra[name] for p in parts])
+                   if isinstance(first.extra[name], ColumnRows)
+                   else [x for p in parts for x in p.extra[name]])
+            for name in first.extra}
         return dataclasses.replace(first, **changes)
 
     def to_dicts(self, indices: range | None = None) -> list[dict]:
