@@ -526,3 +526,23 @@ def test_chi2_upper_tail_equals_scipy():
     np.testing.assert_allclose(chi2_upper(mixed_nu, mixed_x), special.chdtrc(mixed_nu, mixed_x),
                                rtol=1e-12, atol=0, equal_nan=True)
     assert chi2_upper(6, 2000.0) == special.chdtrc(6, 2000.0)  # past the closed forms
+
+
+class TestNoStaleGroupingCache:
+    """Regression (a cache keyed on object identity returned old counts): calling
+    ``sagfit.york_line`` again with the same group array, changed in place, must give the
+    fit of the new grouping. Reference: the same call on a fresh copy of the array."""
+
+    def test_group_array_changed_in_place(self):
+        rng = np.random.default_rng(3)
+        x = np.tile(np.linspace(0, 5, 6), 2)
+        y = 10 - 0.3 * x + 0.01 * rng.standard_normal(12)
+        y[6:] = 8 - 0.7 * x[6:] + 0.01 * rng.standard_normal(6)
+        sx, sy = np.full(12, 1e-3), np.full(12, 1e-2)
+        g = np.repeat([0, 1], 6)
+        york_line(x, y, sx, sy, group=g)
+        g[4:6] = 1                      # same object, two readings moved to DUT 1
+        again = york_line(x, y, sx, sy, group=g)
+        fresh = york_line(x, y, sx, sy, group=g.copy())
+        assert again["b"][1] == pytest.approx(fresh["b"][1], rel=1e-12)
+        assert list(again["n"]) == [4, 8]

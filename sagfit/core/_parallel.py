@@ -3,7 +3,8 @@
 - Two threads: numpy releases the GIL inside its array operations, so on a two-core
   machine two independent parts of a batch run side by side (:func:`map_parallel`), or
   one piece of work runs beside the caller (:class:`Background`).
-- The cyclic garbage collector held off (:func:`gc_paused`) while a batch is worked on.
+- The cyclic garbage collector held off (:func:`gc_paused`): used only by the console
+  program (``sagfit.cli``), never by a library call, since the collector is process-wide.
 
 Pure stdlib; the core and the edges use it.
 """
@@ -15,28 +16,17 @@ import gc
 import os
 import sys
 
-__all__ = ["WORKERS", "Background", "gc_paused", "map_parallel", "quick_gil_handover"]
+__all__ = ["WORKERS", "Background", "gc_paused", "map_parallel"]
 
 #: Worker threads: two where the machine has two cores or more, else none (one pass).
 WORKERS = min(2, os.cpu_count() or 1)
 
-#: Interpreter switch interval while the threads run (Python's default is 5 ms). Each
-#: thread hands the GIL back and forth thousands of times; a thread that wants it back
-#: waits up to this interval, so a shorter one makes the fit and checks of 100,000 DUTs
-#: about 15 % faster (measured 0.5 ms against the default, minima of 6 runs; 0.2 ms was
-#: slower again). The setting is process-wide while it lasts.
+#: Interpreter switch interval the console program sets for its whole run (Python's
+#: default is 5 ms): the two fit threads hand the GIL back and forth thousands of times,
+#: and a thread that wants it back waits up to this interval (the fit and checks of
+#: 100,000 DUTs measured about 15 % faster at 0.5 ms). A process-wide setting: the
+#: library never changes it; only ``sagfit.cli.run_program`` does, for its own process.
 SWITCH_INTERVAL = 0.0005
-
-
-@contextlib.contextmanager
-def quick_gil_handover():
-    """Shorten the interpreter's thread switch interval for a block, then restore it."""
-    before = sys.getswitchinterval()
-    sys.setswitchinterval(min(before, SWITCH_INTERVAL))
-    try:
-        yield
-    finally:
-        sys.setswitchinterval(before)
 
 
 def map_parallel(fn, parts) -> list:
@@ -45,7 +35,7 @@ def map_parallel(fn, parts) -> list:
         return [fn(p) for p in parts]
     from concurrent.futures import ThreadPoolExecutor
 
-    with quick_gil_handover(), ThreadPoolExecutor(WORKERS) as pool:
+    with ThreadPoolExecutor(WORKERS) as pool:
         return list(pool.map(fn, parts))
 
 

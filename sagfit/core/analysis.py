@@ -11,10 +11,10 @@ import math
 
 import numpy as np
 
-from ._parallel import WORKERS, gc_paused, map_parallel
+from ._parallel import WORKERS, map_parallel
 from .diagnostics import diagnose, knee_rows
 from .errors import InputError
-from .fit import chi2_upper, fit_lines
+from .fit import chi2_upper, fit_lines, segment_scope
 from .formatting import format_value
 from .predict import prediction_fields
 from .readings import Readings
@@ -30,7 +30,6 @@ _IRLS_MAX = 50
 _W_TOL = 1e-4
 
 
-@gc_paused()
 def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
         current_range: tuple[float, float] | None = None, below_knee: bool = False,
         robust: bool = False) -> Fits:
@@ -148,6 +147,7 @@ def _cuts(m: int, size: int, workers: int) -> list[int]:
     return [m * j // k for j in range(k + 1)]
 
 
+@segment_scope
 def _fit_checked_one(readings, confidence, level, robust):
     fits = fit_lines(readings, confidence=confidence)
     if robust:

@@ -57,8 +57,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._parallel import gc_paused
-from .fit import _groupsum, _spread, york_state
+from .fit import _groupsum, _spread, segment_scope, york_state
 from .readings import Readings
 from .results import Fits
 from .systematic import COMPONENT_LABELS, COMPONENTS
@@ -131,6 +130,7 @@ class Budget:
         return out
 
 
+@segment_scope
 def budget_arrays(readings: Readings, fits: Fits, *, used=None) -> Budget:
     """Budgets of Vth and Rth for every DUT, as arrays (see the module notes).
 
@@ -321,7 +321,6 @@ def _num(x) -> float | None:
     return x if math.isfinite(x) else None
 
 
-@gc_paused()
 def budgets(readings: Readings, fits: Fits, *, used=None) -> list[dict | None]:
     """JSON-ready budget per DUT (``None`` where there is none), SI units.
 

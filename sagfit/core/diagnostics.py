@@ -38,7 +38,8 @@ import math
 import numpy as np
 from scipy import special
 
-from .fit import _counts, _groupsum, _segments, _spread, _york_kernel, chi2_upper, york_state
+from .fit import (_counts, _groupsum, _segments, _spread, _york_kernel, chi2_upper,
+                  segment_scope, york_state)
 from .readings import Readings
 from .results import Fits, Flag
 
@@ -648,6 +649,7 @@ def _fmt(x, unit):
     return format_value(float(x), unit, 4)
 
 
+@segment_scope
 def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     """Run every check on every fitted DUT; return ``fits`` with diagnostics and flags.
 

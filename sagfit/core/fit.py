@@ -23,6 +23,7 @@ References
 
 from __future__ import annotations
 
+import functools
 import math
 import threading
 
@@ -66,11 +67,13 @@ class _Segments:
 
 
 def _segments(g, m) -> _Segments:
-    """The segments of ``g`` (kept per thread for the last few groupings seen: the York
-    iteration sums over the same rows six times per step)."""
+    """The segments of ``g``. Inside one call of a public function (``segment_scope``) the
+    last few groupings are remembered per thread, since the York iteration sums over the
+    same rows six times per step; the memory is dropped when the call returns, so an
+    array the caller changes between calls is never read from a stale entry."""
     cache = getattr(_SEGMENTS, "cache", None)
-    if cache is None:
-        cache = _SEGMENTS.cache = []
+    if cache is None:  # outside a scope: no memory at all
+        return _Segments(g, m)
     for seg in cache:
         if seg.g is g and seg.m == m:
             return seg
@@ -78,6 +81,21 @@ def _segments(g, m) -> _Segments:
     cache.insert(0, seg)
     del cache[_CACHED:]
     return seg
+
+
+def segment_scope(fn):
+    """Decorator: remember groupings for the duration of one call of ``fn`` (see
+    ``_segments``); nested calls share the outer call's memory."""
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        if getattr(_SEGMENTS, "cache", None) is not None:
+            return fn(*args, **kwargs)
+        _SEGMENTS.cache = []
+        try:
+            return fn(*args, **kwargs)
+        finally:
+            _SEGMENTS.cache = None
+    return wrapper
 
 
 def _groupsum(g, w, m):
@@ -216,6 +234,7 @@ def _york_step(g, x, y, sxx, syy, sxy, m, b):
     return w, sw, xbar, ybar, u, v, beta
 
 
+@segment_scope
 def york_line(x, y, sx, sy, r=None, *, group=None):
     """York et al. (2004) best straight line y = a + b·x for one or many groups.
 
@@ -460,6 +479,7 @@ def _validate(readings: Readings, m: int):
     return errors, bad, stated, n
 
 
+@segment_scope
 def fit_lines(readings: Readings, *, confidence: float = 0.95) -> Fits:
     """Fit the Thevenin equivalent V = Vth − Rth·I of every DUT in ``readings``.
 

@@ -50,7 +50,7 @@ from scipy import special
 
 from ._frozen import freeze_arrays
 from .errors import InputError
-from .fit import york_line
+from .fit import segment_scope, york_line
 from .formatting import format_estimate, format_percent, format_value
 from .results import Flag
 
@@ -333,6 +333,7 @@ def _group_median(codes: np.ndarray, values: np.ndarray, m: int):
     return med, cnt
 
 
+@segment_scope
 def analyse_trends(
     dut_index,
     duts: Sequence[str],

@@ -159,8 +159,6 @@ def document_pieces(doc: dict, results=None) -> Iterator[str]:
     """
     import json
 
-    from ..core._parallel import gc_paused
-
     n = 0 if results is None else len(results)
     if n <= JSON_BIG:
         if results is not None:
@@ -170,9 +168,8 @@ def document_pieces(doc: dict, results=None) -> Iterator[str]:
     head, tail = json.dumps({**doc, "results": _HOLE}, ensure_ascii=False,
                             allow_nan=False).split(json.dumps(_HOLE, ensure_ascii=False))
     yield head + "["
-    with gc_paused():  # the dicts of each piece are freed by reference counting
-        for lo in range(0, n, JSON_PIECE_DUTS):
-            part = results.to_dicts(range(lo, min(lo + JSON_PIECE_DUTS, n)))
-            yield (", " if lo else "") + json.dumps(part, ensure_ascii=False,
-                                                    allow_nan=False)[1:-1]
+    for lo in range(0, n, JSON_PIECE_DUTS):
+        part = results.to_dicts(range(lo, min(lo + JSON_PIECE_DUTS, n)))
+        yield (", " if lo else "") + json.dumps(part, ensure_ascii=False,
+                                                allow_nan=False)[1:-1]
     yield "]" + tail + "\n"

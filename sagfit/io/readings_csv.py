@@ -19,7 +19,7 @@ from typing import Mapping
 
 import numpy as np
 
-from ..core._parallel import Background, gc_paused
+from ..core._parallel import Background
 from ..core.errors import ReadingsFileError
 from ..core.readings import Readings
 from ..core.units import Accuracy, parse_header_unit, parse_resistance
@@ -229,7 +229,6 @@ def read_readings(
                        current_accuracy=current_accuracy, load_tolerance=load_tolerance)
 
 
-@gc_paused()
 def parse_table(data: bytes, name: str, *, stem: str | None = None,
                 voltage_accuracy: Accuracy | None = None,
                 current_accuracy: Accuracy | None = None,
@@ -939,98 +938,50 @@ def _csv_text_cell(text: str) -> str:
     return text
 
 
-def _csv_text_column(vals: list[str]) -> list[str]:
-    """Neutralise and quote a text column; a quick whole-column check skips clean columns."""
-    joined = "\x00" + "\x00".join(vals)
-    if not any(c in joined for c in ',"\n\r') and not any("\x00" + c in joined
-                                                           for c in _FORMULA_START):
-        return vals
-    return [_csv_text_cell(v) for v in vals]
-
-
-def _text_block(vals) -> np.ndarray:
-    """A text column (list of str, or :class:`Coded`) as a padded byte matrix; a column of
-    few distinct values (method, flags, errors, decisions) is encoded once per value and
-    gathered."""
-    from .numtext import text_matrix
-
-    if not isinstance(vals, Coded):
-        head = vals[:64]
-        if len(head) == 64 and len(set(head)) == 64:  # ids: all different, no use coding
-            return text_matrix(list(vals))
-    col = vals if isinstance(vals, Coded) else coded(vals)
-    if len(col.labels) * 4 > len(col):
-        return text_matrix(list(vals))
-    return text_matrix(col.labels)[col.codes]
-
-
-#: From this many rows on, the two halves of a table are formatted in two threads (numpy
-#: releases the GIL in its array operations; the halves are independent).
-PARALLEL_ROWS = 40_000
-
-
 def table_csv_chunks(columns: Mapping[str, object]) -> list:
-    """Columns → UTF-8 CSV, as byte chunks in file order (header first; no joined copy),
-    fast for 100,000 rows (whole columns at a time, see :mod:`sagfit.io_numtext`).
+    """Columns → UTF-8 CSV, as byte chunks in file order (header first).
 
-    Floats are written as ``'%.10g'`` writes them (10 significant digits), NaN and ±inf
-    become empty cells, integers stay integers; text cells are formula-neutralised
-    (:func:`neutralise`) and quoted where needed, so numeric columns stay numeric for a
-    spreadsheet.
+    Written by Arrow's CSV writer (``pyarrow.csv.write_csv``, whole columns in C++).
+    Floats are written in their shortest form that reads back to the same double (full
+    precision), NaN and ±inf become empty cells, integers stay integers; text cells are
+    formula-neutralised (:func:`neutralise`) and quoted, so numeric columns (unquoted)
+    stay numeric for a spreadsheet.
     """
     header = (",".join(_csv_text_cell(n) for n in columns) + "\n").encode("utf-8")
     return [header, *csv_rows(columns)]
 
 
-class Encoded(list):
-    """A text column whose cells are already CSV-encoded (quoted as the writer wants):
-    :func:`csv_rows` writes them as they are."""
-
-
-@gc_paused()
 def csv_rows(columns: Mapping[str, object]) -> list:
     """The data rows of :func:`table_csv_chunks` (no header), as a list of byte chunks."""
+    import io
+
+    import pyarrow as pa
+    import pyarrow.csv as pa_csv
+
     names = list(columns)
     if not names:
         return []
-    n = len(columns[names[0]])
-    if n < PARALLEL_ROWS:
-        return [_csv_body(columns)]
-    from ..core._parallel import map_parallel
-
-    half = n // 2
-    return map_parallel(_csv_body, [{k: (Encoded(v[a:b]) if isinstance(v, Encoded) else v[a:b])
-                                     for k, v in columns.items()}
-                                    for a, b in ((0, half), (half, n))])
-
-
-def _csv_body(columns: Mapping[str, object]) -> bytes | memoryview:
-    from .numtext import g10_matrix, join_rows, small_set_matrix, text_matrix
-
-    blocks = []
+    arrays = []
     for col in columns.values():
         if isinstance(col, np.ndarray) and col.dtype.kind in "fiub":
             col = col.reshape(-1)
             if col.dtype.kind in "iub":
-                blocks.append(small_set_matrix(col.astype(np.int64), str))
-            elif col.size and np.isfinite(col[0]) and (col == col[0]).all():
-                one = text_matrix(["%.10g" % col[0]])  # a constant: format it once
-                blocks.append(np.broadcast_to(one, (col.size, one.shape[1])))
+                arrays.append(pa.array(col.astype(np.int64)))
             else:
-                blocks.append(g10_matrix(col))
-        elif isinstance(col, Encoded):
-            blocks.append(_text_block(col))
+                arrays.append(pa.array(col.astype(np.float64), mask=~np.isfinite(col)))
         elif isinstance(col, Coded):
-            blocks.append(_text_block(Coded(col.codes, _csv_text_column(col.labels))))
+            labels = pa.array([neutralise(t) for t in col.labels], type=pa.string())
+            arrays.append(labels.take(pa.array(col.codes.astype(np.int64))))
         else:
-            if isinstance(col, list) and all(type(v) is str for v in col[:1]):
-                vals = col  # a list of text (homogeneous by construction)
-            else:
-                vals = ["" if v is None else str(v) for v in col]
-            blocks.append(_text_block(_csv_text_column(vals)))
-    if not blocks[0].shape[0]:
-        return b""
-    return join_rows(blocks)
+            vals = ["" if v is None else neutralise(str(v)) for v in col]
+            arrays.append(pa.array(vals, type=pa.string()))
+    if not len(arrays[0]):
+        return []
+    table = pa.table(arrays, names=[str(k) for k in range(len(arrays))])
+    sink = io.BytesIO()
+    pa_csv.write_csv(table, sink, pa_csv.WriteOptions(include_header=False,
+                                                      quoting_style="needed"))
+    return [sink.getvalue()]
 
 
 def table_csv(columns: Mapping[str, object]) -> str:

@@ -108,13 +108,13 @@ def _quote(text: str) -> str:
 
 
 def acceptance_csv(acc) -> str:
-    """The CSV text of :func:`acceptance_table`: one row per DUT, numbers as ``%.10g``
-    (unquoted, so they stay numeric), user text quoted, NaN and ±inf as empty cells.
+    """The CSV text of :func:`acceptance_table`: one row per DUT, numbers at full
+    precision (unquoted, so they stay numeric), text quoted, NaN and ±inf as empty cells.
 
     Written whole columns at a time by the same writer as ``fit --out``
     (:func:`sagfit.io_csv.csv_rows`), not with ``DataFrame.to_csv``.
     """
-    from ..io.readings_csv import Encoded, coded, csv_rows
+    from ..io.readings_csv import coded, csv_rows
 
     cols, header = {}, []
     for j, (name, kind, data) in enumerate(_columns(acc)):
@@ -124,7 +124,7 @@ def acceptance_csv(acc) -> str:
         elif kind == "word":  # our own vocabulary: nothing to quote
             cols[j] = coded(data)
         else:
-            cols[j] = Encoded(_quote(x) for x in data)
+            cols[j] = ["" if x is None else str(x) for x in data]
     body = b"".join(csv_rows(cols)).decode("utf-8")
     return ",".join(header) + "\n" + body
 
