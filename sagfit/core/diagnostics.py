@@ -53,7 +53,6 @@ CODES = ("curvature", "knee", "pattern", "excess-scatter", "too-good", "outlier"
 CONSISTENT_P = 0.01
 EXCESS_P = 0.001
 TOO_GOOD_P = 0.999
-OUTLIER_LIMIT = 3.0
 WEAK_SLOPE = 0.5
 #: DUTs whose screening p-value (orthogonal distances) is below this get the York refit.
 KNEE_SCREEN_P = 0.5
@@ -611,7 +610,22 @@ def _lack_of_fit(R: _Rows):
     return out
 
 
-def _outliers(R: _Rows):
+def outlier_limits(n, stated, level: float) -> np.ndarray:
+    """Critical |t| per DUT of the outlier check, so that a linear DUT gets a false outlier
+    flag with probability ``level`` over all its readings (Šidák's correction,
+    α₁ = 1 − (1 − level)^(1/n)). With stated uncertainties the externally studentised
+    residual is compared with the normal distribution; in a Type A fit it follows Student's
+    t with n − 3 degrees of freedom (Cook & Weisberg, *Residuals and Influence in
+    Regression*, 1982, 2.2.2; Belsley, Kuh & Welsch 1980, eq. 2.8)."""
+    n = np.asarray(n, float)
+    a1 = 1.0 - (1.0 - level) ** (1.0 / np.maximum(n, 1.0))
+    q = 1.0 - a1 / 2.0
+    with np.errstate(invalid="ignore"):
+        t_lim = special.stdtrit(np.maximum(n - 3.0, 1.0), q)
+    return np.where(np.asarray(stated, bool), special.ndtri(q), t_lim)
+
+
+def _outliers(R: _Rows, level: float = 0.01):
     """Externally studentised residuals with the leverage of each reading."""
     m, g, w = R.m, R.g, R.w
     sw = _groupsum(g, w, m)
@@ -634,12 +648,14 @@ def _outliers(R: _Rows):
     at = np.abs(t)
     starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
     tmax = np.full(m, _NAN)
-    nflag = _groupsum(g, at > OUTLIER_LIMIT, m)
+    limit = outlier_limits(R.n, R.stated, level)
+    nflag = _groupsum(g, at > _spread(g, limit), m)
     ne = R.n > 0
     if ne.any():
         tmax[ne] = np.maximum.reduceat(at, starts[ne])
     tmax = np.where(run_dut, tmax, _NAN)
-    return {"max_abs_t": tmax, "count": np.where(run_dut, nflag, _NAN)}, t, run_dut
+    return ({"max_abs_t": tmax, "count": np.where(run_dut, nflag, _NAN),
+             "limit": np.where(run_dut, limit, _NAN)}, t, run_dut)
 
 
 # ----------------------------------------------------------------------------- messages
@@ -681,7 +697,7 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     patt_run = patt_run & (_runs_min_p(R.n) <= level)
     drift, drift_basis, drift_run = _drift(R, level, readings.has_time)
     lof = _lack_of_fit(R)
-    outl, t_row, outl_run = _outliers(R)
+    outl, t_row, outl_run = _outliers(R, level)
 
     p_fit = np.where(R.stated, fits.p_value, _NAN)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -701,7 +717,7 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     f_lof = np.isfinite(lof["p_value"]) & (lof["p_value"] < level)
     f_exc = R.stated & (fits.dof > 0) & (p_fit < EXCESS_P)
     f_good = R.stated & (fits.dof > 0) & (p_fit > TOO_GOOD_P)
-    f_out = outl_run & (outl["max_abs_t"] > OUTLIER_LIMIT)
+    f_out = outl_run & (outl["max_abs_t"] > outl["limit"])
     f_weak = R.ok & (rel > WEAK_SLOPE)
     f_neg = R.ok & (p_neg < level)
     skipped = R.ok & ~(curv_run & knee_run & patt_run & drift_run)
@@ -772,11 +788,12 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
                              "they need to be"))
     if f_out.any():
         g = R.g
-        bad_rows = np.flatnonzero(f_out[g] & (np.abs(t_row) > OUTLIER_LIMIT))
+        row_limit = outl["limit"][g]
+        bad_rows = np.flatnonzero(f_out[g] & (np.abs(t_row) > row_limit))
         starts = np.concatenate(([0], np.cumsum(R.n)[:-1]))
         for k in np.flatnonzero(f_out):
             rows = bad_rows[g[bad_rows] == k] if bad_rows.size < 10000 else \
-                np.flatnonzero(np.abs(t_row[starts[k]:starts[k] + R.n[k]]) > OUTLIER_LIMIT) \
+                np.flatnonzero(np.abs(t_row[starts[k]:starts[k] + R.n[k]]) > outl["limit"][k]) \
                 + starts[k]
             where = ", ".join(_where(R.line, r, starts[k]) for r in rows[:5])
             worst = rows[np.argmax(np.abs(t_row[rows]))]
