@@ -440,3 +440,15 @@ def test_row_reductions_equal_numpys(width):
     np.testing.assert_array_equal(_reduce_rows(np.logical_and, b), b.all(axis=1))
     np.testing.assert_array_equal(_reduce_rows(np.logical_or, b), b.any(axis=1))
     np.testing.assert_array_equal(_cumsum_rows(b.astype(np.int64)), np.cumsum(b, axis=1))
+
+
+@pytest.mark.parametrize("width", [5, 64, 65, 3000])
+def test_row_reductions_equal_numpy_for_short_and_long_rows(width):
+    """The column-by-column row reductions (short rows) and numpy's own (long rows, one
+    DUT with thousands of readings) give numpy's results (plumbing test)."""
+    from sagfit.core.diagnostics import _cumsum_rows, _reduce_rows
+
+    a = np.random.default_rng(width).random((7, width))
+    np.testing.assert_allclose(_reduce_rows(np.add, a), a.sum(axis=1), rtol=1e-12)
+    np.testing.assert_allclose(_cumsum_rows(a), np.cumsum(a, axis=1), rtol=1e-12)
+    assert (_reduce_rows(np.logical_or, a > 0.9, bool) == (a > 0.9).any(axis=1)).all()

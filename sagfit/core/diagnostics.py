@@ -313,9 +313,17 @@ def _curvature(R: _Rows, level):
     return out, test, run
 
 
+#: Up to this many readings per DUT, row reductions go column by column.
+_SHORT_ROWS = 64
+
+
 def _reduce_rows(ufunc, v: np.ndarray, dtype=None) -> np.ndarray:
     """``ufunc.reduce(v, axis=1)`` for many short rows (5–20 readings): one vector
-    operation per column, several times faster than numpy's reduction along each row."""
+    operation per column, several times faster than numpy's reduction along each row.
+    Rows longer than ``_SHORT_ROWS`` (one DUT with thousands of readings) take numpy's
+    own reduction: a Python step per column would cost seconds there."""
+    if v.shape[1] > _SHORT_ROWS:
+        return ufunc.reduce(v.astype(dtype or v.dtype, copy=False), axis=1)
     out = v[:, 0].astype(dtype or v.dtype)  # a copy
     for j in range(1, v.shape[1]):
         ufunc(out, v[:, j], out=out)
@@ -324,7 +332,10 @@ def _reduce_rows(ufunc, v: np.ndarray, dtype=None) -> np.ndarray:
 
 def _cumsum_rows(v: np.ndarray) -> np.ndarray:
     """``np.cumsum(v, axis=1)`` for many short rows: one vector add per column is several
-    times faster than numpy's per-row loop when rows hold only 5–20 readings."""
+    times faster than numpy's per-row loop when rows hold only 5–20 readings (longer rows:
+    ``np.cumsum``, see ``_reduce_rows``)."""
+    if v.shape[1] > _SHORT_ROWS:
+        return np.cumsum(v, axis=1)
     out = np.empty_like(v)
     out[:, 0] = v[:, 0]
     for j in range(1, v.shape[1]):
