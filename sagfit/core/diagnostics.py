@@ -389,9 +389,11 @@ def _knee(R: _Rows, level):
         ym = (_reduce_rows(np.add, yr) / size)[:, None]
         X = (xr - xm) / sx[duts, None]
         Y = (yr - ym) / sy[duts, None]
-        # order along the source curve: by the angle atan2(I, V), i.e. by load conductance,
-        # which is monotone through a current-limited (vertical) segment as well
-        key = np.arctan2(xr, yr)
+        # order along the source curve: by the angle atan2(|I|, |V|), i.e. by load
+        # conductance, which is monotone through a current-limited (vertical) segment as
+        # well; the magnitudes make the order the same whichever way the leads are
+        # connected (with V < 0 the open circuit got +π and sorted last)
+        key = np.arctan2(np.abs(xr), np.abs(yr))
         order = np.argsort(key, axis=1, kind="stable")
         X = np.take_along_axis(X, order, 1)
         Y = np.take_along_axis(Y, order, 1)
@@ -414,7 +416,7 @@ def _knee(R: _Rows, level):
             ky = my1 + s * d1y
             xk = xm + kx * sx[duts, None]
             yk = ym + ky * sy[duts, None]
-            kkey = np.arctan2(xk, yk)
+            kkey = np.arctan2(np.abs(xk), np.abs(yk))
         lo = key[:, j - 2]
         hi = key[:, np.minimum(j + 1, size - 1)]
         # |sin| of the angle between the segments above 1e-12 (squared, with the norms)
@@ -713,7 +715,11 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     p_fit = np.where(R.stated, fits.p_value, _NAN)
     with np.errstate(divide="ignore", invalid="ignore"):
         rel = np.abs(fits.u_rth / fits.rth)
-        zr = fits.rth / fits.u_rth
+        # the sign a passive source's Rth has in the readings' own polarity: positive when
+        # V and I were read the same way round, negative when one of them was reversed
+        i_mean = _groupsum(R.g, R.x, m) / np.maximum(R.n, 1)
+        polarity = np.where(np.sign(fits.vth) * np.sign(i_mean) < 0, -1.0, 1.0)
+        zr = polarity * fits.rth / fits.u_rth
         p_neg = special.ndtr(zr)
         if R.ols.any():  # Student t only for the Type A fits
             p_neg[R.ols] = special.stdtr(np.maximum(fits.dof[R.ols], 1).astype(float),
@@ -902,5 +908,5 @@ def knee_rows(readings: Readings, fits: Fits) -> np.ndarray:
     if key_split is None or not flagged.any():
         return np.ones(len(readings), bool)
     g = readings.group
-    key = np.arctan2(readings.current, readings.voltage)
+    key = np.arctan2(np.abs(readings.current), np.abs(readings.voltage))
     return ~flagged[g] | (key < key_split[g])
