@@ -599,13 +599,6 @@ def _data_rows(data: bytes, pos: int, header_line: int, name: str, delim: str, n
             None)
 
 
-#: A table body of more than twice this many bytes is parsed in pieces of about this size,
-#: cut at line ends: pandas' tokenizer then reuses buffers that are still in the CPU cache
-#: instead of allocating them for the whole file at once. On 100,000 DUTs (27 MB) that
-#: made the parse about 25 % faster, and the peak memory smaller.
-PARSE_BYTES = 4 << 20
-
-
 def _read_frame(body: bytes, pos: int, nrows: int, name: str, *, sep: str, ncols: int,
                 usecols, dtypes, decimal: str):
     """The table body (``body`` from byte ``pos`` on) as a DataFrame of ``usecols``."""
@@ -615,11 +608,6 @@ def _read_frame(body: bytes, pos: int, nrows: int, name: str, *, sep: str, ncols
               decimal=decimal, dtype=dtypes, skip_blank_lines=False, engine="c",
               encoding="utf-8", quotechar='"', keep_default_na=True, na_values=[""],
               low_memory=False)
-    size = len(body) - pos
-    if size > 2 * PARSE_BYTES and body.find(b'"', pos) < 0:  # no quoted line ends
-        frame = _read_pieces(body, pos, kw)
-        if frame is not None and len(frame) == nrows:
-            return frame
     try:
         stream = io.BytesIO(body)  # shares the bytes (no copy)
         stream.seek(pos)
@@ -630,56 +618,6 @@ def _read_frame(body: bytes, pos: int, nrows: int, name: str, *, sep: str, ncols
         raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
                                       "quote character?)")
     return frame
-
-
-def _read_pieces(body: bytes, pos: int, kw: dict):
-    """The body parsed in pieces of about ``PARSE_BYTES`` and put together, or None where
-    the pieces do not combine into what one pass gives (a column numeric in one piece and
-    text in another, categories of different kinds, a parse error); the caller then reads
-    the whole body in one pass, which also reports any error."""
-    import pandas as pd
-
-    cuts = [pos]
-    while len(body) - cuts[-1] > 1.5 * PARSE_BYTES:
-        nl = body.find(b"\n", cuts[-1] + PARSE_BYTES)
-        if nl < 0 or nl + 1 >= len(body):
-            break
-        cuts.append(nl + 1)
-    cuts.append(len(body))
-    view = memoryview(body)
-    try:
-        frames = [pd.read_csv(io.BytesIO(view[a:b]), **kw) for a, b in zip(cuts, cuts[1:])]
-    except (ValueError, TypeError, pd.errors.ParserError, UnicodeDecodeError):
-        return None
-    columns = {}
-    for c in frames[0].columns:
-        parts = [f[c] for f in frames]
-        if all(isinstance(p.dtype, pd.CategoricalDtype) for p in parts):
-            cats = [p.cat.categories for p in parts]
-            dtypes = {x.dtype for x in cats if len(x)}
-            if len({"n" if d.kind in "iuf" else d.kind for d in dtypes}) > 1:
-                return None
-            # the kind pandas inferred (text, numbers, booleans), as one pass would give
-            kind = (dtypes.pop() if len(dtypes) == 1 else
-                    np.dtype(np.float64) if dtypes else np.dtype(object))
-            # one hash pass over the pieces' categories numbers them all; each piece's
-            # codes are then looked up (−1, an empty cell, stays −1)
-            codes_all, uniques = pd.factorize(np.concatenate(
-                [np.asarray(x, dtype=object) for x in cats]), sort=False)
-            ends = np.cumsum([len(x) for x in cats])
-            maps = np.split(np.asarray(codes_all, dtype=np.int64), ends[:-1])
-            codes = np.concatenate([np.append(mp, -1)[np.asarray(p.cat.codes)]
-                                    for mp, p in zip(maps, parts)])
-            columns[c] = pd.Series(pd.Categorical.from_codes(
-                codes, categories=pd.Index(uniques, dtype=kind)))
-        elif all(p.dtype.kind in "iuf" for p in parts):
-            columns[c] = pd.Series(np.concatenate([p.to_numpy(dtype=np.float64)
-                                                   for p in parts]))
-        elif all(p.dtype.kind == "O" or isinstance(p.dtype, pd.StringDtype) for p in parts):
-            columns[c] = pd.concat(parts, ignore_index=True)
-        else:
-            return None
-    return pd.DataFrame(columns, copy=False)  # no consolidating copy of the columns
 
 
 #: pandas' default spellings of a missing value (``read_csv``, ``na_values``). A DUT id
