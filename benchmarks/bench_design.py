@@ -3,7 +3,9 @@
 
 Network (invented): a 200-node resistor ladder with cross links every 10 nodes, one
 source, 1 % parts. Alternates the two methods, repeats, quotes minima and medians.
-Run: python benchmarks/bench_design.py [draws] [repeats]
+Run: OPENBLAS_NUM_THREADS=1 python benchmarks/bench_design.py [draws] [repeats]
+(multi-threaded BLAS on many small batched solves was measured 40x slower on a loaded
+2-core machine, 2026-12-05).
 """
 
 from __future__ import annotations
