@@ -1,0 +1,58 @@
+"""``sagfit design`` as users run it: table, JSON, spec written and read back, errors."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from sagfit.cli import main
+from sagfit.io.spec import read_spec
+
+DIVIDER = "* divider (invented)\nV1 in 0 DC 12 tol=1%\nR1 in tap 2k tol=1%\nR2 tap 0 2k tol=1%\n"
+
+
+def _run(capsys, *argv):
+    with pytest.raises(SystemExit) as exc:
+        main(list(argv))
+    cap = capsys.readouterr()
+    return exc.value.code, cap.out, cap.err
+
+
+def test_json_spec_round_trip_and_csv(tmp_path, capsys):
+    net = tmp_path / "d.cir"
+    net.write_text(DIVIDER)
+    spec = tmp_path / "limits.toml"
+    csvf = tmp_path / "sens.csv"
+    code, out, _ = _run(capsys, "design", str(net), "--port", "tap,0", "--json", "--draws",
+                        "2000", "--spec-out", str(spec), "--out", str(csvf))
+    assert code == 0
+    doc = json.loads(out)
+    assert doc["nominal"]["vth_V"] == pytest.approx(6.0)
+    assert doc["nominal"]["rth_ohm"] == pytest.approx(1000.0)
+    # worst case Vth: 12.12·2.02/(1.98+2.02) (hand calculation)
+    assert doc["worst_case"]["vth_V"][1] == pytest.approx(12.12 * 2.02 / 4.0, rel=1e-9)
+    assert doc["vertices"]["agrees_with_worst_case"] is True
+    s = read_spec(str(spec))
+    vth = next(c for c in s.checks if c.quantity == "vth")
+    rth = next(c for c in s.checks if c.quantity == "rth")
+    assert (vth.lower, vth.upper) == pytest.approx(tuple(doc["limits"]["vth"]), rel=1e-15)
+    assert (rth.lower, rth.upper) == pytest.approx(tuple(doc["limits"]["rth"]), rel=1e-15)
+    assert csvf.read_text().splitlines()[1].startswith("V1,")
+
+
+def test_measured_unit_outside_design(tmp_path, capsys):
+    net = tmp_path / "d.cir"
+    net.write_text(DIVIDER + ".port tap 0\n")
+    code, out, _ = _run(capsys, "design", str(net), "--draws", "0", "--measured-vth", "6.3V",
+                        "--u-vth", "20mV")
+    assert code == 1 and "NOT consistent" in out and "would explain it: V1" in out
+
+
+def test_bad_netlist_one_line_error(tmp_path, capsys):
+    net = tmp_path / "bad.cir"
+    net.write_text("V1 a 0 12\nD1 a 0 dmod\n.port a 0\n")
+    code, out, err = _run(capsys, "design", str(net))
+    assert code == 2 and out == ""
+    assert err.startswith("error: ") and "bad.cir, line 2, column 1" in err
+    assert len(err.strip().splitlines()) == 1
