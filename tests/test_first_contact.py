@@ -1,0 +1,81 @@
+"""First-contact cases: inputs and outputs a new user trips over (overload codes, bare spec
+limits, duplicated hints, help text versus docs, grammar of counts, stdout as output)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from sagfit.core.errors import ReadingsFileError
+from sagfit.core.formatting import format_estimate, format_interval, format_value
+from sagfit.core.readings import Readings
+
+
+class TestOverloadAndPlausibility:
+    # SCPI-99 vol. 1, 7.2.1.5: 9.9E+37 is the overload value, 9.91E+37 "not a number".
+    @pytest.mark.parametrize("code", [9.9e37, -9.9e37, 9.91e37])
+    def test_overload_code_is_refused_with_its_line(self, code):
+        with pytest.raises(ReadingsFileError) as exc:
+            Readings.from_arrays(voltage=[12.0, code, 11.0], current=[0.0, 1.0, 2.0],
+                                 line=[5, 6, 7], source="bench.csv")
+        msg = str(exc.value)
+        assert "overload" in msg and "bench.csv" in msg and "6" in msg
+
+    def test_implausible_magnitude_names_the_unit_slip(self):
+        with pytest.raises(ReadingsFileError, match="implausible"):
+            Readings.from_arrays(voltage=[12.0, 11.9], current=[0.0, 3.0e6], line=[2, 3])
+
+    def test_ordinary_readings_pass(self):
+        r = Readings.from_arrays(voltage=[12.0, 11.9], current=[0.0, 1.0],
+                                 load=[math.inf, 11.9])
+        assert len(r) == 2
+
+    def test_cli_overload_is_an_error_not_a_fit(self, cli, tmp_path):
+        p = tmp_path / "ovl.csv"
+        p.write_text("voltage_V,current_A\n12.0,0\n9.9E+37,0.5\n11.8,1.0\n11.7,1.5\n")
+        run = cli("fit", p)
+        assert run.code == 2
+        assert run.err.startswith("error:") and "overload" in run.err
+        assert "Traceback" not in run.err
+
+
+class TestNoPrefixBeyondKnown:
+    @pytest.mark.parametrize("x", [9.9e37, 1.0e15, 3.0e-16])
+    def test_value_beyond_prefixes_goes_scientific(self, x):
+        text = format_value(x, "V")
+        assert "e" in text and text.endswith(" V") and "TV" not in text
+        assert float(text.split()[0]) == pytest.approx(x, rel=1e-3)
+
+    def test_estimate_and_interval_beyond_prefixes(self):
+        assert "TV" not in format_estimate(9.9e37, 1e35, "V")
+        assert "TV" not in format_interval(9.8e37, 9.9e37, "V")
+
+    def test_in_range_unchanged(self):
+        assert format_value(4700.0, "Ω") == "4.700 kΩ"
+        assert format_estimate(12.483162, 0.0041789, "V") == "12.4832 ± 0.0042 V"
+
+
+class TestSpecLimitsNeedUnits:
+    @pytest.mark.parametrize("raw", ["50", "\"50\""])
+    def test_bare_rth_limit_refused_with_the_fix(self, raw):
+        from sagfit.core.errors import SpecFileError
+        from sagfit.io.spec import parse_spec
+        with pytest.raises(SpecFileError) as exc:
+            parse_spec(f"[limits.rth]\nmax = {raw}\n", "spec.toml")
+        msg = str(exc.value)
+        assert "limits.rth.max" in msg and "no unit" in msg and '"50mΩ"' in msg
+
+    def test_cli_bare_limit_is_exit_2(self, cli, tmp_path):
+        from conftest import SAMPLES
+        spec = tmp_path / "s.toml"
+        spec.write_text("[limits.rth]\nmax = 50\n")
+        run = cli("accept", SAMPLES / "accept_reel.csv", "--spec", spec,
+                  "--bench", SAMPLES / "accept_bench.toml")
+        assert run.code == 2 and run.err.startswith("error:") and "no unit" in run.err
+
+    def test_limit_with_unit_is_read_in_si(self):
+        from sagfit.io.spec import parse_spec
+        spec = parse_spec("[limits.rth]\nmax = \"50mΩ\"\n", "spec.toml")
+        assert any(math.isclose(c.upper, 0.05) for c in spec.checks)
