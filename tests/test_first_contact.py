@@ -79,3 +79,38 @@ class TestSpecLimitsNeedUnits:
         from sagfit.io.spec import parse_spec
         spec = parse_spec("[limits.rth]\nmax = \"50mΩ\"\n", "spec.toml")
         assert any(math.isclose(c.upper, 0.05) for c in spec.checks)
+
+
+class TestTerminalWording:
+    def test_did_you_mean_once(self, cli):
+        run = cli("fitt", "x.csv")
+        assert run.code == 2 and run.err.count("Did you mean") == 1
+
+    def test_robust_help_matches_docs_and_runtime(self, cli):
+        from conftest import ROOT
+        run = cli("fit", "--help")
+        text = " ".join(run.out.split())
+        assert "Huber" in text and "1.345" in text and "soft-L1" not in text
+        assert "c = 1.345" in (ROOT / "docs" / "diagnostics.md").read_text(encoding="utf-8")
+
+    @pytest.mark.parametrize("dof, text", [(1, "1 degree of freedom"),
+                                           (3, "3 degrees of freedom")])
+    def test_degree_of_freedom_grammar(self, dof, text):
+        from sagfit.cli.render import _quality
+        assert text in _quality(1.2, dof, 0.3, "wls", 0.5)
+        assert text in _quality(1.2, dof, None, "ols", 0.5)
+
+
+class TestStdoutDash:
+    def test_simulate_out_dash_writes_csv_to_stdout(self, cli, tmp_path, monkeypatch):
+        monkeypatch.chdir(tmp_path)
+        run = cli("simulate", "--vth", "12", "--rth", "50m", "--loads", "open,10,4.7",
+                  "--out", "-")
+        assert run.code == 0, run.err
+        lines = run.out.splitlines()
+        assert lines[0].startswith("# INVENTED DATA")
+        assert "dut,load_ohm,voltage_V,time_s" in lines
+        assert "wrote" not in run.out and not list(tmp_path.iterdir())  # no file named '-'
+        p = tmp_path / "back.csv"
+        p.write_text(run.out, encoding="utf-8")
+        assert cli("fit", p, "--json").code == 0

@@ -36,7 +36,8 @@ def fit_command(
     below_knee: Annotated[bool, typer.Option(
         "--below-knee", help="Where a knee is found, refit only the readings below it.")] = False,
     robust: Annotated[bool, typer.Option(
-        "--robust", help="Refit with a soft-L1 loss that down-weights outliers.")] = False,
+        "--robust", help="Refit with Huber's loss (c = 1.345): readings beyond c standard "
+                                "residuals lose weight.")] = False,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write a self-contained report (HTML, PNG, JSON, CSV) into this "
                          "folder.")] = None,

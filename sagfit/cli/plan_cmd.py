@@ -146,7 +146,8 @@ def simulate_command(
     rth: Annotated[str, typer.Option("--rth", help="Internal resistance, e.g. 50mohm or R05.")],
     loads: Annotated[str, typer.Option(
         "--loads", help="Loads in reading order, e.g. 'open,10,4.7,2.2,1'.")],
-    out: Annotated[str, typer.Option("--out", help="Readings CSV to write (input format of "
+    out: Annotated[str, typer.Option("--out", help="Readings CSV to write ('-' for standard "
+                                                   "output; input format of "
                                                    "'sagfit fit').")],
     duts: Annotated[int, typer.Option("--duts", help="Number of DUTs.")] = 1,
     seed: Annotated[int, typer.Option("--seed", help="Random seed (same seed, same file).")] = 1,
@@ -201,10 +202,12 @@ def simulate_command(
         interval_s = _time(interval, "--interval")
         if interval_s < 0:
             raise OptionError("--interval", "must not be negative")
-        check_output_path(out)
-        _refuse_real_file(out)
+        to_stdout = out == "-"  # as in every Unix tool: '-' is standard output
+        if not to_stdout:
+            check_output_path(out)
+            _refuse_real_file(out)
         if truth is not None:
-            check_output_path(truth, [out], option="--truth")
+            check_output_path(truth, [] if to_stdout else [out], option="--truth")
             _refuse_real_file(truth, option="--truth")
         with progress(f"simulating {duts} DUT(s)", interactive() and duts >= 1000) as say:
             try:
@@ -230,10 +233,16 @@ def simulate_command(
                 curvature=curvature, drift=drift, vth_spread=vth_spread, rth_spread=rth_spread,
                 interval=interval, prefix=prefix, per_dut_loads=per_dut_loads, errors=errors,
                 out=out), run)
-            say(f"writing {out}")
-            atomic_write(out, run_csv_text(run, comments))
+            if to_stdout:
+                write_stdout(run_csv_text(run, comments))
+            else:
+                say(f"writing {out}")
+                atomic_write(out, run_csv_text(run, comments))
             if truth is not None:
-                atomic_write(truth, _truth_csv(run, comments), inputs=[out], option="--truth")
+                atomic_write(truth, _truth_csv(run, comments),
+                             inputs=[] if to_stdout else [out], option="--truth")
+    if to_stdout:
+        return  # standard output carries the readings only, ready for a pipe
     limited = int(run.limited.sum())
     write_stdout(f"wrote {len(run)} invented readings of {len(run.duts)} DUT(s) to {out} "
                  f"(seed {seed})" + (f"; {limited} reading(s) in current limit" if limited

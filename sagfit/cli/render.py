@@ -94,12 +94,17 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
         console.print(f"caution: {c}", markup=False)
 
 
+def _dof_text(dof) -> str:
+    """"1 degree of freedom", "3 degrees of freedom"."""
+    return f"{dof} degree of freedom" if dof == 1 else f"{dof} degrees of freedom"
+
+
 def _quality(chi2, dof, p, method, corr) -> str:
     if method == "ols":
-        return (f"fit quality: residual SS {chi2:.4g} on {dof} degrees of freedom (no uncertainty "
+        return (f"fit quality: residual SS {chi2:.4g} on {_dof_text(dof)} (no uncertainty "
                 f"stated: Type A, Student t); corr(Vth, Rth) = {corr:.3f}")
     pv = _p_text(p) if p is not None else "= n/a"
-    return (f"fit quality: χ² = {chi2:.3g} on {dof} degrees of freedom, p {pv}; "
+    return (f"fit quality: χ² = {chi2:.3g} on {_dof_text(dof)}, p {pv}; "
             f"corr(Vth, Rth) = {corr:.3f}")
 
 
