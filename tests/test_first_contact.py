@@ -114,3 +114,70 @@ class TestStdoutDash:
         p = tmp_path / "back.csv"
         p.write_text(run.out, encoding="utf-8")
         assert cli("fit", p, "--json").code == 0
+
+
+class TestCalibrationOverdueEverywhere:
+    """A meter past its calibration due date is named by accept and record as by fit
+    (ISO/IEC 17025:2017, 6.4.7, calibration programme; the decision is marked)."""
+
+    @staticmethod
+    def _bench(tmp_path):
+        from conftest import SAMPLES
+        text = (SAMPLES / "accept_bench.toml").read_text(encoding="utf-8")
+        p = tmp_path / "old_bench.toml"
+        p.write_text(text.replace("calibration_due = 2027-03-01",
+                                  "calibration_due = 2026-01-01", 1), encoding="utf-8")
+        return p
+
+    def test_accept_terminal_json_and_html(self, cli, tmp_path):
+        import json
+
+        from conftest import SAMPLES
+        bench = self._bench(tmp_path)
+        args = ("accept", SAMPLES / "accept_reel.csv", "--spec", SAMPLES / "accept_spec.toml",
+                "--bench", bench)
+        term = cli(*args)
+        assert "warning: calibration of the" in term.out and "2026-01-01" in term.out
+        assert "past its calibration due date" in term.out
+        doc = json.loads(cli(*args, "--json").out)
+        assert doc["decision_rule"]["calibration_overdue"] is True
+        assert any("2026-01-01" in w for w in doc["warnings"])
+        cli(*args, "--report", tmp_path / "rep")
+        html = next((tmp_path / "rep").glob("*.html")).read_text(encoding="utf-8")
+        assert "past its calibration due date" in html and "2026-01-01" in html
+
+    def test_accept_in_date_meter_is_not_marked(self, cli):
+        import json
+
+        from conftest import SAMPLES
+        doc = json.loads(cli("accept", SAMPLES / "accept_reel.csv", "--spec",
+                             SAMPLES / "accept_spec.toml", "--bench",
+                             SAMPLES / "accept_bench.toml", "--json").out)
+        assert doc["decision_rule"]["calibration_overdue"] is False and not doc["warnings"]
+
+    def test_record_terminal_json_and_history(self, cli, tmp_path):
+        import json
+        import sqlite3
+
+        from conftest import SAMPLES
+        bench = self._bench(tmp_path)
+        db = tmp_path / "h.sqlite"
+        run = cli("record", SAMPLES / "accept_reel.csv", "--bench", bench, "--db", db)
+        assert run.code in (0, 3), run.err  # 3: a board of the reel is not fitted
+        assert "warning: calibration of the" in run.out
+        doc = json.loads(cli("record", SAMPLES / "accept_reel.csv", "--bench", bench, "--db",
+                             tmp_path / "h2.sqlite", "--json").out)
+        assert any("2026-01-01" in w for w in doc["warnings"])
+        with sqlite3.connect(db) as con:
+            stored = [json.loads(r[0]) for r in con.execute("SELECT settings_json FROM "
+                                                          + _settings_table(con))]
+        assert stored and all(any("2026-01-01" in w for w in s["calibration_warnings"])
+                              for s in stored)
+
+
+def _settings_table(con) -> str:
+    for (name,) in con.execute("SELECT name FROM sqlite_master WHERE type = 'table'"):
+        cols = [r[1] for r in con.execute(f"PRAGMA table_info({name})")]
+        if "settings_json" in cols:
+            return name
+    raise AssertionError("no table with settings_json")

@@ -64,8 +64,7 @@ def accept_command(
             fits = fit(readings, confidence=settings["confidence"])
             step(f"deciding {readings.n_duts} DUT(s)")
             acc = accept(fits, the_spec, rule=rule, readings=readings)
-        need_doc = json_out or report or (out and out.lower().endswith(".json"))
-        doc = accept_document(acc, fits, readings, settings) if need_doc else None
+        doc = accept_document(acc, fits, readings, settings)
         if out:
             from ..io.outputs import atomic_write, document_pieces
             from ..report.accept_report import acceptance_csv
@@ -82,7 +81,8 @@ def accept_command(
         if json_out:
             write_document(doc, acc)
         else:
-            print_acceptance(acc, fits, readings, settings, verbose=verbose)
+            print_acceptance(acc, fits, readings, settings, verbose=verbose,
+                             warnings=doc["warnings"])
     raise typer.Exit(acc.exit_code)
 
 
@@ -92,9 +92,12 @@ def accept_document(acc, fits, readings, settings) -> dict:
     from .. import __version__
     from ..core.acceptance import DECISIONS
     from ..core.safety import fit_cautions
+    from ..core.traceability import traceability_record
 
     spec = acc.spec
     r = acc.rule
+    trace = traceability_record(settings.get("instruments", ()), readings.meta)
+    overdue = any(row["status"] == "past due" for row in trace["instruments"])
     return {
         "tool": "sagfit",
         "version": __version__,
@@ -109,8 +112,13 @@ def accept_document(acc, fits, readings, settings) -> dict:
         "decision_rule": {"rule": r.rule, "k": r.k, "guard": r.guard,
                           "min_conformance": r.min_conformance, "cap_flagged": r.cap_flagged,
                           "ignore_flags": list(r.ignore_flags),
-                          "decisions": list(DECISIONS)},
+                          "decisions": list(DECISIONS),
+                          # decisions taken with a meter past its calibration due date
+                          # (ISO/IEC 17025:2017, 6.4.7): marked, never silent
+                          "calibration_overdue": overdue},
         "settings": settings_record(settings),
+        "traceability": trace,
+        "warnings": trace["warnings"],
         "results": [],
         "summary": acc.summary(),
         "cautions": fit_cautions(fits, readings),
@@ -135,7 +143,8 @@ def _check_record(c) -> dict:
     return d
 
 
-def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) -> None:
+def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False,
+                     warnings=()) -> None:
     """The terminal view: a table of (at most 40) DUTs, worst first, then the summary."""
     import sys
 
@@ -160,6 +169,9 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
                   f"inconclusive, {s['error']} error of {s['total']} DUT(s); yield "
                   f"{100 * s['yield']:.1f} %" if s["total"] else "summary: no DUTs",
                   markup=False)
+    if warnings:
+        console.print("decisions taken with an instrument past its calibration due date: "
+                      "review them before release", markup=False)
     if s["failed_most"]:
         worst = ", ".join(f"{r['quantity']} ({r['fail']} fail, {r['inconclusive']} "
                           "inconclusive)" for r in s["failed_most"][:5])
@@ -185,6 +197,8 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
         for i in list(acc.warning_codes)[:MAX_TABLE_ROWS]:
             console.print(f"flagged {acc.duts[i]}: {', '.join(acc.warning_codes[i])}",
                           markup=False)
+    for w in warnings:
+        console.print(f"warning: {w}", markup=False)
     for c in fit_cautions(fits, readings):
         console.print(f"caution: {c}", markup=False)
 

@@ -57,7 +57,12 @@ def record_command(
             step(f"fitting {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"])
         require_some_fit(file, fits)
-        srec = settings_record(settings)
+        from ..core.traceability import traceability_record
+
+        trace = traceability_record(settings.get("instruments", ()),
+                                    {**readings.meta, **({"date": date} if date else {})})
+        # stored with the settings of every record, so the history keeps the fact
+        srec = {**settings_record(settings), "calibration_warnings": trace["warnings"]}
         with History(db, create=True) as hist:
             outcome = hist.record(
                 fits, test_time=times, file_name=file, sha256=str(readings.meta["sha256"]),
@@ -76,6 +81,7 @@ def record_command(
                "already_recorded": list(outcome.skipped),
                "not_fitted": [{"dut": d, "error": e} for d, e in failed],
                "records_in_database": total,
+               "traceability": trace, "warnings": trace["warnings"],
                "cautions": fit_cautions(fits, readings)}
         if json_out:
             write_document(doc)
@@ -100,6 +106,8 @@ def _print_record(doc) -> None:
         lines.append(f"not recorded {item['dut']}: {item['error']}")
     if len(doc["not_fitted"]) > MAX_TABLE_ROWS:
         lines.append(f"… and {len(doc['not_fitted']) - MAX_TABLE_ROWS} more DUTs not fitted")
+    for w in doc.get("warnings", []):
+        lines.append(f"warning: {w}")
     for c in doc["cautions"]:
         lines.append(f"caution: {c}")
     write_stdout("\n".join(lines) + "\n")
