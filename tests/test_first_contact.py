@@ -181,3 +181,14 @@ def _settings_table(con) -> str:
         if "settings_json" in cols:
             return name
     raise AssertionError("no table with settings_json")
+
+
+class TestReportCitesCleanly:
+    def test_method_section_has_no_developer_remarks(self, cli, tmp_path):
+        from conftest import SAMPLES
+        from sagfit.report.fit_report import METHODS
+        assert not any("memory" in what + src for what, src in METHODS)
+        run = cli("fit", SAMPLES / "pack_a.csv", "--report", tmp_path / "rep")
+        assert run.code == 0, run.err
+        html = next((tmp_path / "rep").glob("*.html")).read_text(encoding="utf-8")
+        assert "from memory" not in html and "Navas" in html
