@@ -192,3 +192,22 @@ class TestReportCitesCleanly:
         assert run.code == 0, run.err
         html = next((tmp_path / "rep").glob("*.html")).read_text(encoding="utf-8")
         assert "from memory" not in html and "Navas" in html
+
+
+class TestFlagsOneShape:
+    def test_accept_json_flags_are_fit_objects(self, cli):
+        import json
+
+        from conftest import SAMPLES
+        bench = SAMPLES / "accept_bench.toml"
+        acc = json.loads(cli("accept", SAMPLES / "accept_reel.csv", "--spec",
+                             SAMPLES / "accept_spec.toml", "--bench", bench, "--json").out)
+        fit = json.loads(cli("fit", SAMPLES / "accept_reel.csv", "--bench", bench,
+                             "--json").out)
+        fit_flags = {r["dut"]: r["flags"] for r in fit["results"]}
+        flagged = [r for r in acc["results"] if r["flags"]]
+        assert flagged, "the demo reel has a flagged board"
+        for r in flagged:
+            for f in r["flags"]:
+                assert set(f) == {"code", "severity", "message"}
+                assert f in fit_flags[r["dut"]]
