@@ -211,3 +211,16 @@ class TestFlagsOneShape:
             for f in r["flags"]:
                 assert set(f) == {"code", "severity", "message"}
                 assert f in fit_flags[r["dut"]]
+
+
+class TestTypeAColumns:
+    def test_type_a_fits_show_a_dash_and_say_why(self, cli, tmp_path):
+        p = tmp_path / "a.csv"
+        p.write_text("dut,load_ohm,voltage_V\n"
+                     "A,open,12.0\nA,10,11.94\nA,4.7,11.873\nA,2.2,11.73\n"
+                     "B,open,12.1\nB,10,12.03\nB,4.7,11.97\nB,2.2,11.83\n")
+        run = cli("fit", p)
+        assert run.code == 0, run.err
+        rows = [ln for ln in run.out.splitlines() if "ols" in ln and ln.lstrip()[:1] in "AB"]
+        assert len(rows) == 2 and all("0.00" not in r and "—" in r for r in rows)
+        assert "Type A fit" in run.out and "do not apply" in run.out

@@ -54,15 +54,22 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
                           "")
                 continue
             red = fits.chi2[i] / fits.dof[i] if fits.dof[i] > 0 else np.nan
+            type_a = str(fits.method[i]) == "ols"  # residual SS, not χ²: no χ²/ν nor p
             t.add_row(fits.duts[i], str(fits.n[i]),
                       format_estimate(fits.vth[i], fits.u_vth[i], "V"),
                       format_estimate(fits.rth[i], fits.u_rth[i], "Ω"),
                       format_estimate(fits.isc[i], fits.u_isc[i], "A"),
                       format_estimate(fits.pmax[i], fits.u_pmax[i], "W"),
-                      str(fits.method[i]), f"{red:.2f}" if np.isfinite(red) else "",
+                      str(fits.method[i]),
+                      "—" if type_a else f"{red:.2f}" if np.isfinite(red) else "",
+                      "—" if type_a else
                       format_p(fits.p_value[i]) if np.isfinite(fits.p_value[i]) else "",
                       ",".join(f.code for f in fits.flags[i] if f.severity == "warning"))
         console.print(t)
+        if any(str(fits.method[i]) == "ols" for i in shown if fits.error[i] is None):
+            console.print("χ²/ν and p — : Type A fit (no meter uncertainty stated), judged by "
+                          "its scatter alone; χ²/ν and p do not apply (residual SS in --json).",
+                          markup=False)
         if len(fits) > MAX_TABLE_ROWS:
             ok = fits.ok
             console.print(f"… {len(fits) - MAX_TABLE_ROWS} more DUTs not shown "
