@@ -222,5 +222,6 @@ class TestTypeAColumns:
         run = cli("fit", p)
         assert run.code == 0, run.err
         rows = [ln for ln in run.out.splitlines() if "ols" in ln and ln.lstrip()[:1] in "AB"]
-        assert len(rows) == 2 and all("0.00" not in r and "—" in r for r in rows)
+        cells = [[c.strip() for c in r.split("│")] for r in rows]
+        assert len(cells) == 2 and all(c[7] == "—" and c[8] == "—" for c in cells)
         assert "Type A fit" in run.out and "do not apply" in run.out
