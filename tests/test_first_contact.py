@@ -225,3 +225,21 @@ class TestTypeAColumns:
         cells = [[c.strip() for c in r.split("│")] for r in rows]
         assert len(cells) == 2 and all(c[7] == "—" and c[8] == "—" for c in cells)
         assert "Type A fit" in run.out and "do not apply" in run.out
+
+
+class TestOptionNames:
+    ARGS = ["--max-current", "10A", "--max-power", "25W", "--json"]
+
+    def test_plan_takes_simulates_names_and_keeps_the_old_ones(self, cli):
+        new = cli("plan", "--vth", "12.6V", "--rth", "50mohm", *self.ARGS)
+        old = cli("plan", "--voltage", "12.6V", "--resistance", "50mohm", *self.ARGS)
+        assert new.code == 0 and old.code == 0 and new.out == old.out
+
+    def test_help_shows_one_scheme(self, cli):
+        text = cli("plan", "--help").out
+        assert "--vth" in text and "--rth" in text
+        assert "--voltage " not in text and "--resistance" not in text
+
+    def test_missing_vth_is_a_one_line_error(self, cli):
+        run = cli("plan", "--rth", "50mohm")
+        assert run.code == 2 and run.err.startswith("error:") and "--vth" in run.err

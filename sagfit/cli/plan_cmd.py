@@ -311,10 +311,13 @@ def _refuse_real_file(out: str, option: str = "--out") -> None:
 # ------------------------------------------------------------------ plan
 @app.command("plan")
 def plan_command(
-    voltage: Annotated[str, typer.Option(
-        "--voltage", help="Expected open-circuit voltage, e.g. 12.6V.")],
-    resistance: Annotated[str, typer.Option(
-        "--resistance", help="Expected internal resistance, e.g. 50mohm.")],
+    voltage: Annotated[Optional[str], typer.Option(
+        "--vth", help="Expected open-circuit voltage Vth, e.g. 12.6V.  [required]")] = None,
+    resistance: Annotated[Optional[str], typer.Option(
+        "--rth", help="Expected internal resistance Rth, e.g. 50mohm.  [required]")] = None,
+    # the names before --vth/--rth (as 'simulate' has them), kept working but not shown
+    voltage_old: Annotated[Optional[str], typer.Option("--voltage", hidden=True)] = None,
+    resistance_old: Annotated[Optional[str], typer.Option("--resistance", hidden=True)] = None,
     max_current: Annotated[Optional[str], typer.Option(
         "--max-current", help="The source's safe current, e.g. 10A.")] = None,
     max_power: Annotated[Optional[str], typer.Option(
@@ -339,15 +342,23 @@ def plan_command(
     """Propose loads for a load test: expected readings, dissipation, and the predicted
     uncertainties of Vth and Rth, with the usual cautions."""
     with guarded("plan"):
+        from ..core.errors import OptionError
         from ..core.planning import plan
+
+        voltage = voltage if voltage is not None else voltage_old
+        resistance = resistance if resistance is not None else resistance_old
+        for value, name, example in ((voltage, "--vth", "12.6V"),
+                                     (resistance, "--rth", "50mohm")):
+            if value is None:
+                raise OptionError(name, f"is required (the expected value, e.g. {example})")
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench)
         from ..core.errors import InputError
 
         try:
             result = plan(
-                _quantity(voltage, "V", "--voltage"),
-                _resistance(resistance, "--resistance", allow_open=False, allow_short=False),
+                _quantity(voltage, "V", "--vth"),
+                _resistance(resistance, "--rth", allow_open=False, allow_short=False),
                 max_current=_quantity(max_current, "A", "--max-current"),
                 max_power=_quantity(max_power, "W", "--max-power"),
                 series=_series(series), points=_points(points),
@@ -398,7 +409,7 @@ def _plan_option_error(exc):
     msg = str(exc)
     head, _, rest = msg.partition(": ")
     opt = {"have": "--have", "derating": "--derating", "load_tolerance": "--load-tolerance",
-           "voltage": "--voltage", "resistance": "--resistance"}.get(head)
+           "voltage": "--vth", "resistance": "--rth"}.get(head)
     if opt:
         return OptionError(opt, rest)
     return InputError("plan refused: " + msg)
