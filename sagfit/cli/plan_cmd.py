@@ -345,6 +345,8 @@ def plan_command(
         from ..core.errors import OptionError
         from ..core.planning import plan
 
+        v_name = "--vth" if voltage is not None or voltage_old is None else "--voltage"
+        r_name = "--rth" if resistance is not None or resistance_old is None else "--resistance"
         voltage = voltage if voltage is not None else voltage_old
         resistance = resistance if resistance is not None else resistance_old
         for value, name, example in ((voltage, "--vth", "12.6V"),
@@ -357,8 +359,8 @@ def plan_command(
 
         try:
             result = plan(
-                _quantity(voltage, "V", "--vth"),
-                _resistance(resistance, "--rth", allow_open=False, allow_short=False),
+                _quantity(voltage, "V", v_name),
+                _resistance(resistance, r_name, allow_open=False, allow_short=False),
                 max_current=_quantity(max_current, "A", "--max-current"),
                 max_power=_quantity(max_power, "W", "--max-power"),
                 series=_series(series), points=_points(points),
@@ -372,7 +374,7 @@ def plan_command(
 
             if isinstance(exc, OptionError):
                 raise
-            raise _plan_option_error(exc) from None
+            raise _plan_option_error(exc, v_name, r_name) from None
         if json_out:
             from .. import __version__
 
@@ -402,14 +404,14 @@ def _points(n: int) -> int:
     return n
 
 
-def _plan_option_error(exc):
+def _plan_option_error(exc, v_name: str = "--vth", r_name: str = "--rth"):
     """A planning refusal: name the option when the message names a parameter."""
     from ..core.errors import InputError, OptionError
 
     msg = str(exc)
     head, _, rest = msg.partition(": ")
     opt = {"have": "--have", "derating": "--derating", "load_tolerance": "--load-tolerance",
-           "voltage": "--vth", "resistance": "--rth"}.get(head)
+           "voltage": v_name, "resistance": r_name}.get(head)
     if opt:
         return OptionError(opt, rest)
     return InputError("plan refused: " + msg)
