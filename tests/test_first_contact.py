@@ -243,3 +243,42 @@ class TestOptionNames:
     def test_missing_vth_is_a_one_line_error(self, cli):
         run = cli("plan", "--rth", "50mohm")
         assert run.code == 2 and run.err.startswith("error:") and "--vth" in run.err
+
+
+def _readme_commands():
+    """Every `sagfit …` command of the README's shell blocks, continuation lines joined."""
+    import re
+
+    from conftest import ROOT
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    cmds = []
+    for block in re.findall(r"```(?:sh|console|bash)\n(.*?)```", text, flags=re.S):
+        joined = re.sub(r"\\\n\s*", " ", block)
+        for line in joined.splitlines():
+            line = line.split("  #")[0].strip().removeprefix("$ ")
+            if "&&" in line:
+                line = line.split("&&")[-1].strip()
+            if line.startswith("sagfit "):
+                cmds.append(line)
+    return cmds
+
+
+class TestReadmeRunsAsWritten:
+    def test_readme_has_commands(self):
+        assert len(_readme_commands()) >= 10
+
+    @pytest.mark.slow
+    def test_every_command_runs(self, cli, tmp_path, monkeypatch):
+        """In order, in a fresh folder holding the sample files (later commands read what
+        earlier ones wrote, as a reader following the README would)."""
+        import shlex
+        import shutil
+
+        from conftest import SAMPLES
+        shutil.copytree(SAMPLES, tmp_path / "sample_runs")
+        monkeypatch.chdir(tmp_path)
+        for cmd in _readme_commands():
+            run = cli(*shlex.split(cmd)[1:])
+            # accept exits 1/3 for fail/inconclusive boards: a decision, not a bad command
+            assert run.code in (0, 1, 3), f"{cmd}: {run.err}"
+            assert "Traceback" not in run.err
