@@ -282,3 +282,22 @@ class TestReadmeRunsAsWritten:
             # accept exits 1/3 for fail/inconclusive boards: a decision, not a bad command
             assert run.code in (0, 1, 3), f"{cmd}: {run.err}"
             assert "Traceback" not in run.err
+
+
+class TestOnePrefixPerValue:
+    def test_interval_takes_the_estimates_prefix(self):
+        assert format_estimate(999.98, 0.16, "Ω") == "999.98 ± 0.16 Ω"
+        text = format_interval(999.54, 1000.41, "Ω", 0.16, 999.98)
+        assert text == "[999.54, 1000.41] Ω"
+        assert format_interval(999.54, 1000.41, "Ω", 0.16) == "[0.99954, 1.00041] kΩ"
+
+    def test_fit_table_shows_one_prefix_per_row(self, cli, tmp_path):
+        # a source near 1 kΩ, whose interval crosses 1 kΩ (invented readings)
+        p = tmp_path / "k.csv"
+        p.write_text("load_ohm,voltage_V\nopen,10.000\n10000,9.0912\n4700,8.2450\n"
+                     "2200,6.8762\n1000,5.0003\n")
+        run = cli("fit", p, "--voltage-accuracy", "0.01%+0.2mV", "--load-tolerance", "0.1%")
+        assert run.code == 0, run.err
+        row = next(ln for ln in run.out.splitlines() if "internal resistance" in ln)
+        assert row.count("kΩ") + row.count(" Ω") == 2
+        assert (row.count("kΩ") in (0, 2))

@@ -35,7 +35,7 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
                                  ("short-circuit current Isc", r.isc, "A"),
                                  ("maximum power Pmax", r.pmax, "W")):
             t.add_row(label, format_estimate(est.value, est.u, unit),
-                      format_interval(est.ci_low, est.ci_high, unit, est.u))
+                      format_interval(est.ci_low, est.ci_high, unit, est.u, est.value))
         console.print(t)
         console.print(_quality(r.chi2, r.dof, r.p_value, r.method, r.corr_vth_rth))
         knee = _knee_line(fits, 0)

@@ -93,11 +93,19 @@ def format_estimate(value: float, u: float | None, unit: str = "") -> str:
     return f"{_fmt_fixed(v, d)} ± {_fmt_fixed(uu, d)} {prefix}{unit}".rstrip()
 
 
-def format_interval(lo: float, hi: float, unit: str = "", u: float | None = None) -> str:
-    """``[lo, hi] unit`` with one prefix, rounded like an estimate with uncertainty ``u``."""
+def format_interval(lo: float, hi: float, unit: str = "", u: float | None = None,
+                    value: float | None = None) -> str:
+    """``[lo, hi] unit`` with one prefix, rounded like an estimate with uncertainty ``u``.
+
+    Given the estimate ``value``, the interval takes the prefix its ``value ± u`` is shown
+    with, so the two read side by side (``999.98 ± 0.16 Ω`` beside ``[999.54, 1000.41] Ω``,
+    not ``[0.99954, 1.00041] kΩ``).
+    """
     if lo is None or hi is None or not (math.isfinite(lo) and math.isfinite(hi)):
         return "n/a"
     ref = max(abs(lo), abs(hi))
+    if value is not None and math.isfinite(value) and value != 0:
+        ref = abs(value) if not (u and math.isfinite(u) and u > abs(value)) else u
     if _beyond_prefixes(ref):
         return f"[{_sci(lo, '')}, {_sci(hi, '')}] {unit}".rstrip()
     scale, prefix = si_prefix(ref)

@@ -509,7 +509,7 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
             rows.append(f"<tr><td>{_e(label)}</td>"
                         f"<td class='num'>{_e(format_estimate(est.value, est.u, unit))}</td>"
                         "<td class='num'>"
-                        f"{_e(format_interval(est.ci_low, est.ci_high, unit, est.u))}</td></tr>")
+                        f"{_e(format_interval(est.ci_low, est.ci_high, unit, est.u, est.value))}</td></tr>")
         p = format_p(fi.p_value)
         parts.append("<table><tr><th>Quantity</th><th class='num'>value ± u</th>"
                      f"<th class='num'>{_e(lvl)} interval (k = {fi.coverage_factor:.3g})</th>"
