@@ -301,3 +301,31 @@ class TestOnePrefixPerValue:
         row = next(ln for ln in run.out.splitlines() if "internal resistance" in ln)
         assert row.count("kΩ") + row.count(" Ω") == 2
         assert (row.count("kΩ") in (0, 2))
+
+
+class TestIscPmaxExtrapolated:
+    def test_regulator_board_labels_isc_and_pmax(self, cli, tmp_path):
+        import json
+
+        from conftest import SAMPLES
+        src = SAMPLES / "reg5v_board.csv"
+        term = cli("fit", src)
+        assert "short-circuit current Isc (extrapolated)" in term.out
+        assert "maximum power Pmax (extrapolated)" in term.out
+        doc = json.loads(cli("fit", src, "--json").out)
+        assert doc["extrapolated"]["isc"] == ["reg5v_board"] == doc["extrapolated"]["pmax"]
+        cli("fit", src, "--report", tmp_path / "rep")
+        html = next((tmp_path / "rep").glob("*.html")).read_text(encoding="utf-8")
+        assert "extrapolated beyond the tested currents" in html
+
+    def test_sweep_to_near_short_is_not_labelled(self):
+        from sagfit.core.analysis import fit
+        from sagfit.core.extrapolation import extrapolated_isc_pmax
+        # invented: 1.5 V cell, Rth 0.5 Ω, swept from open to 2.9 A (Isc = 3 A)
+        i = np.array([0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 2.9])
+        r = Readings.from_arrays(voltage=1.5 - 0.5 * i, current=i)
+        ex_isc, ex_pmax = extrapolated_isc_pmax(fit(r), r)
+        assert not ex_isc[0] and not ex_pmax[0]
+        r2 = Readings.from_arrays(voltage=1.5 - 0.5 * i[:3], current=i[:3])
+        ex_isc, ex_pmax = extrapolated_isc_pmax(fit(r2), r2)
+        assert ex_isc[0] and ex_pmax[0]

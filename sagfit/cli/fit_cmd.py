@@ -123,7 +123,10 @@ def fit_document(fits, readings, settings) -> dict:
 
     from ..core.traceability import traceability_record
 
+    from ..core.extrapolation import REACHED, extrapolated_isc_pmax
+
     trace = traceability_record(settings.get("instruments", ()), readings.meta)
+    ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
     return {
         "tool": "sagfit",
         "version": __version__,
@@ -135,6 +138,11 @@ def fit_document(fits, readings, settings) -> dict:
         "traceability": trace,
         "warnings": trace["warnings"],
         "results": [],
+        # Isc and Pmax read off the line beyond the tested currents, by DUT
+        "extrapolated": {"isc": [d for d, x in zip(fits.duts, ex_isc) if x],
+                         "pmax": [d for d, x in zip(fits.duts, ex_pmax) if x],
+                         "rule": f"tested current below {REACHED:g}·Isc (Isc) or "
+                                 f"{REACHED:g}·Isc/2 (Pmax)"},
         "cautions": fit_cautions(fits, readings),
     }
 

@@ -30,10 +30,15 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
         t.add_column("quantity")
         t.add_column("value ± u", justify="right")
         t.add_column(f"{lvl} interval", justify="right")
+        from ..core.extrapolation import extrapolated_isc_pmax
+
+        ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
+        xi = " (extrapolated)" if ex_isc[0] else ""
+        xp = " (extrapolated)" if ex_pmax[0] else ""
         for label, est, unit in (("open-circuit voltage Vth", r.vth, "V"),
                                  ("internal resistance Rth", r.rth, "Ω"),
-                                 ("short-circuit current Isc", r.isc, "A"),
-                                 ("maximum power Pmax", r.pmax, "W")):
+                                 ("short-circuit current Isc" + xi, r.isc, "A"),
+                                 ("maximum power Pmax" + xp, r.pmax, "W")):
             t.add_row(label, format_estimate(est.value, est.u, unit),
                       format_interval(est.ci_low, est.ci_high, unit, est.u, est.value))
         console.print(t)

@@ -502,10 +502,16 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
     else:
         lvl = f"{100 * fits.confidence:.4g} %"
         rows = []
+        from ..core.extrapolation import extrapolated_isc_pmax
+
+        ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
+        ex = ", extrapolated beyond the tested currents"
         for label, est, unit in (("Vth (open-circuit voltage)", fi.vth, "V"),
                                  ("Rth (internal resistance)", fi.rth, "Ω"),
-                                 ("Isc (Norton current, computed)", fi.isc, "A"),
-                                 ("Pmax (into R = Rth)", fi.pmax, "W")):
+                                 ("Isc (Norton current, computed"
+                                  + (ex if ex_isc[i] else "") + ")", fi.isc, "A"),
+                                 ("Pmax (into R = Rth" + (ex if ex_pmax[i] else "") + ")",
+                                  fi.pmax, "W")):
             rows.append(f"<tr><td>{_e(label)}</td>"
                         f"<td class='num'>{_e(format_estimate(est.value, est.u, unit))}</td>"
                         "<td class='num'>"
