@@ -329,3 +329,8 @@ class TestIscPmaxExtrapolated:
         r2 = Readings.from_arrays(voltage=1.5 - 0.5 * i[:3], current=i[:3])
         ex_isc, ex_pmax = extrapolated_isc_pmax(fit(r2), r2)
         assert ex_isc[0] and ex_pmax[0]
+
+
+def test_dut_option_help_wording(cli):
+    text = " ".join(cli("fit", "--help").out.split())
+    assert "Only these DUTs, e.g. 'A1' or 'A1,A7'." in text

@@ -12,8 +12,8 @@ import typer
 from ..core.errors import InputError, OptionError, SagfitError
 
 # Options shared by every command that fits readings (declared once, used by each).
-DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only this DUT (comma-separated "
-                                                             "list allowed).")]
+DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only these DUTs, e.g. "
+                                                             "'A1' or 'A1,A7'.")]
 ConfidenceOpt = Annotated[Optional[float], typer.Option(
     "--confidence", help="Confidence level of the intervals [default: 0.95].")]
 VoltageAccOpt = Annotated[Optional[str], typer.Option(
