@@ -334,3 +334,25 @@ class TestIscPmaxExtrapolated:
 def test_dut_option_help_wording(cli):
     text = " ".join(cli("fit", "--help").out.split())
     assert "Only these DUTs, e.g. 'A1' or 'A1,A7'." in text
+
+
+class TestQuiet:
+    @pytest.mark.parametrize("cmd", ["fit", "accept", "record"])
+    def test_quiet_drops_cautions_in_the_terminal_only(self, cli, tmp_path, cmd):
+        import json
+
+        from conftest import SAMPLES
+        src = SAMPLES / "pack_a.csv"
+        extra = {"fit": [], "accept": ["--spec", SAMPLES / "accept_spec.toml"],
+                 "record": ["--db", tmp_path / "h.sqlite"]}[cmd]
+        loud = cli(cmd, src, *extra, "--bench", SAMPLES / "bench.toml")
+        assert "caution:" in loud.out
+        if cmd == "record":
+            extra = ["--db", tmp_path / "h2.sqlite"]
+        quiet = cli(cmd, src, *extra, "--bench", SAMPLES / "bench.toml", "--quiet")
+        assert quiet.code == loud.code and "caution:" not in quiet.out
+        if cmd == "record":
+            extra = ["--db", tmp_path / "h3.sqlite"]
+        doc = json.loads(cli(cmd, src, *extra, "--bench", SAMPLES / "bench.toml", "--quiet",
+                             "--json").out)
+        assert doc["cautions"]

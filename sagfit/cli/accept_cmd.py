@@ -13,7 +13,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
+                     QuietOpt, VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, settings_record, show_progress, write_document)
 
 MAX_TABLE_ROWS = 40
@@ -40,6 +40,7 @@ def accept_command(
         "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
                          "folder.")] = None,
     verbose: VerboseOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Decide every DUT against the spec's limits, taking the measurement uncertainty
     into account (JCGM 106:2012, ILAC-G8:09/2019)."""
@@ -82,7 +83,7 @@ def accept_command(
             write_document(doc, acc)
         else:
             print_acceptance(acc, fits, readings, settings, verbose=verbose,
-                             warnings=doc["warnings"])
+                             warnings=doc["warnings"], quiet=quiet)
     raise typer.Exit(acc.exit_code)
 
 
@@ -144,7 +145,7 @@ def _check_record(c) -> dict:
 
 
 def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False,
-                     warnings=()) -> None:
+                     warnings=(), quiet: bool = False) -> None:
     """The terminal view: a table of (at most 40) DUTs, worst first, then the summary."""
     import sys
 
@@ -199,7 +200,7 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False,
                           markup=False)
     for w in warnings:
         console.print(f"warning: {w}", markup=False)
-    for c in fit_cautions(fits, readings):
+    for c in [] if quiet else fit_cautions(fits, readings):
         console.print(f"caution: {c}", markup=False)
 
 

@@ -26,6 +26,9 @@ LoadTolOpt = Annotated[Optional[str], typer.Option(
 BenchOpt = Annotated[Optional[str], typer.Option(
     "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document to stdout.")]
+QuietOpt = Annotated[bool, typer.Option(
+    "--quiet", "-q", help="Routine run: leave out the safety cautions in the terminal "
+                          "(they stay in --json and the reports).")]
 VerboseOpt = Annotated[bool, typer.Option("--verbose", "-v", help="Also list ignored columns "
                                                                   "and the settings used.")]
 

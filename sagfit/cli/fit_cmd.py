@@ -8,7 +8,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
+                     QuietOpt, VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_document)
 
@@ -28,6 +28,7 @@ def fit_command(
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the results to this .csv or .json file.")] = None,
     verbose: VerboseOpt = False,
+    quiet: QuietOpt = False,
     level: Annotated[float, typer.Option(
         "--level", help="Significance level of the non-linearity checks.")] = 0.01,
     current_range: Annotated[Optional[str], typer.Option(
@@ -90,7 +91,7 @@ def fit_command(
         else:
             from .render import print_fits
 
-            print_fits(fits, readings, doc, verbose=verbose)
+            print_fits(fits, readings, doc, verbose=verbose, quiet=quiet)
     raise typer.Exit(3 if fits.error.count(None) != len(fits.error) else 0)
 
 

@@ -10,7 +10,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VoltageAccOpt, fit_settings, guarded, interactive, load_readings, progress,
+                     QuietOpt, VoltageAccOpt, fit_settings, guarded, interactive, load_readings, progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
 MAX_TABLE_ROWS = 40
@@ -36,6 +36,7 @@ def record_command(
     load_tolerance: LoadTolOpt = None,
     bench: BenchOpt = None,
     json_out: JsonOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Fit every DUT in FILE and append the results to the history database."""
     with guarded(file):
@@ -86,11 +87,11 @@ def record_command(
         if json_out:
             write_document(doc)
         else:
-            _print_record(doc)
+            _print_record(doc, quiet=quiet)
     raise typer.Exit(3 if failed else 0)
 
 
-def _print_record(doc) -> None:
+def _print_record(doc, quiet: bool = False) -> None:
     when = ", ".join(doc["input"]["dates"][:3]) + ("…" if len(doc["input"]["dates"]) > 3 else "")
     lines = []
     n_new = len(doc["recorded"]) + len(doc["replaced"])
@@ -108,7 +109,7 @@ def _print_record(doc) -> None:
         lines.append(f"… and {len(doc['not_fitted']) - MAX_TABLE_ROWS} more DUTs not fitted")
     for w in doc.get("warnings", []):
         lines.append(f"warning: {w}")
-    for c in doc["cautions"]:
+    for c in [] if quiet else doc["cautions"]:
         lines.append(f"caution: {c}")
     write_stdout("\n".join(lines) + "\n")
 

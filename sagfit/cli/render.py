@@ -18,7 +18,7 @@ def _console():
     return Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
 
 
-def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
+def print_fits(fits, readings, doc, *, verbose: bool = False, quiet: bool = False) -> None:
     from rich.table import Table
 
     console = _console()
@@ -102,7 +102,7 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
                       f"{str(s['load_tolerance_pct']) + ' %' if s['load_tolerance_pct'] is not None else 'not stated'}")
     for w in doc.get("warnings", []):
         console.print(f"warning: {w}", markup=False)
-    for c in doc.get("cautions", []):
+    for c in [] if quiet else doc.get("cautions", []):
         console.print(f"caution: {c}", markup=False)
 
 
