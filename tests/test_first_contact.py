@@ -356,3 +356,24 @@ class TestQuiet:
         doc = json.loads(cli(cmd, src, *extra, "--bench", SAMPLES / "bench.toml", "--quiet",
                              "--json").out)
         assert doc["cautions"]
+
+
+class TestCautionsFollowTheData:
+    def test_electronic_load_readings_raise_no_hot_resistor_caution(self, cli, tmp_path):
+        p = tmp_path / "iv.csv"  # invented: electronic-load sweep, 70 W at the last step
+        p.write_text("current_A,voltage_V\n0,12.0\n2,11.9\n4,11.8\n6,11.7\n")
+        run = cli("fit", p)
+        assert "Hot load resistors" not in run.out
+
+    def test_resistor_readings_still_warn(self, cli, tmp_path):
+        p = tmp_path / "r.csv"  # invented: 12 V source into 2 Ω, about 70 W in the resistor
+        p.write_text("load_ohm,voltage_V\nopen,12.0\n10,11.94\n4.7,11.87\n2,11.7\n")
+        run = cli("fit", p)
+        assert "Hot load resistors" in run.out
+
+    def test_short_circuit_caution_does_not_assume_a_battery(self, cli, tmp_path):
+        p = tmp_path / "iv.csv"
+        p.write_text("current_A,voltage_V\n0,12.0\n2,11.9\n4,11.8\n6,11.7\n")
+        run = cli("fit", p)
+        assert "High prospective short-circuit current" in run.out
+        assert "battery" not in run.out
