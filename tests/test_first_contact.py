@@ -25,7 +25,7 @@ class TestOverloadAndPlausibility:
 
     def test_implausible_magnitude_names_the_unit_slip(self):
         with pytest.raises(ReadingsFileError, match="implausible"):
-            Readings.from_arrays(voltage=[12.0, 11.9], current=[0.0, 3.0e6], line=[2, 3])
+            Readings.from_arrays(voltage=[12.0, 11.9], current=[0.0, 3.0e10], line=[2, 3])
 
     def test_ordinary_readings_pass(self):
         r = Readings.from_arrays(voltage=[12.0, 11.9], current=[0.0, 1.0],

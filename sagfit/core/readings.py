@@ -33,10 +33,11 @@ __all__ = ["Readings", "Note"]
 # SCPI instruments return 9.9E+37 for an overload and 9.91E+37 for "not a number"
 # (SCPI-99, vol. 1, 7.2.1.5); anything at or above it is a code, never a reading.
 _OVERLOAD = 9.0e37
-# Plausibility limits of a bench reading: far beyond any DC bench source or load (common
-# practice), so a value above them is a unit slip or an instrument code, not a measurement.
-_MAX_VOLTAGE = 1.0e6  # 1 MV
-_MAX_CURRENT = 1.0e5  # 100 kA
+# Plausibility limits of a reading: orders of magnitude beyond any DC bench source or load
+# (common practice), so a value above them is an instrument code or a gross unit slip, not a
+# measurement. Wide on purpose: a model study may scale a source far past a real bench.
+_MAX_VOLTAGE = 1.0e9  # 1 GV
+_MAX_CURRENT = 1.0e9  # 1 GA
 _MAX_LOAD = 1.0e15  # 1 PΩ (open circuits are written 'open' or inf)
 
 
