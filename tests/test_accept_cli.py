@@ -180,7 +180,7 @@ class TestOutputs:
                 rows.append(f"{name},{i},{v0 - r * i:.4f}")
         src.write_text("\n".join(rows) + "\n", encoding="utf-8")
         spec = tmp_path / "s.toml"
-        spec.write_text("[limits.vth]\nmin = 4.9\n[[limits.regulation]]\nlight = \"0A\"\n"
+        spec.write_text("[limits.vth]\nmin = \"4.9V\"\n[[limits.regulation]]\nlight = \"0A\"\n"
                         "heavy = \"1.5A\"\nmax = \"1%\"\n", encoding="utf-8")
         out = tmp_path / "d.csv"
         run = cli("accept", src, "--spec", spec, "--voltage-accuracy", "0.01%+0.5mV",

@@ -317,7 +317,9 @@ class TestUnitDecision:
         assert accept(fits, loose).decision.tolist() == [PASS, PASS, FAIL]
         ignore = Spec(self.SPEC.checks, DecisionRule(ignore_flags=("curvature",)))
         assert accept(fits, ignore).decision.tolist() == [PASS, PASS, FAIL]
-        assert accept(fits, self.SPEC).to_dicts([0])[0]["flags"] == ["curvature"]
+        flags = accept(fits, self.SPEC).to_dicts([0])[0]["flags"]
+        assert [f["code"] for f in flags] == ["curvature"]  # fit's shape: code, severity,
+        assert flags[0]["severity"] == "warning" and flags[0]["message"]  # message
 
     def test_exit_codes(self):
         """0 all pass, 3 inconclusive or error without a fail, 1 with any fail."""

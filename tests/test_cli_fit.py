@@ -242,7 +242,7 @@ class TestCautions:
         """accept and record raise the cautions that fit raises for the same readings."""
         supply = SAMPLES / "bench_supply_limit.csv"
         spec = tmp_path / "s.toml"
-        spec.write_text("[limits.vth]\nmin = 11\nmax = 13\n")
+        spec.write_text("[limits.vth]\nmin = \"11V\"\nmax = \"13V\"\n")
         fit_doc = json.loads(cli("fit", supply, "--bench", BENCH, "--json").out)
         acc_doc = json.loads(cli("accept", supply, "--spec", spec, "--bench", BENCH,
                                  "--json").out)

@@ -13,10 +13,10 @@ from sagfit.io.spec import parse_spec, read_spec
 
 MINIMAL = """
 [limits.vth]
-min = 4.75
-max = 5.25
+min = "4.75V"
+max = "5.25V"
 [limits.rth]
-max = 0.1
+max = "0.1ohm"
 [decision]
 rule = "guarded"
 """
@@ -109,10 +109,10 @@ class TestValidSpecs:
 
 class TestErrorsNameTheKey:
     @pytest.mark.parametrize("text,key,words", [
-        ("[limits.vth]\nmin = 5.3\nmax = 5.2\n", "limits.vth.min", "above max"),
+        ("[limits.vth]\nmin = \"5.3V\"\nmax = \"5.2V\"\n", "limits.vth.min", "above max"),
         ("[limits.vth]\nminimum = 5.3\n", "limits.vth.minimum", "unknown key"),
-        ("[limit.vth]\nmin = 5.3\n", "limit", "unknown section"),
-        ("[limits.vtH]\nmin = 5.3\n", "limits.vtH", "unknown key"),
+        ("[limit.vth]\nmin = \"5.3V\"\n", "limit", "unknown section"),
+        ("[limits.vtH]\nmin = \"5.3V\"\n", "limits.vtH", "unknown key"),
         ("[limits.vth]\nmin = true\n", "limits.vth.min", "true/false"),
         ("[limits.vth]\nmin = [1, 2]\n", "limits.vth.min", "number"),
         ("[limits.vth]\nmin = \"4.75A\"\n", "limits.vth.min", "in V"),
@@ -124,24 +124,24 @@ class TestErrorsNameTheKey:
          "missing"),
         ("[limits.regulation]\nlight = \"1ohm\"\nheavy = \"2ohm\"\nmax = \"1%\"\n",
          "limits.regulation.light", "less current"),
-        ("[[limits.voltage]]\nat = 1.5\nmin = 4.8\n", "limits.voltage[0].at", "ambiguous"),
-        ("[[limits.voltage]]\nat = \"1.5\"\nmin = 4.8\n", "limits.voltage[0].at", "ambiguous"),
-        ("[[limits.voltage]]\nat = \"100m\"\nmin = 4.8\n", "limits.voltage[0].at", "ambiguous"),
-        ("[[limits.voltage]]\nat = \"0ohm\"\nmin = 4.8\n", "limits.voltage[0].at", "short"),
-        ("[[limits.voltage]]\nmin = 4.8\n", "limits.voltage[0].at", "missing"),
-        ("[[limits.voltage]]\nat = \"1A\"\nmin = 4.8\n[[limits.voltage]]\nat = \"1A\"\n"
-         "min = 4.7\n", "limits.voltage[1]", "used twice"),
-        ("[limits.vth]\nmin = 4.8\n[decision]\nrule = \"lenient\"\n", "decision.rule",
+        ("[[limits.voltage]]\nat = 1.5\nmin = \"4.8V\"\n", "limits.voltage[0].at", "ambiguous"),
+        ("[[limits.voltage]]\nat = \"1.5\"\nmin = \"4.8V\"\n", "limits.voltage[0].at", "ambiguous"),
+        ("[[limits.voltage]]\nat = \"100m\"\nmin = \"4.8V\"\n", "limits.voltage[0].at", "ambiguous"),
+        ("[[limits.voltage]]\nat = \"0ohm\"\nmin = \"4.8V\"\n", "limits.voltage[0].at", "short"),
+        ("[[limits.voltage]]\nmin = \"4.8V\"\n", "limits.voltage[0].at", "missing"),
+        ("[[limits.voltage]]\nat = \"1A\"\nmin = \"4.8V\"\n[[limits.voltage]]\nat = \"1A\"\n"
+         "min = \"4.7V\"\n", "limits.voltage[1]", "used twice"),
+        ("[limits.vth]\nmin = \"4.8V\"\n[decision]\nrule = \"lenient\"\n", "decision.rule",
          "one of"),
-        ("[limits.vth]\nmin = 4.8\n[decision]\nk = 2\nconfidence = 0.95\n", "decision.k",
+        ("[limits.vth]\nmin = \"4.8V\"\n[decision]\nk = 2\nconfidence = 0.95\n", "decision.k",
          "either"),
-        ("[limits.vth]\nmin = 4.8\n[decision]\nconfidence = 95\n", "decision.confidence",
+        ("[limits.vth]\nmin = \"4.8V\"\n[decision]\nconfidence = 95\n", "decision.confidence",
          "between 0 and 1"),
-        ("[limits.vth]\nmin = 4.8\n[decision]\nmin_conformance = 0.4\n",
+        ("[limits.vth]\nmin = \"4.8V\"\n[decision]\nmin_conformance = 0.4\n",
          "decision.min_conformance", "above 0.5"),
-        ("[limits.vth]\nmin = 4.8\n[decision]\ncap_flagged = \"yes\"\n", "decision.cap_flagged",
+        ("[limits.vth]\nmin = \"4.8V\"\n[decision]\ncap_flagged = \"yes\"\n", "decision.cap_flagged",
          "true or false"),
-        ("[limits.vth]\nmin = 4.8\n[decision]\nignore_flags = \"curvature\"\n",
+        ("[limits.vth]\nmin = \"4.8V\"\n[decision]\nignore_flags = \"curvature\"\n",
          "decision.ignore_flags", "list"),
         ("[decision]\nrule = \"simple\"\n", "limits", "no limits"),
         ("[limits.vth]\nmin = inf\n", "limits.vth.min", "finite"),

@@ -10,6 +10,7 @@ decided or fitted; 130 interrupted.
 
 from __future__ import annotations
 
+import re
 import sys
 
 import typer
@@ -61,7 +62,13 @@ for _mod in ("predict_cmd", "accept_cmd", "history_cmd", "plan_cmd", "design_cmd
 
 
 def _one_line(text: str) -> str:
-    return " ".join(str(text).split())
+    """The message on one line, each sentence once (click and typer may both add the same
+    "Did you mean …?" suggestion)."""
+    out: list[str] = []
+    for part in re.split(r"(?<=[.?!])\s+", " ".join(str(text).split())):
+        if part and part not in out:
+            out.append(part)
+    return " ".join(out)
 
 
 def main(argv: list[str] | None = None) -> None:

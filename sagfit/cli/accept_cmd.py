@@ -12,8 +12,9 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
+from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+                     VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, settings_record, show_progress, write_document)
 
 MAX_TABLE_ROWS = 40
@@ -43,6 +44,7 @@ def accept_command(
         "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
                          "folder.")] = None,
     verbose: VerboseOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Decide every DUT against the spec's limits, taking the measurement uncertainty
     into account (JCGM 106:2012, ILAC-G8:09/2019)."""
@@ -69,8 +71,7 @@ def accept_command(
             fits = fit(readings, confidence=settings["confidence"])
             step(f"deciding {readings.n_duts} DUT(s)")
             acc = accept(fits, the_spec, rule=rule, readings=readings)
-        need_doc = json_out or report or (out and out.lower().endswith(".json"))
-        doc = accept_document(acc, fits, readings, settings) if need_doc else None
+        doc = accept_document(acc, fits, readings, settings)
         if out:
             from ..io.outputs import atomic_write, document_pieces
             from ..report.accept_report import acceptance_csv
@@ -87,7 +88,8 @@ def accept_command(
         if json_out:
             write_document(doc, acc)
         else:
-            print_acceptance(acc, fits, readings, settings, verbose=verbose)
+            print_acceptance(acc, fits, readings, settings, verbose=verbose,
+                             warnings=doc["warnings"], quiet=quiet)
     raise typer.Exit(acc.exit_code)
 
 
@@ -97,9 +99,12 @@ def accept_document(acc, fits, readings, settings) -> dict:
     from .. import __version__
     from ..core.acceptance import DECISIONS
     from ..core.safety import fit_cautions
+    from ..core.traceability import traceability_record
 
     spec = acc.spec
     r = acc.rule
+    trace = traceability_record(settings.get("instruments", ()), readings.meta)
+    overdue = any(row["status"] == "past due" for row in trace["instruments"])
     return {
         "tool": "sagfit",
         "version": __version__,
@@ -114,8 +119,13 @@ def accept_document(acc, fits, readings, settings) -> dict:
         "decision_rule": {"rule": r.rule, "k": r.k, "guard": r.guard,
                           "min_conformance": r.min_conformance, "cap_flagged": r.cap_flagged,
                           "ignore_flags": list(r.ignore_flags),
-                          "decisions": list(DECISIONS)},
+                          "decisions": list(DECISIONS),
+                          # decisions taken with a meter past its calibration due date
+                          # (ISO/IEC 17025:2017, 6.4.7): marked, never silent
+                          "calibration_overdue": overdue},
         "settings": settings_record(settings),
+        "traceability": trace,
+        "warnings": trace["warnings"],
         "results": [],
         "summary": acc.summary(),
         "cautions": fit_cautions(fits, readings),
@@ -140,7 +150,8 @@ def _check_record(c) -> dict:
     return d
 
 
-def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) -> None:
+def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False,
+                     warnings=(), quiet: bool = False) -> None:
     """The terminal view: a table of (at most 40) DUTs, worst first, then the summary."""
     import sys
 
@@ -165,6 +176,9 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
                   f"inconclusive, {s['error']} error of {s['total']} DUT(s); yield "
                   f"{100 * s['yield']:.1f} %" if s["total"] else "summary: no DUTs",
                   markup=False)
+    if warnings:
+        console.print("decisions taken with an instrument past its calibration due date: "
+                      "review them before release", markup=False)
     if s["failed_most"]:
         worst = ", ".join(f"{r['quantity']} ({r['fail']} fail, {r['inconclusive']} "
                           "inconclusive)" for r in s["failed_most"][:5])
@@ -190,7 +204,9 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False) ->
         for i in list(acc.warning_codes)[:MAX_TABLE_ROWS]:
             console.print(f"flagged {acc.duts[i]}: {', '.join(acc.warning_codes[i])}",
                           markup=False)
-    for c in fit_cautions(fits, readings):
+    for w in warnings:
+        console.print(f"warning: {w}", markup=False)
+    for c in [] if quiet else fit_cautions(fits, readings):
         console.print(f"caution: {c}", markup=False)
 
 

@@ -12,8 +12,8 @@ import typer
 from ..core.errors import InputError, OptionError, SagfitError
 
 # Options shared by every command that fits readings (declared once, used by each).
-DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only this DUT (comma-separated "
-                                                             "list allowed).")]
+DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only these DUTs, e.g. "
+                                                             "'A1' or 'A1,A7'.")]
 ConfidenceOpt = Annotated[Optional[float], typer.Option(
     "--confidence", help="Confidence level of the intervals [default: 0.95].")]
 VoltageAccOpt = Annotated[Optional[str], typer.Option(
@@ -35,6 +35,9 @@ IndependentOpt = Annotated[bool, typer.Option(
 BenchOpt = Annotated[Optional[str], typer.Option(
     "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document to stdout.")]
+QuietOpt = Annotated[bool, typer.Option(
+    "--quiet", "-q", help="Routine run: leave out the safety cautions in the terminal "
+                          "(they stay in --json and the reports).")]
 VerboseOpt = Annotated[bool, typer.Option("--verbose", "-v", help="Also list ignored columns "
                                                                   "and the settings used.")]
 

@@ -7,8 +7,9 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VerboseOpt, VoltageAccOpt, check_out_option, fit_settings, guarded,
+from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+                     VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_document)
 
@@ -31,6 +32,7 @@ def fit_command(
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the results to this .csv or .json file.")] = None,
     verbose: VerboseOpt = False,
+    quiet: QuietOpt = False,
     level: Annotated[float, typer.Option(
         "--level", help="Significance level of the non-linearity checks.")] = 0.01,
     current_range: Annotated[Optional[str], typer.Option(
@@ -39,7 +41,8 @@ def fit_command(
     below_knee: Annotated[bool, typer.Option(
         "--below-knee", help="Where a knee is found, refit only the readings below it.")] = False,
     robust: Annotated[bool, typer.Option(
-        "--robust", help="Refit with a soft-L1 loss that down-weights outliers.")] = False,
+        "--robust", help="Refit with Huber's loss (c = 1.345): readings beyond c standard "
+                                "residuals lose weight.")] = False,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write a self-contained report (HTML, PNG, JSON, CSV) into this "
                          "folder.")] = None,
@@ -94,7 +97,7 @@ def fit_command(
         else:
             from .render import print_fits
 
-            print_fits(fits, readings, doc, verbose=verbose)
+            print_fits(fits, readings, doc, verbose=verbose, quiet=quiet)
     raise typer.Exit(3 if fits.error.count(None) != len(fits.error) else 0)
 
 
@@ -127,7 +130,10 @@ def fit_document(fits, readings, settings) -> dict:
 
     from ..core.traceability import traceability_record
 
+    from ..core.extrapolation import REACHED, extrapolated_isc_pmax
+
     trace = traceability_record(settings.get("instruments", ()), readings.meta)
+    ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
     return {
         "tool": "sagfit",
         "version": __version__,
@@ -139,6 +145,11 @@ def fit_document(fits, readings, settings) -> dict:
         "traceability": trace,
         "warnings": trace["warnings"],
         "results": [],
+        # Isc and Pmax read off the line beyond the tested currents, by DUT
+        "extrapolated": {"isc": [d for d, x in zip(fits.duts, ex_isc) if x],
+                         "pmax": [d for d, x in zip(fits.duts, ex_pmax) if x],
+                         "rule": f"tested current below {REACHED:g}·Isc (Isc) or "
+                                 f"{REACHED:g}·Isc/2 (Pmax)"},
         "cautions": fit_cautions(fits, readings),
     }
 

@@ -9,8 +9,10 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, ConfidenceOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt,
-                     VoltageAccOpt, fit_settings, guarded, interactive, load_readings, progress,
+from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
+                     VoltageNoiseOpt, fit_settings, guarded, interactive, load_readings,
+                     progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
 MAX_TABLE_ROWS = 40
@@ -39,6 +41,7 @@ def record_command(
     independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
     json_out: JsonOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Fit every DUT in FILE and append the results to the history database."""
     with guarded(file):
@@ -62,7 +65,12 @@ def record_command(
             step(f"fitting {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"])
         require_some_fit(file, fits)
-        srec = settings_record(settings)
+        from ..core.traceability import traceability_record
+
+        trace = traceability_record(settings.get("instruments", ()),
+                                    {**readings.meta, **({"date": date} if date else {})})
+        # stored with the settings of every record, so the history keeps the fact
+        srec = {**settings_record(settings), "calibration_warnings": trace["warnings"]}
         with History(db, create=True) as hist:
             outcome = hist.record(
                 fits, test_time=times, file_name=file, sha256=str(readings.meta["sha256"]),
@@ -81,15 +89,16 @@ def record_command(
                "already_recorded": list(outcome.skipped),
                "not_fitted": [{"dut": d, "error": e} for d, e in failed],
                "records_in_database": total,
+               "traceability": trace, "warnings": trace["warnings"],
                "cautions": fit_cautions(fits, readings)}
         if json_out:
             write_document(doc)
         else:
-            _print_record(doc)
+            _print_record(doc, quiet=quiet)
     raise typer.Exit(3 if failed else 0)
 
 
-def _print_record(doc) -> None:
+def _print_record(doc, quiet: bool = False) -> None:
     when = ", ".join(doc["input"]["dates"][:3]) + ("…" if len(doc["input"]["dates"]) > 3 else "")
     lines = []
     n_new = len(doc["recorded"]) + len(doc["replaced"])
@@ -105,7 +114,9 @@ def _print_record(doc) -> None:
         lines.append(f"not recorded {item['dut']}: {item['error']}")
     if len(doc["not_fitted"]) > MAX_TABLE_ROWS:
         lines.append(f"… and {len(doc['not_fitted']) - MAX_TABLE_ROWS} more DUTs not fitted")
-    for c in doc["cautions"]:
+    for w in doc.get("warnings", []):
+        lines.append(f"warning: {w}")
+    for c in [] if quiet else doc["cautions"]:
         lines.append(f"caution: {c}")
     write_stdout("\n".join(lines) + "\n")
 

@@ -146,7 +146,8 @@ def simulate_command(
     rth: Annotated[str, typer.Option("--rth", help="Internal resistance, e.g. 50mohm or R05.")],
     loads: Annotated[str, typer.Option(
         "--loads", help="Loads in reading order, e.g. 'open,10,4.7,2.2,1'.")],
-    out: Annotated[str, typer.Option("--out", help="Readings CSV to write (input format of "
+    out: Annotated[str, typer.Option("--out", help="Readings CSV to write ('-' for standard "
+                                                   "output; input format of "
                                                    "'sagfit fit').")],
     duts: Annotated[int, typer.Option("--duts", help="Number of DUTs.")] = 1,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed (same seed, same file).")] = 1,
@@ -201,10 +202,12 @@ def simulate_command(
         interval_s = _time(interval, "--interval")
         if interval_s < 0:
             raise OptionError("--interval", "must not be negative")
-        check_output_path(out)
-        _refuse_real_file(out)
+        to_stdout = out == "-"  # as in every Unix tool: '-' is standard output
+        if not to_stdout:
+            check_output_path(out)
+            _refuse_real_file(out)
         if truth is not None:
-            check_output_path(truth, [out], option="--truth")
+            check_output_path(truth, [] if to_stdout else [out], option="--truth")
             _refuse_real_file(truth, option="--truth")
         with progress(f"simulating {duts} DUT(s)", interactive() and duts >= 1000) as say:
             try:
@@ -230,10 +233,16 @@ def simulate_command(
                 curvature=curvature, drift=drift, vth_spread=vth_spread, rth_spread=rth_spread,
                 interval=interval, prefix=prefix, per_dut_loads=per_dut_loads, errors=errors,
                 out=out), run)
-            say(f"writing {out}")
-            atomic_write(out, run_csv_text(run, comments))
+            if to_stdout:
+                write_stdout(run_csv_text(run, comments))
+            else:
+                say(f"writing {out}")
+                atomic_write(out, run_csv_text(run, comments))
             if truth is not None:
-                atomic_write(truth, _truth_csv(run, comments), inputs=[out], option="--truth")
+                atomic_write(truth, _truth_csv(run, comments),
+                             inputs=[] if to_stdout else [out], option="--truth")
+    if to_stdout:
+        return  # standard output carries the readings only, ready for a pipe
     limited = int(run.limited.sum())
     write_stdout(f"wrote {len(run)} invented readings of {len(run.duts)} DUT(s) to {out} "
                  f"(seed {seed})" + (f"; {limited} reading(s) in current limit" if limited
@@ -302,10 +311,13 @@ def _refuse_real_file(out: str, option: str = "--out") -> None:
 # ------------------------------------------------------------------ plan
 @app.command("plan")
 def plan_command(
-    voltage: Annotated[str, typer.Option(
-        "--voltage", help="Expected open-circuit voltage, e.g. 12.6V.")],
-    resistance: Annotated[str, typer.Option(
-        "--resistance", help="Expected internal resistance, e.g. 50mohm.")],
+    voltage: Annotated[Optional[str], typer.Option(
+        "--vth", help="Expected open-circuit voltage Vth, e.g. 12.6V.  [required]")] = None,
+    resistance: Annotated[Optional[str], typer.Option(
+        "--rth", help="Expected internal resistance Rth, e.g. 50mohm.  [required]")] = None,
+    # the names before --vth/--rth (as 'simulate' has them), kept working but not shown
+    voltage_old: Annotated[Optional[str], typer.Option("--voltage", hidden=True)] = None,
+    resistance_old: Annotated[Optional[str], typer.Option("--resistance", hidden=True)] = None,
     max_current: Annotated[Optional[str], typer.Option(
         "--max-current", help="The source's safe current, e.g. 10A.")] = None,
     max_power: Annotated[Optional[str], typer.Option(
@@ -333,7 +345,17 @@ def plan_command(
     """Propose loads for a load test: expected readings, dissipation, and the predicted
     uncertainties of Vth and Rth, with the usual cautions."""
     with guarded("plan"):
+        from ..core.errors import OptionError
         from ..core.planning import plan
+
+        v_name = "--vth" if voltage is not None or voltage_old is None else "--voltage"
+        r_name = "--rth" if resistance is not None or resistance_old is None else "--resistance"
+        voltage = voltage if voltage is not None else voltage_old
+        resistance = resistance if resistance is not None else resistance_old
+        for value, name, example in ((voltage, "--vth", "12.6V"),
+                                     (resistance, "--rth", "50mohm")):
+            if value is None:
+                raise OptionError(name, f"is required (the expected value, e.g. {example})")
 
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 voltage_noise=voltage_noise, current_noise=current_noise,
@@ -342,8 +364,8 @@ def plan_command(
 
         try:
             result = plan(
-                _quantity(voltage, "V", "--voltage"),
-                _resistance(resistance, "--resistance", allow_open=False, allow_short=False),
+                _quantity(voltage, "V", v_name),
+                _resistance(resistance, r_name, allow_open=False, allow_short=False),
                 max_current=_quantity(max_current, "A", "--max-current"),
                 max_power=_quantity(max_power, "W", "--max-power"),
                 series=_series(series), points=_points(points),
@@ -357,7 +379,7 @@ def plan_command(
 
             if isinstance(exc, OptionError):
                 raise
-            raise _plan_option_error(exc) from None
+            raise _plan_option_error(exc, v_name, r_name) from None
         if json_out:
             from .. import __version__
 
@@ -387,14 +409,14 @@ def _points(n: int) -> int:
     return n
 
 
-def _plan_option_error(exc):
+def _plan_option_error(exc, v_name: str = "--vth", r_name: str = "--rth"):
     """A planning refusal: name the option when the message names a parameter."""
     from ..core.errors import InputError, OptionError
 
     msg = str(exc)
     head, _, rest = msg.partition(": ")
     opt = {"have": "--have", "derating": "--derating", "load_tolerance": "--load-tolerance",
-           "voltage": "--voltage", "resistance": "--resistance"}.get(head)
+           "voltage": v_name, "resistance": r_name}.get(head)
     if opt:
         return OptionError(opt, rest)
     return InputError("plan refused: " + msg)

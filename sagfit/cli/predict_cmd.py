@@ -155,8 +155,8 @@ def _print(preds, models) -> None:
             v = p.voltage
             t.add_row(load, format_estimate(p.current.value, p.current.u, "A"),
                       format_estimate(v.value, v.u, "V"),
-                      format_interval(v.ci[0], v.ci[1], "V", v.u),
-                      format_interval(v.pi[0], v.pi[1], "V", v.u_pi) if v.pi else "n/a",
+                      format_interval(v.ci[0], v.ci[1], "V", v.u, v.value),
+                      format_interval(v.pi[0], v.pi[1], "V", v.u_pi, v.value) if v.pi else "n/a",
                       format_estimate(p.power.value, p.power.u, "W"))
         console.print(t)
     if any(p.extrapolated for p in preds):

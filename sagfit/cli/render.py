@@ -18,7 +18,7 @@ def _console():
     return Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
 
 
-def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
+def print_fits(fits, readings, doc, *, verbose: bool = False, quiet: bool = False) -> None:
     from rich.table import Table
 
     console = _console()
@@ -30,12 +30,17 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
         t.add_column("quantity")
         t.add_column("value ± u", justify="right")
         t.add_column(f"{lvl} interval", justify="right")
+        from ..core.extrapolation import extrapolated_isc_pmax
+
+        ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
+        xi = " (extrapolated)" if ex_isc[0] else ""
+        xp = " (extrapolated)" if ex_pmax[0] else ""
         for label, est, unit in (("open-circuit voltage Vth", r.vth, "V"),
                                  ("internal resistance Rth", r.rth, "Ω"),
-                                 ("short-circuit current Isc", r.isc, "A"),
-                                 ("maximum power Pmax", r.pmax, "W")):
+                                 ("short-circuit current Isc" + xi, r.isc, "A"),
+                                 ("maximum power Pmax" + xp, r.pmax, "W")):
             t.add_row(label, format_estimate(est.value, est.u, unit),
-                      format_interval(est.ci_low, est.ci_high, unit, est.u))
+                      format_interval(est.ci_low, est.ci_high, unit, est.u, est.value))
         console.print(t)
         console.print(_quality(r.chi2, r.dof, r.p_value, r.method, r.corr_vth_rth))
         knee = _knee_line(fits, 0)
@@ -54,15 +59,22 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
                           "")
                 continue
             red = fits.chi2[i] / fits.dof[i] if fits.dof[i] > 0 else np.nan
+            type_a = str(fits.method[i]) == "ols"  # residual SS, not χ²: no χ²/ν nor p
             t.add_row(fits.duts[i], str(fits.n[i]),
                       format_estimate(fits.vth[i], fits.u_vth[i], "V"),
                       format_estimate(fits.rth[i], fits.u_rth[i], "Ω"),
                       format_estimate(fits.isc[i], fits.u_isc[i], "A"),
                       format_estimate(fits.pmax[i], fits.u_pmax[i], "W"),
-                      str(fits.method[i]), f"{red:.2f}" if np.isfinite(red) else "",
+                      str(fits.method[i]),
+                      "—" if type_a else f"{red:.2f}" if np.isfinite(red) else "",
+                      "—" if type_a else
                       format_p(fits.p_value[i]) if np.isfinite(fits.p_value[i]) else "",
                       ",".join(f.code for f in fits.flags[i] if f.severity == "warning"))
         console.print(t)
+        if any(str(fits.method[i]) == "ols" for i in shown if fits.error[i] is None):
+            console.print("χ²/ν and p — : Type A fit (no meter uncertainty stated), judged by "
+                          "its scatter alone; χ²/ν and p do not apply (residual SS in --json).",
+                          markup=False)
         if len(fits) > MAX_TABLE_ROWS:
             ok = fits.ok
             console.print(f"… {len(fits) - MAX_TABLE_ROWS} more DUTs not shown "
@@ -90,16 +102,21 @@ def print_fits(fits, readings, doc, *, verbose: bool = False) -> None:
                       f"{str(s['load_tolerance_pct']) + ' %' if s['load_tolerance_pct'] is not None else 'not stated'}")
     for w in doc.get("warnings", []):
         console.print(f"warning: {w}", markup=False)
-    for c in doc.get("cautions", []):
+    for c in [] if quiet else doc.get("cautions", []):
         console.print(f"caution: {c}", markup=False)
+
+
+def _dof_text(dof) -> str:
+    """"1 degree of freedom", "3 degrees of freedom"."""
+    return f"{dof} degree of freedom" if dof == 1 else f"{dof} degrees of freedom"
 
 
 def _quality(chi2, dof, p, method, corr) -> str:
     if method == "ols":
-        return (f"fit quality: residual SS {chi2:.4g} on {dof} degrees of freedom (no uncertainty "
+        return (f"fit quality: residual SS {chi2:.4g} on {_dof_text(dof)} (no uncertainty "
                 f"stated: Type A, Student t); corr(Vth, Rth) = {corr:.3f}")
     pv = _p_text(p) if p is not None else "= n/a"
-    return (f"fit quality: χ² = {chi2:.3g} on {dof} degrees of freedom, p {pv}; "
+    return (f"fit quality: χ² = {chi2:.3g} on {_dof_text(dof)}, p {pv}; "
             f"corr(Vth, Rth) = {corr:.3f}")
 
 

@@ -482,6 +482,9 @@ class Acceptance:
     rule: DecisionRule
     spec: Spec
     confidence: float
+    #: The counting flags of each flagged DUT as ``fit --json`` writes them (code, severity,
+    #: message), so the JSON of every command gives flags one shape.
+    warning_flags: Mapping[int, tuple] = field(default_factory=dict)
 
     def __len__(self) -> int:
         return len(self.duts)
@@ -520,6 +523,13 @@ class Acceptance:
 
     def decision_names(self) -> np.ndarray:
         return np.array(DECISIONS, dtype=object)[self.decision]
+
+    def _flag_dicts(self, i: int) -> list[dict]:
+        full = self.warning_flags.get(i)
+        if full is not None:
+            return [dict(f) for f in full]
+        return [{"code": c, "severity": "warning", "message": ""}
+                for c in self.warning_codes.get(i, ())]
 
     def to_dicts(self, indices=None) -> list[dict]:
         """Per-DUT JSON-ready dicts (the ``results`` of ``sagfit accept --json``)."""
@@ -562,7 +572,7 @@ class Acceptance:
                         item["extrapolated"] = bool(ex[j])
                     checks.append(item)
             d = {"dut": self.duts[i], "decision": DECISIONS[self.decision[i]],
-                 "checks": checks, "flags": list(self.warning_codes.get(i, ())),
+                 "checks": checks, "flags": self._flag_dicts(i),
                  "capped_by_flags": bool(self.capped[i])}
             if err is not None:
                 d["error"] = err
@@ -675,4 +685,6 @@ def accept(fits: Fits, spec: Spec, *, rule: str | None = None,
     return Acceptance(duts=tuple(fits.duts), decision=unit, checks=tuple(results),
                       flagged=flagged, capped=capped, warning_codes=codes,
                       error=tuple(fits.error), k=k, rule=decision, spec=spec,
-                      confidence=float(fits.confidence))
+                      confidence=float(fits.confidence),
+                      warning_flags={i: tuple(f.to_dict() for f in fits.flags[i]
+                                              if f.code in c) for i, c in codes.items()})

@@ -34,6 +34,15 @@ def si_prefix(x: float) -> tuple[float, str]:
     return 10.0 ** exp3, _PREFIX_BY_EXP[exp3]
 
 
+def _beyond_prefixes(x: float) -> bool:
+    """True when ``|x|`` lies outside what p … T can show (≥ 1000 T or < 1 p)."""
+    return math.isfinite(x) and x != 0 and not (1e-12 <= abs(x) < 1e15)
+
+
+def _sci(x: float, unit: str, digits: int = 4) -> str:
+    return f"{x:.{digits - 1}e} {unit}".rstrip()
+
+
 def _decimals_for(u_scaled: float) -> int:
     """Decimal places that leave two significant digits of ``u_scaled``."""
     return 1 - int(math.floor(math.log10(u_scaled)))
@@ -50,6 +59,8 @@ def format_value(value: float, unit: str = "", digits: int = 4) -> str:
     """``value`` with an SI prefix and ``digits`` significant digits: ``4.700 kΩ``."""
     if value is None or not math.isfinite(value):
         return "∞" + (f" {unit}" if unit else "") if value == math.inf else "n/a"
+    if _beyond_prefixes(value):
+        return _sci(value, unit, digits)
     scale, prefix = si_prefix(value)
     v = value / scale
     if v == 0:
@@ -72,6 +83,8 @@ def format_estimate(value: float, u: float | None, unit: str = "") -> str:
         return "n/a"
     if u is None or not math.isfinite(u) or u <= 0:
         return format_value(value, unit, digits=5)
+    if _beyond_prefixes(value if abs(value) >= u else u):
+        return f"{_sci(value, '', 5)} ± {_sci(u, unit, 2)}"
     scale, prefix = si_prefix(value if abs(value) >= u else u)
     v, uu = value / scale, u / scale
     d = _decimals_for(uu)
@@ -80,11 +93,21 @@ def format_estimate(value: float, u: float | None, unit: str = "") -> str:
     return f"{_fmt_fixed(v, d)} ± {_fmt_fixed(uu, d)} {prefix}{unit}".rstrip()
 
 
-def format_interval(lo: float, hi: float, unit: str = "", u: float | None = None) -> str:
-    """``[lo, hi] unit`` with one prefix, rounded like an estimate with uncertainty ``u``."""
+def format_interval(lo: float, hi: float, unit: str = "", u: float | None = None,
+                    value: float | None = None) -> str:
+    """``[lo, hi] unit`` with one prefix, rounded like an estimate with uncertainty ``u``.
+
+    Given the estimate ``value``, the interval takes the prefix its ``value ± u`` is shown
+    with, so the two read side by side (``999.98 ± 0.16 Ω`` beside ``[999.54, 1000.41] Ω``,
+    not ``[0.99954, 1.00041] kΩ``).
+    """
     if lo is None or hi is None or not (math.isfinite(lo) and math.isfinite(hi)):
         return "n/a"
     ref = max(abs(lo), abs(hi))
+    if value is not None and math.isfinite(value) and value != 0:
+        ref = abs(value) if not (u and math.isfinite(u) and u > abs(value)) else u
+    if _beyond_prefixes(ref):
+        return f"[{_sci(lo, '')}, {_sci(hi, '')}] {unit}".rstrip()
     scale, prefix = si_prefix(ref)
     width = hi - lo
     step = (u if u and u > 0 and math.isfinite(u) else width / 4 if width > 0 else abs(ref) / 1e4)

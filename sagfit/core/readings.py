@@ -31,6 +31,17 @@ from .units import Accuracy
 __all__ = ["Readings", "Note"]
 
 
+# SCPI instruments return 9.9E+37 for an overload and 9.91E+37 for "not a number"
+# (SCPI-99, vol. 1, 7.2.1.5); anything at or above it is a code, never a reading.
+_OVERLOAD = 9.0e37
+# Plausibility limits of a reading: orders of magnitude beyond any DC bench source or load
+# (common practice), so a value above them is an instrument code or a gross unit slip, not a
+# measurement. Wide on purpose: a model study may scale a source far past a real bench.
+_MAX_VOLTAGE = 1.0e9  # 1 GV
+_MAX_CURRENT = 1.0e9  # 1 GA
+_MAX_LOAD = 1.0e15  # 1 PΩ (open circuits are written 'open' or inf)
+
+
 def _as_array(values, dtype, copy: bool) -> np.ndarray:
     """A private copy when ``copy``, else a view where the dtype allows (numpy 1.26 and 2.x)."""
     return np.array(values, dtype=dtype) if copy else np.asarray(values, dtype=dtype)
@@ -296,6 +307,21 @@ class Readings:
                 if bad.size:
                     what = "empty or not a number" if np.isnan(a[bad[0]]) else "infinite"
                     fail(f"{what} ({k} must be a finite number)", int(bad[0]), k)
+        for k, limit, unit in (("voltage", _MAX_VOLTAGE, "V"), ("current", _MAX_CURRENT, "A"),
+                               ("load", _MAX_LOAD, "Ω")):
+            if k not in arrays:
+                continue
+            a = np.abs(arrays[k])
+            bad = np.flatnonzero(np.isfinite(a) & (a >= _OVERLOAD))
+            if bad.size:
+                fail(f"{arrays[k][bad[0]]:g} is an instrument's overload/not-a-number code "
+                     f"(SCPI 9.9E+37), not a reading: remove or re-measure this row",
+                     int(bad[0]), k)
+            bad = np.flatnonzero(np.isfinite(a) & (a > limit))
+            if bad.size:
+                fail(f"{arrays[k][bad[0]]:g} {unit} is implausible for a bench {k} "
+                     f"(above {limit:g} {unit}): check the column's unit or the reading",
+                     int(bad[0]), k)
         if "load" in arrays:
             r = arrays["load"]
             bad = np.flatnonzero(np.isnan(r))

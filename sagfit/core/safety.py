@@ -46,8 +46,8 @@ def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
     i = mx(isc)
     if i > HIGH_CURRENT_A:
         out.append(f"High prospective short-circuit current: about {format_value(i, 'A', 2)}. "
-                   "Compute Isc, never measure it by shorting the terminals; a short on a "
-                   "battery can melt tools and start fires. Fuse the test leads.")
+                   "Compute Isc, never measure it by shorting the terminals; a short can "
+                   "melt tools and start fires. Fuse the test leads.")
     p = mx(reading_power)
     if p > HOT_RESISTOR_W:
         out.append(f"Hot load resistors: up to {format_value(p, 'W', 2)} dissipated in a load. "
@@ -75,5 +75,10 @@ def prospective_isc(fits) -> np.ndarray:
 def fit_cautions(fits, readings, *, always: bool = False) -> list[str]:
     """The cautions for fitted readings: voltages, prospective Isc, load dissipation."""
     v = np.asarray(readings.voltage)
+    # Only readings taken with a load resistor heat one: electronic-load (I, V) readings
+    # have no resistor (their load is NaN), so no hot-resistor caution comes from them.
+    r = np.asarray(readings.load, dtype=float)
+    in_resistor = np.isfinite(r) & (r > 0)
+    power = np.where(in_resistor, v * np.asarray(readings.current), np.nan)
     return cautions(vth=fits.vth, isc=prospective_isc(fits),
-                    reading_power=v * np.asarray(readings.current), voltages=v, always=always)
+                    reading_power=power, voltages=v, always=always)

@@ -193,6 +193,10 @@ def _name(path, key, body, default) -> str:
     return name
 
 
+_BARE = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
+_SYMBOL = {"ohm": "Ω"}
+
+
 def _limit(path, key, raw, dim) -> float:
     """One limit value in SI units (per cent for regulation)."""
     if isinstance(raw, bool):
@@ -209,9 +213,15 @@ def _limit(path, key, raw, dim) -> float:
         except InputError:
             raise SpecFileError(path, f"cannot read {raw!r} as a percentage (write e.g. "
                                       "\"1.5%\")", key=key) from None
-    elif isinstance(raw, (int, float)):
-        value = _finite(raw)
-        value = math.nan if value is None else value  # refused just below
+    elif isinstance(raw, float) and not math.isfinite(raw):
+        value = raw  # refused just below
+    elif isinstance(raw, (int, float)) or (isinstance(raw, str) and _BARE.match(raw)):
+        # A bare number is how "50" meant as mΩ became 50 Ω: every limit states its unit.
+        num = str(raw).strip()
+        sym = _SYMBOL.get(dim, dim)
+        raise SpecFileError(path, f"{num} has no unit: write it with one, e.g. "
+                                  f"{key.rsplit('.', 1)[-1]} = \"{num}{sym}\" or "
+                                  f"\"{num}m{sym}\"", key=key)
     elif isinstance(raw, str):
         try:
             value = parse_quantity(_ohm(raw), dim, what=key)

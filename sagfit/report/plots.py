@@ -414,9 +414,9 @@ def fit_figure(readings, fits, i: int, *, used=None):
                             label=f"confidence band of the line ({lvl})")
             fi = fits[i]
             legend = (f"fit ({fi.method}): Vth = {format_estimate(vth, fi.vth.u, 'V')}, "
-                      f"{lvl} {format_interval(fi.vth.ci_low, fi.vth.ci_high, 'V', fi.vth.u)}\n"
+                      f"{lvl} {format_interval(fi.vth.ci_low, fi.vth.ci_high, 'V', fi.vth.u, fi.vth.value)}\n"
                       f"Rth = {format_estimate(rth, fi.rth.u, 'Ω')}, "
-                      f"{lvl} {format_interval(fi.rth.ci_low, fi.rth.ci_high, 'Ω', fi.rth.u)}")
+                      f"{lvl} {format_interval(fi.rth.ci_low, fi.rth.ci_high, 'Ω', fi.rth.u, fi.rth.value)}")
             ax.plot(grid, c["line"], color=COLORS["model"], lw=1.5, label=legend, zorder=3)
         hot = flagged_lines(fits.flags[i])
         is_flag = np.isin(ln, list(hot)) & (ln > 0) if hot else np.zeros(cur.size, bool)
