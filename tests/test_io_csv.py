@@ -513,3 +513,26 @@ def test_ids_and_digest_in_a_worker_thread_read_the_same(tmp_path, monkeypatch, 
     assert one.duts == two.duts and one.meta["sha256"] == two.meta["sha256"]
     for name in ("group", "line", "voltage", "current", "load"):
         np.testing.assert_array_equal(getattr(one, name), getattr(two, name))
+
+
+class TestUnitsRow:
+    """A row of units under the header, as data loggers write it (invented readings)."""
+
+    def test_units_row_gives_the_units(self, tmp_path):
+        p = write(tmp_path, "Time,Load,Current,Voltage\ns,kohm,mA,mV\n0,open,0,12700\n"
+                            "1,1,12.6,12600\n2,0.1,120,12000\n")
+        r = read_readings(p)
+        assert np.allclose(r.voltage, [12.7, 12.6, 12.0])
+        assert np.allclose(r.current, [0.0, 0.0126, 0.120])
+
+    def test_units_row_in_brackets_and_line_numbers(self, tmp_path):
+        """Errors after a units row still name the line of the file."""
+        p = write(tmp_path, "Current,Voltage\n[A],[V]\n0.1,12.6\n0.2,oops\n")
+        with pytest.raises(ReadingsFileError) as e:
+            read_readings(p)
+        assert "line 4" in str(e.value) and "Voltage" in str(e.value)
+
+    def test_first_data_row_is_not_a_units_row(self, tmp_path):
+        p = write(tmp_path, "current_A,voltage_V\n0.1,12.6\n0.2,12.5\n")
+        r = read_readings(p)
+        assert np.allclose(r.voltage, [12.6, 12.5])

@@ -184,6 +184,33 @@ def _count_outside_quotes(s: str, d: str) -> int:
     return n
 
 
+_TIME_UNITS = frozenset({"s", "sec", "ms", "min", "h", "hr"})
+
+
+def _is_unit(cell: str) -> bool:
+    u = cell.strip().strip("[]()").strip()
+    return u.lower() in _TIME_UNITS or parse_header_unit(u) is not None
+
+
+def _units_row(data: bytes, pos: int, delim: str, names: list[str]):
+    """The cells of a units row right under the header (``s,A,V``) and the position after
+    it, or ``(None, pos)`` when the next line is data. A units row has a cell for each
+    column, at least one of them a unit, and every non-empty cell a unit."""
+    end = data.find(b"\n", pos)
+    end = len(data) if end < 0 else end
+    if end - pos > MAX_LINE:
+        return None, pos
+    raw = data[pos:end].decode("utf-8", errors="replace")
+    if not raw.strip() or raw.lstrip().startswith("#"):
+        return None, pos
+    cells = [c.strip().strip('"').strip() for c in _split_header(raw, delim)]
+    if len(cells) != len(names) or not any(cells):
+        return None, pos
+    if not all(_is_unit(c) for c in cells if c):
+        return None, pos
+    return [c.strip("[]()").strip() for c in cells], end + 1
+
+
 def _split_header(header: str, delim: str) -> list[str]:
     import csv
 
@@ -282,6 +309,14 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
     if len(names) > MAX_COLUMNS:
         raise ReadingsFileError(name, f"{len(names)} columns in the header, more than the "
                                       f"limit of {MAX_COLUMNS}", line=header_line)
+    units_row, pos = _units_row(data, pos, delim, names)
+    if units_row is not None:
+        # a row of units under the header (data-logger exports): 'Voltage' over 'V' reads as
+        # 'Voltage [V]'; the data lines are counted from the line after it
+        names = [f"{h.strip()} [{u}]" if u and not _BRACKET_RE.match(h.strip()) else h
+                 for h, u in zip(names, units_row)]
+        meta["units_row"] = list(units_row)
+        header_line += 1
     roles: dict[str, ColumnRole] = {}
     ignored = []
     for col, h in enumerate(names):
