@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import shutil
 import sys
 
 from ..core.errors import InputError, OptionError
@@ -16,6 +17,12 @@ from ..core.errors import InputError, OptionError
 
 def _cluster(scheduler: str | None, workers: int | None):
     """A client on the given scheduler, or on local worker processes."""
+    import logging
+
+    # a failed task is reported once, as sagfit's own one-line error, not as worker logs
+    for name in ("distributed", "distributed.worker", "distributed.scheduler",
+                 "distributed.shuffle", "distributed.nanny"):
+        logging.getLogger(name).setLevel(logging.CRITICAL)
     try:
         from distributed import Client, LocalCluster
     except ImportError:
@@ -32,7 +39,7 @@ def _cluster(scheduler: str | None, workers: int | None):
     if n < 1:
         raise OptionError("--workers", "must be at least 1")
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=None)
+                           dashboard_address=None, silence_logs=logging.CRITICAL)
     return cluster, Client(cluster)
 
 
@@ -57,13 +64,22 @@ def run_dataset_fit(path: str, settings: dict, level: float, out: str | None, js
     cluster, client = _cluster(scheduler, workers)
     with cluster, client:
         results = fit_dataset(read_dataset(path), {**settings, "level": level})
-        job = results.to_parquet(out, write_index=False, compute=False)
+        # written beside the target, renamed when complete: a failed run leaves no part files
+        partial = f"{out.rstrip(os.sep)}.partial-{os.getpid()}"
+        job = results.to_parquet(partial, write_index=False, compute=False)
         future = client.compute(job)
-        if sys.stderr.isatty() and not json_out:
-            from distributed import progress
+        try:
+            if sys.stderr.isatty() and not json_out:
+                from distributed import progress
 
-            progress(future)
-        future.result()
+                progress(future)
+            future.result()
+        except BaseException:
+            shutil.rmtree(partial, ignore_errors=True)
+            raise
+        if os.path.isdir(out):
+            os.rmdir(out)  # checked empty above
+        os.replace(partial, out)
     import pandas as pd
 
     table = pd.read_parquet(out)
