@@ -166,3 +166,27 @@ def test_plain_fit_and_help_import_no_dask():
             "assert not any(m == 'dask' or m.startswith(('dask.', 'distributed')) "
             "for m in sys.modules), sorted(m for m in sys.modules if 'dask' in m)")
     subprocess.run([sys.executable, "-c", code], check=True, timeout=60)
+
+
+def test_cli_accept_on_a_split_csv_data_set_matches_one_file(tmp_path):
+    """The invented demo reel (sample_runs/accept_reel.csv, comment lines inside) cut in two
+    CSV files, one DUT across the cut: the same decisions as ``sagfit accept`` on one file."""
+    from tests.conftest import SAMPLES
+
+    lines = (SAMPLES / "accept_reel.csv").read_text().splitlines(keepends=True)
+    (tmp_path / "ds").mkdir()
+    (tmp_path / "ds" / "a.csv").write_text("".join(lines[:40]))
+    (tmp_path / "ds" / "b.csv").write_text("".join(lines[:7] + lines[40:]))
+    spec = str(SAMPLES / "accept_spec.toml")
+    one = subprocess.run([sys.executable, "-m", "sagfit", "accept", str(SAMPLES /
+                          "accept_reel.csv"), "--spec", spec, "--out", str(tmp_path / "one.csv")],
+                         capture_output=True, text=True, timeout=120)
+    many = subprocess.run([sys.executable, "-m", "sagfit", "accept", str(tmp_path / "ds"),
+                           "--spec", spec, "--out", str(tmp_path / "res"), "--workers", "1"],
+                          capture_output=True, text=True, timeout=120)
+    assert many.returncode == one.returncode == 1, many.stderr   # a board failed
+    a = pd.read_parquet(tmp_path / "res").set_index("dut").sort_index()
+    b = pd.read_csv(tmp_path / "one.csv").set_index("dut").sort_index()
+    assert list(a.index) == list(b.index)
+    assert (a["decision"] == b["decision"]).all()
+    assert "fail: 2" in many.stdout

@@ -1,6 +1,6 @@
-"""``sagfit fit`` on a partitioned data set (a directory or glob), on Dask.
+"""``sagfit fit`` / ``sagfit accept`` on a partitioned data set (a directory or glob), on Dask.
 
-Not a command of its own: ``fit_cmd`` hands over here when their input is a
+Not a command of its own: ``fit_cmd`` and ``accept_cmd`` hand over here when their input is a
 data set. Dask is imported only on this path.
 """
 
@@ -44,8 +44,8 @@ def _cluster(scheduler: str | None, workers: int | None):
 
 
 def run_dataset_fit(path: str, settings: dict, level: float, out: str | None, json_out: bool,
-                    scheduler: str | None, workers: int | None) -> int:
-    """Fit every DUT of a data set; write the results as a Parquet
+                    scheduler: str | None, workers: int | None, spec=None, rule=None) -> int:
+    """Fit (and with ``spec`` decide) every DUT of a data set; write the results as a Parquet
     data set into ``out``; print a summary. Returns the exit status."""
     from ..io.dataset import dataset_files, fit_dataset, read_dataset
 
@@ -63,7 +63,8 @@ def run_dataset_fit(path: str, settings: dict, level: float, out: str | None, js
         raise OptionError("--out", "the results folder must not lie inside the data set")
     cluster, client = _cluster(scheduler, workers)
     with cluster, client:
-        results = fit_dataset(read_dataset(path), {**settings, "level": level})
+        results = fit_dataset(read_dataset(path), {**settings, "level": level,
+                                                    "spec": spec, "rule": rule})
         # written beside the target, renamed when complete: a failed run leaves no part files
         partial = f"{out.rstrip(os.sep)}.partial-{os.getpid()}"
         job = results.to_parquet(partial, write_index=False, compute=False)
@@ -87,11 +88,19 @@ def run_dataset_fit(path: str, settings: dict, level: float, out: str | None, js
                "fitted": int(table["error"].isna().sum() + (table["error"] == "").sum()),
                "flagged": int((table["flags"].fillna("") != "").sum()),
                "output": out}
+    if "decision" in table.columns:
+        summary["decisions"] = {k: int((table["decision"] == k).sum())
+                                for k in ("pass", "inconclusive", "fail", "error")}
     if json_out:
         print(json.dumps(summary, indent=2))
     else:
         print(f"{summary['duts']} DUT(s) from {len(files)} file(s): {summary['fitted']} "
               f"fitted, {summary['flagged']} flagged, "
               f"{summary['duts'] - summary['fitted']} not fitted")
+        for k, v in summary.get("decisions", {}).items():
+            print(f"  {k}: {v}")
         print(f"results: {out}/ (Parquet data set, one row per DUT)")
+    if "decisions" in summary:  # the exit status of sagfit accept
+        d = summary["decisions"]
+        return 1 if d["fail"] else 3 if d["inconclusive"] or d["error"] else 0
     return 3 if summary["fitted"] < summary["duts"] else 0

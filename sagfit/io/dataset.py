@@ -79,11 +79,13 @@ def _read_file(item: tuple[int, str]):
     number, path = item
     parquet = Path(path).suffix.lower() in (".parquet", ".pq")
     try:
-        raw = pd.read_parquet(path) if parquet else pd.read_csv(path, dtype=str,
-                                                                keep_default_na=False)
-    except (OSError, ValueError) as exc:
+        if parquet:
+            raw = pd.read_parquet(path)
+            lines = np.arange(1, len(raw) + 1, dtype=np.int64)  # Parquet rows count from 1
+        else:
+            raw, lines = _read_csv_text(path)
+    except (OSError, ValueError, UnicodeDecodeError) as exc:
         raise DatasetError(path, f"cannot read the file ({exc})") from None
-    first = 1 if parquet else 2  # Parquet rows count from 1; CSV line 1 is the header
     roles: dict[str, tuple[str, float]] = {}
     for header in raw.columns:
         try:
@@ -100,7 +102,7 @@ def _read_file(item: tuple[int, str]):
     n = len(raw)
     frame = {"dut": raw[roles["dut"][0]].astype(str).to_numpy(dtype=object),
              "_file": np.full(n, number, dtype=np.int64),
-             "_row": np.arange(first, first + n, dtype=np.int64)}
+             "_row": lines}
     for role in _VALUE_ROLES:
         if role not in roles:
             frame[role] = np.full(n, np.nan)
@@ -113,15 +115,36 @@ def _read_file(item: tuple[int, str]):
             text = col.astype(str).str.strip()
             vals = pd.to_numeric(text.str.replace(",", ".", regex=False),
                                  errors="coerce").to_numpy(dtype=float)
-            bad = np.isnan(vals) & ~text.str.lower().isin(["", "nan", "none", "inf", "+inf"]
-                                                          ).to_numpy()
+            # an empty cell is allowed only where a value is optional (the uncertainties)
+            missing = ["nan", "none"] + ([""] if role.startswith("u_") else [])
+            bad = np.isnan(vals) & ~text.str.lower().isin(missing).to_numpy()
             if bad.any():
                 i = int(np.argmax(bad))
-                raise DatasetError(path, f"{text.iloc[i]!r} is not a number", line=first + i,
-                                   column=header)
+                what = f"{text.iloc[i]!r} is not a number" if text.iloc[i] else "empty cell"
+                raise DatasetError(path, what, line=int(lines[i]), column=header)
         frame[role] = vals * scale
     out = pd.DataFrame(frame)
     return out if n else _meta()
+
+
+def _read_csv_text(path: str):
+    """A CSV file without its ``#`` comment and blank lines → (text frame, the file line
+    number of each row), so that errors name the line as an editor shows it."""
+    import io
+
+    import pandas as pd
+
+    with open(path, encoding="utf-8-sig", newline="") as fh:
+        all_lines = fh.read().splitlines()
+    keep = [i for i, ln in enumerate(all_lines) if ln.strip() and not ln.lstrip().startswith("#")]
+    if not keep:
+        return pd.DataFrame(), np.zeros(0, dtype=np.int64)
+    text = "\n".join(all_lines[i] for i in keep)
+    raw = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False, sep=None,
+                      engine="python") if "\t" in all_lines[keep[0]] or ";" in \
+        all_lines[keep[0]] else pd.read_csv(io.StringIO(text), dtype=str,
+                                            keep_default_na=False)
+    return raw, np.asarray(keep[1:], dtype=np.int64) + 1
 
 
 def read_dataset(path: str):
@@ -142,7 +165,7 @@ def fit_partition(part, settings: Mapping[str, object] | None = None, files=None
 
     settings = dict(settings or {})
     if len(part) == 0:
-        return _result_meta()
+        return _result_meta(settings)
     part = part.sort_values(["_file", "_row"], kind="stable")
     arrays = {role: part[role].to_numpy(dtype=float) for role in _VALUE_ROLES
               if not np.isnan(part[role].to_numpy(dtype=float)).all()}
@@ -154,10 +177,20 @@ def fit_partition(part, settings: Mapping[str, object] | None = None, files=None
         load_tolerance=settings.get("load_tolerance"), **arrays)
     fits = fit(readings, confidence=float(settings.get("confidence", 0.95)),
                level=float(settings.get("level", 0.01)))
-    return fits_table(fits)
+    return fits_table(fits, _decisions(fits, readings, settings))
 
 
-def _result_meta():
+def _decisions(fits, readings, settings) -> dict | None:
+    """With a ``spec`` in the settings: the ``decision`` column of ``sagfit accept``."""
+    if settings.get("spec") is None:
+        return None
+    from ..core.acceptance import DECISIONS, accept
+
+    acc = accept(fits, settings["spec"], rule=settings.get("rule"), readings=readings)
+    return {"decision": [DECISIONS[d] for d in acc.decision]}
+
+
+def _result_meta(settings: Mapping[str, object] | None = None):
     """The (empty) results table with its column types, from a fit of three readings of
     one invented DUT (the only sure way to get the exact columns of :func:`fits_table`)."""
     from ..core.analysis import fit
@@ -165,14 +198,18 @@ def _result_meta():
 
     r = Readings.from_arrays(voltage=[4.0, 3.9, 3.8], current=[0.0, 1.0, 2.0],
                              u_voltage=[1e-3] * 3, u_current=[1e-3] * 3, dut=["x"] * 3)
-    return fits_table(fit(r)).iloc[:0]
+    fits = fit(r)
+    return fits_table(fits, _decisions(fits, r, dict(settings or {}))).iloc[:0]
 
 
 def fit_dataset(readings, settings: Mapping[str, object] | None = None,
                 npartitions: int | None = None):
     """A Dask DataFrame of readings (from :func:`read_dataset` or your own, with columns
     ``dut``, two of ``voltage``/``current``/``load`` in SI units, optional ``u_*``) → a lazy
-    Dask DataFrame of results, one row per DUT.
+    Dask DataFrame of results, one row per DUT. ``settings``: ``confidence``, ``level``,
+    ``voltage_accuracy``, ``current_accuracy``, ``load_tolerance`` as for :func:`sagfit.fit`;
+    with ``spec`` (a :class:`sagfit.core.acceptance.Spec`, optional ``rule``) a ``decision``
+    column (pass / inconclusive / fail / error) as ``sagfit accept`` gives.
 
     The readings are first shuffled on ``dut``, so every DUT is fitted once with all its
     readings, whatever partition they started in."""
@@ -187,7 +224,7 @@ def fit_dataset(readings, settings: Mapping[str, object] | None = None,
             ddf = ddf.assign(**{role: np.nan})
     n = npartitions or max(1, ddf.npartitions)
     ddf = ddf.shuffle(on="dut", npartitions=n)
-    meta = _result_meta()
+    meta = _result_meta(settings)
     out = ddf.map_partitions(fit_partition, dict(settings or {}), meta=meta,
                              enforce_metadata=False)
     return out
