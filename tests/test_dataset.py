@@ -190,3 +190,12 @@ def test_cli_accept_on_a_split_csv_data_set_matches_one_file(tmp_path):
     assert list(a.index) == list(b.index)
     assert (a["decision"] == b["decision"]).all()
     assert "fail: 2" in many.stdout
+
+
+def test_cli_refuses_single_file_options_on_a_data_set(tmp_path):
+    (tmp_path / "a.csv").write_text("dut,voltage,current\nA,3.7,0\nA,3.6,1\nA,3.5,2\n")
+    run = subprocess.run([sys.executable, "-m", "sagfit", "fit", str(tmp_path), "--robust",
+                          "--out", str(tmp_path / "res")], capture_output=True, text=True,
+                         timeout=60)
+    assert run.returncode == 2
+    assert run.stderr.startswith("error:") and "--robust" in run.stderr

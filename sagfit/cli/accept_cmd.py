@@ -67,8 +67,9 @@ def accept_command(
         from ..io.dataset import is_dataset
 
         if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
-            from .dataset_run import run_dataset_fit
+            from .dataset_run import refuse_single_file_options, run_dataset_fit
 
+            refuse_single_file_options({"--dut": dut, "--report": report, "--verbose": verbose})
             raise typer.Exit(run_dataset_fit(file, settings, 0.01, out, json_out, scheduler,
                                              workers, spec=the_spec, rule=rule))
         check_out_option(out, inputs)

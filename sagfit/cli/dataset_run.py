@@ -43,6 +43,15 @@ def _cluster(scheduler: str | None, workers: int | None):
     return cluster, Client(cluster)
 
 
+def refuse_single_file_options(given: dict) -> None:
+    """Options of a single readings file that a data set run does not honour: refused,
+    never silently dropped."""
+    for name, value in given.items():
+        if value:
+            raise OptionError(name, "applies to a single readings file, not to a data set "
+                                    "(see docs/cluster.md)")
+
+
 def run_dataset_fit(path: str, settings: dict, level: float, out: str | None, json_out: bool,
                     scheduler: str | None, workers: int | None, spec=None, rule=None) -> int:
     """Fit (and with ``spec`` decide) every DUT of a data set; write the results as a Parquet

@@ -64,8 +64,11 @@ def fit_command(
         from ..io.dataset import is_dataset
 
         if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
-            from .dataset_run import run_dataset_fit
+            from .dataset_run import refuse_single_file_options, run_dataset_fit
 
+            refuse_single_file_options({"--dut": dut, "--current-range": current_range,
+                                        "--below-knee": below_knee, "--robust": robust,
+                                        "--report": report, "--verbose": verbose})
             code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
             raise typer.Exit(code)
         if report:
