@@ -22,7 +22,9 @@ MAX_TABLE_ROWS = 40
 
 @app.command("accept")
 def accept_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV, one load sweep per DUT.")],
+    file: Annotated[str, typer.Argument(help="Readings CSV, one load sweep per DUT; or a "
+                                            "folder or glob of Parquet/CSV files (a data set, "
+                                            "on Dask: docs/cluster.md).")],
     spec: Annotated[str, typer.Option("--spec", help="Acceptance spec (TOML, see "
                                                      "docs/accept.md).")],
     rule: Annotated[Optional[str], typer.Option(
@@ -45,6 +47,11 @@ def accept_command(
                          "folder.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
+    scheduler: Annotated[Optional[str], typer.Option(
+        "--scheduler", help="Dask scheduler address (tcp://host:8786) for a data set; "
+                            "default: local worker processes.")] = None,
+    workers: Annotated[Optional[int], typer.Option(
+        "--workers", help="Local Dask worker processes for a data set.")] = None,
 ) -> None:
     """Decide every DUT against the spec's limits, taking the measurement uncertainty
     into account (JCGM 106:2012, ILAC-G8:09/2019)."""
@@ -64,6 +71,14 @@ def accept_command(
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
                                 independent_errors=independent_errors)
+        from ..io.dataset import is_dataset
+
+        if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
+            from .dataset_run import refuse_single_file_options, run_dataset_fit
+
+            refuse_single_file_options({"--dut": dut, "--report": report, "--verbose": verbose})
+            raise typer.Exit(run_dataset_fit(file, settings, 0.01, out, json_out, scheduler,
+                                             workers, spec=the_spec, rule=rule))
         check_out_option(out, inputs)
         with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             readings = load_readings(file, settings, dut)

@@ -18,7 +18,9 @@ MAX_TABLE_ROWS = 40
 
 @app.command("fit")
 def fit_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV (see docs/input-format.md).")],
+    file: Annotated[str, typer.Argument(help="Readings CSV (see docs/input-format.md), or a "
+                                            "folder or glob of Parquet/CSV files: a data set "
+                                            "fitted on Dask (docs/cluster.md).")],
     dut: DutOpt = None,
     confidence: ConfidenceOpt = None,
     voltage_accuracy: VoltageAccOpt = None,
@@ -48,6 +50,11 @@ def fit_command(
                          "folder.")] = None,
     figures: Annotated[str, typer.Option(
         "--figures", help="Per-DUT figures in the report: flagged, all or none.")] = "flagged",
+    scheduler: Annotated[Optional[str], typer.Option(
+        "--scheduler", help="Dask scheduler address (tcp://host:8786) for a data set; "
+                            "default: local worker processes.")] = None,
+    workers: Annotated[Optional[int], typer.Option(
+        "--workers", help="Local Dask worker processes for a data set.")] = None,
 ) -> None:
     """Fit V = Vth − Rth·I for every DUT: open-circuit voltage, internal resistance,
     short-circuit current and maximum power, with uncertainties."""
@@ -62,6 +69,16 @@ def fit_command(
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
+        from ..io.dataset import is_dataset
+
+        if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
+            from .dataset_run import refuse_single_file_options, run_dataset_fit
+
+            refuse_single_file_options({"--dut": dut, "--current-range": current_range,
+                                        "--below-knee": below_knee, "--robust": robust,
+                                        "--report": report, "--verbose": verbose})
+            code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
+            raise typer.Exit(code)
         if report:
             from ..report.fit_report import FIGURE_CHOICES
 
