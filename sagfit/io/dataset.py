@@ -13,6 +13,8 @@ Dask is an optional extra (``pip install "sagfit[dask]"``).
 
 from __future__ import annotations
 
+import math
+
 import glob as _glob
 import os
 from pathlib import Path
@@ -110,7 +112,25 @@ def _read_file(item: tuple[int, str]):
         header, scale = roles[role]
         col = raw[header]
         if parquet and col.dtype.kind in "fiu":
-            vals = col.to_numpy(dtype=float)
+            vals = col.to_numpy(dtype=float) * scale
+        elif role == "load":  # each distinct load text once: 4.7, 4k7, 470R, open
+            from ..core.units import parse_resistance
+
+            text = col.astype(str).str.strip()
+            codes, uniques = pd.factorize(text)
+
+            def one(t):
+                try:
+                    return parse_resistance(t, scale)
+                except ValueError:
+                    return math.nan
+            vals = np.array([one(t) for t in uniques], dtype=float)[codes]
+            bad = np.isnan(vals)
+            if bad.any():
+                i = int(np.argmax(bad))
+                what = (f"{text.iloc[i]!r} is not a resistance (write e.g. 4.7k, 4k7, open)"
+                        if text.iloc[i] else "empty cell")
+                raise DatasetError(path, what, line=int(lines[i]), column=header)
         else:
             text = col.astype(str).str.strip()
             vals = pd.to_numeric(text.str.replace(",", ".", regex=False),
@@ -122,7 +142,8 @@ def _read_file(item: tuple[int, str]):
                 i = int(np.argmax(bad))
                 what = f"{text.iloc[i]!r} is not a number" if text.iloc[i] else "empty cell"
                 raise DatasetError(path, what, line=int(lines[i]), column=header)
-        frame[role] = vals * scale
+            vals = vals * scale
+        frame[role] = vals
     out = pd.DataFrame(frame)
     return out if n else _meta()
 
