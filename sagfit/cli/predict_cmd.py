@@ -142,9 +142,12 @@ def _print(preds, models) -> None:
         lvl = f"{rows[0].level * 100:g} %"
         t = Table(title=f"{dut}: predicted operating points ({lvl} intervals)",
                   title_justify="left", show_edge=False)
-        for col, just in (("load", "right"), ("current", "right"), ("voltage", "right"),
-                          ("V interval (mean)", "right"), ("V interval (one reading)", "right"),
-                          ("power", "right")):
+        same = any(p.voltage.pi_same is not None for p in rows)
+        cols = [("load", "right"), ("current", "right"), ("voltage", "right"),
+                ("V interval (true value)", "right"), ("V interval (one reading)", "right")]
+        if same:
+            cols.append(("V interval (same meter)", "right"))
+        for col, just in cols + [("power", "right")]:
             t.add_column(col, justify=just)
         for p in rows:
             load = "open" if p.load_ohm == float("inf") else format_value(p.load_ohm, "Ω")
@@ -153,11 +156,14 @@ def _print(preds, models) -> None:
             if p.extrapolated:
                 load += " *"
             v = p.voltage
-            t.add_row(load, format_estimate(p.current.value, p.current.u, "A"),
-                      format_estimate(v.value, v.u, "V"),
-                      format_interval(v.ci[0], v.ci[1], "V", v.u, v.value),
-                      format_interval(v.pi[0], v.pi[1], "V", v.u_pi, v.value) if v.pi else "n/a",
-                      format_estimate(p.power.value, p.power.u, "W"))
+            cells = [load, format_estimate(p.current.value, p.current.u, "A"),
+                     format_estimate(v.value, v.u, "V"),
+                     format_interval(v.ci[0], v.ci[1], "V", v.u, v.value),
+                     format_interval(v.pi[0], v.pi[1], "V", v.u_pi, v.value) if v.pi else "n/a"]
+            if same:
+                cells.append(format_interval(v.pi_same[0], v.pi_same[1], "V", v.u_pi_same,
+                                             v.value) if v.pi_same else "n/a")
+            t.add_row(*cells, format_estimate(p.power.value, p.power.u, "W"))
         console.print(t)
     if any(p.extrapolated for p in preds):
         console.print("* beyond the current range of the fitted readings: an extrapolation "
@@ -170,6 +176,11 @@ def _print(preds, models) -> None:
         console.print("note: the saved fit carries no model of a new reading's uncertainty "
                       "(an older results file): refit with this version for prediction "
                       "intervals", markup=False)
-    console.print("Values ± standard uncertainty; the one-reading interval adds the "
-                  "voltmeter's uncertainty (and the load tolerance, when stated) to the "
-                  "uncertainty of the fitted line.", markup=False)
+    console.print("Values ± standard uncertainty. True value: the source's own voltage, "
+                  "meters' calibration included (compare with a specification). One "
+                  "reading: a new reading with another meter of the same spec (adds its "
+                  "uncertainty and the load tolerance, when stated).", markup=False)
+    if any(p.voltage.pi_same is not None for p in preds):
+        console.print("Same meter: a new reading with the very voltmeter of the sweep, before "
+                      "its calibration changes; its gain and offset errors moved the fitted "
+                      "line too, so they cancel (docs/predict.md).", markup=False)

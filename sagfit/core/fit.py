@@ -560,6 +560,7 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
     cov_vr = -res["cov_ab"] * scale
     extra = {}
     k_rth = k
+    shared = {}
     if prop is not None:  # shared meter/resistor errors: the covariance of systematic.py
         sel = stated & ~bad
         var_v = np.where(sel, prop.total[0], var_v)
@@ -568,6 +569,14 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
         k_rth = np.where(sel, prop.k[1], k)
         k = np.where(sel, prop.k[0], k)
         extra["uncertainty"] = _uncertainty_rows(prop, sel, k, k_rth)
+        zero = np.zeros(m)
+        sv, sr, svr = zero.copy(), zero.copy(), zero.copy()
+        for ja, jb, _ in prop.components.values():
+            sv, sr, svr = sv + ja * ja, sr + jb * jb, svr + ja * jb
+        # (a, b) = (Vth, −Rth): the sign of the covariance flips
+        shared = {"var_vth_shared": np.where(sel, sv, 0.0),
+                  "var_rth_shared": np.where(sel, sr, 0.0),
+                  "cov_vr_shared": np.where(sel, -svr, 0.0)}
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         pos = rth > 0
         isc = np.where(pos, vth / rth, np.nan)
@@ -589,7 +598,7 @@ def _assemble(readings, res, m, errors, bad, stated, n, g, sxx, sxy, confidence,
         dof=dof, p_value=p_value * nan, scale=scale * nan, k=k, isc=isc * nan,
         u_isc=u_isc * nan, pmax=pmax * nan, u_pmax=u_pmax * nan,
         converged=res["converged"] & ~bad, error=tuple(errors), flags=flags,
-        confidence=float(confidence), extra=extra, k_rth=k_rth,
+        confidence=float(confidence), extra=extra, k_rth=k_rth, **shared,
         settings={"confidence": float(confidence), "source": readings.source})
 
 

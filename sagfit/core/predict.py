@@ -49,12 +49,17 @@ class Quantity:
     ci: tuple[float, float]
     pi: tuple[float, float] | None = None
     u_pi: float | None = None
+    pi_same: tuple[float, float] | None = None  # one reading with the sweep's own meter
+    u_pi_same: float | None = None
 
     def to_dict(self) -> dict:
         d = {"value": _f(self.value), "u": _f(self.u), "ci": [_f(c) for c in self.ci]}
         if self.pi is not None:
             d["pi"] = [_f(c) for c in self.pi]
             d["u_reading"] = _f(self.u_pi)
+        if self.pi_same is not None:
+            d["pi_same_meter"] = [_f(c) for c in self.pi_same]
+            d["u_reading_same_meter"] = _f(self.u_pi_same)
         return d
 
 
@@ -98,6 +103,10 @@ class SourceModel:
     load_tolerance_pct: float | None
     tested: tuple[float, float] | None = None  # current range of the fitted readings (A)
     knee: bool = False                         # the fit found a knee (see diagnostics)
+    # the meters' shared (systematic) part of ``cov`` and the random u of one voltage
+    # reading with the same meter; None when the fit modelled no shared meter error
+    cov_shared: tuple[tuple[float, float], tuple[float, float]] | None = None
+    u_reading_random: float | None = None
 
 
 def _f(x):
@@ -128,6 +137,16 @@ def prediction_fields(readings, fits) -> "PredictionColumn":
                          _groupsum(g, dx * (uv - my[g]), m) / sxx, 0.0)
         slope = np.where(np.isfinite(slope), np.maximum(slope, 0.0), 0.0)
         offset = np.maximum(my - slope * mx, 0.0)
+    u_same = None
+    if readings.errors is not None:
+        # one more reading with the sweep's own voltmeter: its random part only, the larger
+        # of the stated noise (mean square over the sweep) and the scatter about the line
+        noise2 = _groupsum(g, readings.errors.u_voltage ** 2, m) / np.maximum(n, 1)
+        resid = readings.voltage - (fits.vth[g] - fits.rth[g] * readings.current)
+        dof = np.maximum(n - 2, 1)
+        with np.errstate(invalid="ignore"):
+            s2 = np.where(n > 2, _groupsum(g, np.nan_to_num(resid) ** 2, m) / dof, 0.0)
+        u_same = np.sqrt(np.fmax(noise2, s2))
     starts = np.concatenate(([0], np.cumsum(n.astype(np.int64))[:-1]))
     lo = np.full(m, np.nan)
     hi = np.full(m, np.nan)
@@ -135,18 +154,19 @@ def prediction_fields(readings, fits) -> "PredictionColumn":
     if ne.any():
         lo[ne] = np.minimum.reduceat(readings.current, starts[ne])
         hi[ne] = np.maximum.reduceat(readings.current, starts[ne])
-    return PredictionColumn(fits, offset, slope, lo, hi)
+    return PredictionColumn(fits, offset, slope, lo, hi, u_same)
 
 
 class PredictionColumn(Sequence):
     """A lazy per-DUT column for ``Fits.extra``: builds each DUT's dict on demand."""
 
-    def __init__(self, fits, offset, slope, lo, hi):
+    def __init__(self, fits, offset, slope, lo, hi, u_same=None):
         self._fits = fits
         self._offset = offset
         self._slope = slope
         self._lo = lo
         self._hi = hi
+        self._u_same = u_same
 
     def __len__(self):
         return len(self._fits)
@@ -169,6 +189,11 @@ class PredictionColumn(Sequence):
             d["u_voltage_model"] = {"offset_V": float(self._offset[i]),
                                     "per_volt": float(self._slope[i])}
             d["reading_scale"] = float(max(1.0, f.scale[i]))
+            sv, sr = float(f.var_vth_shared[i]), float(f.var_rth_shared[i])
+            if self._u_same is not None and (sv > 0 or sr > 0):
+                svr = float(f.cov_vr_shared[i])
+                d["shared_cov_vth_rth"] = [[sv, svr], [svr, sr]]
+                d["u_reading_same_meter_V"] = float(self._u_same[i])
         return d
 
 
@@ -236,6 +261,16 @@ def models_from_document(doc, source: str = "<results>", duts: Sequence[str] | N
                 and all(isinstance(t, (int, float)) and not isinstance(t, bool) for t in tr)
             ) else None
             knee = bool(p.get("knee", False))
+            c_sh, u_same = None, None
+            if "shared_cov_vth_rth" in p:
+                try:
+                    cs = np.asarray(p["shared_cov_vth_rth"], float)
+                    assert cs.shape == (2, 2) and np.isfinite(cs).all()
+                except (ValueError, TypeError, AssertionError):
+                    raise InputError(f"{where}.prediction: key 'shared_cov_vth_rth' must be a "
+                                     "2×2 matrix of numbers") from None
+                c_sh = ((cs[0, 0], cs[0, 1]), (cs[1, 0], cs[1, 1]))
+                u_same = float(_get(p, "u_reading_same_meter_V", where + ".prediction"))
         else:  # an older document: covariance from u and the correlation, no reading model
             uv = float(_get(r["vth"], "u", where + ".vth"))
             ur = float(_get(r["rth"], "u", where + ".rth"))
@@ -248,10 +283,12 @@ def models_from_document(doc, source: str = "<results>", duts: Sequence[str] | N
             off = slope = None
             scale = math.nan
             tested, knee = None, False
+            c_sh, u_same = None, None
         if not (math.isfinite(vth) and math.isfinite(rth)):
             raise InputError(f"{where}: Vth or Rth is not a finite number")
         models[dut] = SourceModel(dut, vth, rth, ((c[0, 0], c[0, 1]), (c[1, 0], c[1, 1])), k,
-                                  dof, type_a, level, off, slope, scale, tol, tested, knee)
+                                  dof, type_a, level, off, slope, scale, tol, tested, knee,
+                                  c_sh, u_same)
     if not models:
         raise InputError(f"{source}: the document holds no results")
     names = list(models) if not duts else list(duts)
@@ -334,13 +371,16 @@ def predict(models: Sequence[SourceModel], *, loads: Sequence[float] = (),
         u_load = (np.where(openc, 0.0, mdl.load_tolerance_pct / 100.0 * Rf / math.sqrt(3.0))
                   if mdl.load_tolerance_pct else np.zeros_like(R))
         var_new = _reading_variance(mdl, v) + (dv_dR * u_load) ** 2
+        same = _same_meter(mdl, C)
+        var_same = (np.einsum("in,ij,jn->n", gv, same[0], gv) + same[1] + (dv_dR * u_load) ** 2
+                    if same else np.full(R.shape, np.nan))
         for j in range(R.size):
             if not (den[j] > 0 or openc[j]):
                 raise InputError(f"{mdl.dut}: load {R[j]:g} Ω is at or beyond −Rth "
                                  f"({-rth:g} Ω); the divider formula does not apply")
             out.append(_point(mdl.dut, float(R[j]), "load", level, k,
                               (i[j], var["i"][j]), (v[j], var["v"][j]), (p[j], var["p"][j]),
-                              var_new[j], _outside(mdl, float(i[j]))))
+                              var_new[j], _outside(mdl, float(i[j])), var_same[j]))
         if Iset.size:
             vI = vth - rth * Iset
             var_v = C[0, 0] + Iset ** 2 * C[1, 1] - 2 * Iset * C[0, 1]
@@ -349,11 +389,34 @@ def predict(models: Sequence[SourceModel], *, loads: Sequence[float] = (),
             with np.errstate(divide="ignore", invalid="ignore"):
                 rl = np.where(Iset != 0, vI / Iset, np.inf)
             var_new_i = _reading_variance(mdl, vI)
+            if same:
+                cr = same[0]
+                var_same_i = cr[0, 0] + Iset ** 2 * cr[1, 1] - 2 * Iset * cr[0, 1] + same[1]
+            else:
+                var_same_i = np.full(Iset.shape, np.nan)
             for j in range(Iset.size):
                 out.append(_point(mdl.dut, float(rl[j]), "current", level, k,
                                   (Iset[j], 0.0), (vI[j], var_v[j]), (pI[j], var_p[j]),
-                                  var_new_i[j], _outside(mdl, float(Iset[j]))))
+                                  var_new_i[j], _outside(mdl, float(Iset[j])),
+                                  var_same_i[j]))
     return out
+
+
+def _same_meter(mdl: SourceModel, C: np.ndarray):
+    """(covariance of (Vth, Rth) without the meters' shared part, variance of one more
+    reading's random part), or ``None`` when the fit modelled no shared meter error.
+
+    A reading taken with the very meter of the sweep, before its calibration changes,
+    carries the same gain and offset error as the readings the line was fitted to; those
+    errors moved the fitted line and the new reading alike, so they cancel in the
+    comparison (the GUM's correlated inputs, JCGM 100:2008 5.2, with correlation 1).
+    """
+    if mdl.cov_shared is None or mdl.u_reading_random is None:
+        return None
+    cr = C - np.asarray(mdl.cov_shared, float)
+    # keep a valid covariance if rounding left a hair below zero
+    cr[0, 0], cr[1, 1] = max(cr[0, 0], 0.0), max(cr[1, 1], 0.0)
+    return cr, mdl.u_reading_random ** 2
 
 
 def _reading_variance(mdl: SourceModel, v):
@@ -375,15 +438,20 @@ def _outside(mdl: SourceModel, current: float) -> bool:
     return not (lo - slack <= current <= hi + slack)
 
 
-def _point(dut, load, given, level, k, ci_i, ci_v, ci_p, var_new, outside=False):
-    def q(pair, pi=None):
+def _point(dut, load, given, level, k, ci_i, ci_v, ci_p, var_new, outside=False,
+           var_same=math.nan):
+    def q(pair, pi=None, same=None):
         val, var = float(pair[0]), max(float(pair[1]), 0.0)
         u = math.sqrt(var)
         extra = {}
         if pi is not None and math.isfinite(pi):
             up = math.sqrt(var + max(pi, 0.0))
             extra = {"pi": (val - k * up, val + k * up), "u_pi": up}
+        if same is not None and math.isfinite(same):
+            us = math.sqrt(max(float(same), 0.0))
+            extra.update(pi_same=(val - k * us, val + k * us), u_pi_same=us)
         return Quantity(val, u, (val - k * u, val + k * u), **extra)
 
-    return Prediction(dut=dut, load_ohm=load, current=q(ci_i), voltage=q(ci_v, var_new),
+    return Prediction(dut=dut, load_ohm=load, current=q(ci_i),
+                      voltage=q(ci_v, var_new, var_same),
                       power=q(ci_p), given=given, level=level, extrapolated=outside)

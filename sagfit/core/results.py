@@ -223,7 +223,7 @@ class ColumnRows:
 
 _ARRAY_FIELDS = ("n", "vth", "u_vth", "rth", "u_rth", "cov_vr", "chi2", "dof", "p_value",
                  "scale", "k", "isc", "u_isc", "pmax", "u_pmax", "converged", "method",
-                 "k_rth")
+                 "k_rth", "var_vth_shared", "var_rth_shared", "cov_vr_shared")
 
 
 @dataclass(frozen=True)
@@ -254,6 +254,15 @@ class Fits:
     used_rows : ndarray of bool or None
         Over the rows of the readings: which readings the final fit used, when an option
         (``current_range``, ``below_knee``) left some out; ``None`` when all were used.
+    k_rth : ndarray
+        Coverage factor of Rth (``k`` is that of Vth; equal unless the error model gave
+        two).
+    var_vth_shared, var_rth_shared, cov_vr_shared : ndarray
+        The part of the covariance of (Vth, Rth) that comes from the meters' systematic
+        errors shared by the sweep (gain and offset, docs/method.md §2); zero when none was
+        modelled. A later reading with the same meter, or a later record of the same DUT on
+        the same instrument, shares it: ``predict`` and ``trend`` take it out where it
+        cancels.
     """
 
     duts: tuple[str, ...]
@@ -282,10 +291,16 @@ class Fits:
     settings: Mapping[str, object] = field(default_factory=dict)
     used_rows: np.ndarray | None = None
     k_rth: np.ndarray | None = None
+    var_vth_shared: np.ndarray | None = None
+    var_rth_shared: np.ndarray | None = None
+    cov_vr_shared: np.ndarray | None = None
 
     def __post_init__(self):
         if self.k_rth is None:  # one coverage factor for both unless the fit gave two
             object.__setattr__(self, "k_rth", np.asarray(self.k))
+        for name in ("var_vth_shared", "var_rth_shared", "cov_vr_shared"):
+            if getattr(self, name) is None:  # no shared (systematic) meter errors
+                object.__setattr__(self, name, np.zeros(len(self.duts)))
         freeze_arrays(self, _ARRAY_FIELDS)
 
     def __len__(self) -> int:
