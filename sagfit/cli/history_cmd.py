@@ -260,7 +260,8 @@ def trend_command(
         trends = analyse_trends(
             recs.dut_index, recs.duts, recs.time, recs.rth, recs.u_rth,
             labels=recs.labels_per_dut(), baseline=base, threshold=thr, horizon_days=hz,
-            group_excess_pct=excess, confidence=conf, as_of=t_as_of)
+            group_excess_pct=excess, confidence=conf, as_of=t_as_of,
+            u_rth_shared=recs.u_rth_shared, instrument=recs.instrument)
         if names:
             trends = trends.take(names)
             recs = _records_of(recs, names)
@@ -296,7 +297,9 @@ def _records_of(recs, names):
         cov_vth_rth=recs.cov_vth_rth[rows], chi2=recs.chi2[rows], dof=recs.dof[rows],
         group_label=tuple(recs.group_label[k] for k in pick),
         file_name=tuple(recs.file_name[k] for k in pick),
-        file_sha256=tuple(recs.file_sha256[k] for k in pick))
+        file_sha256=tuple(recs.file_sha256[k] for k in pick),
+        u_rth_shared=recs.u_rth_shared[rows],
+        instrument=tuple(recs.instrument[k] for k in pick))
 
 
 def trend_document(trends, db: str, version: str, n_records: int) -> dict:
@@ -366,6 +369,8 @@ def print_trends(trends, doc) -> None:
                       "or --report)")
     console.print(f"{int(flagged.sum())} of {len(trends)} DUT(s) flagged. Rates are the slope "
                   "of a weighted line through the recorded Rth (± standard uncertainty).")
+    console.print(f"Meter errors shared by records: {s.get('shared_errors', 'not modelled')}.",
+                  markup=False)
     shown = 0
     for i in order:
         for f in trends.flags[i]:

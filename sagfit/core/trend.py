@@ -349,6 +349,8 @@ def analyse_trends(
     confidence: float = 0.95,
     min_records: int = 3,
     as_of: float | None = None,
+    u_rth_shared=None,
+    instrument: Sequence[str] | None = None,
 ) -> Trends:
     """Baseline, change, rate, projected crossing and fleet comparison of every DUT.
 
@@ -377,6 +379,19 @@ def analyse_trends(
         Records (on at least two days) needed for a rate.
     as_of : float, optional
         The date the horizon counts from (Unix s); default the latest record of all.
+    u_rth_shared : array_like of float, optional
+        Per record, the part of ``u_rth`` that came from the meters' systematic errors
+        (gain and offset shared by the sweep; NaN or 0 where unknown or none).
+    instrument : sequence of str, optional
+        Per record, which instruments took it (``""`` when unknown). Records of one DUT
+        taken with the same instrument share its systematic error (GUM 5.2, F.1.2.1): it
+        moves them together, so it cannot make a slope. The rate is fitted with the
+        random parts as weights and the shared parts are propagated through the line by
+        their sensitivities, one common shift per instrument: with one instrument
+        throughout they leave the rate alone and stay in the level (the latest value, the
+        projected crossing); a change of instrument makes them a step the rate does see.
+        Records with no known instrument are taken as independent (their whole
+        uncertainty weights the rate: the cautious reading).
 
     Returns
     -------
@@ -397,7 +412,11 @@ def analyse_trends(
     t0 = np.asarray(time, float).ravel()
     r0 = np.asarray(rth, float).ravel()
     u0 = np.asarray(u_rth, float).ravel()
-    if not (g0.size == t0.size == r0.size == u0.size):
+    sh0 = (np.zeros(u0.size) if u_rth_shared is None
+           else np.nan_to_num(np.asarray(u_rth_shared, float).ravel(), nan=0.0))
+    inst0 = (np.full(u0.size, "", dtype=object) if instrument is None
+             else np.asarray(list(instrument), dtype=object))
+    if not (g0.size == t0.size == r0.size == u0.size == sh0.size == inst0.size):
         raise InputError("trend input arrays differ in length")
     if g0.size and (g0.min() < 0 or g0.max() >= m):
         raise InputError("trend input: DUT index out of range")
@@ -411,6 +430,10 @@ def analyse_trends(
 
     order = np.lexsort((t0, g0))
     g, t, r, u = g0[order], t0[order], r0[order], u0[order]
+    inst = inst0[order].astype(str)
+    # the shared part counts as shared only where the instrument is known
+    sh = np.where((inst != "") & np.isfinite(u), np.clip(sh0[order], 0.0, np.abs(u)), 0.0)
+    u_rand = np.sqrt(np.maximum(u * u - sh * sh, 0.0))
     n = np.bincount(g, minlength=m)
     present = n > 0
     start = np.concatenate(([0], np.cumsum(n)[:-1]))
@@ -452,9 +475,15 @@ def analyse_trends(
         b_t = np.where(present, t[b_idx], np.nan)
     same = b_idx == li
     thr = threshold.resolve(b_rth)
+    # the same instrument at both ends: its shared error cancels in the ratio
+    same_inst = np.zeros(m, bool)
+    if baseline.kind != "value":
+        same_inst = present & (inst[b_idx] == inst[li]) & (inst[li] != "")
+    ul = np.where(same_inst, u_rand[li], u_latest)
+    ub = np.where(same_inst, u_rand[np.maximum(b_idx, 0)], b_u)
     with np.errstate(divide="ignore", invalid="ignore"):
         change = 100.0 * (latest / b_rth - 1.0)
-        u_change = 100.0 * np.sqrt((u_latest / b_rth) ** 2 + (latest * b_u / b_rth ** 2) ** 2)
+        u_change = 100.0 * np.sqrt((ul / b_rth) ** 2 + (latest * ub / b_rth ** 2) ** 2)
     u_change = np.where(same, 0.0, u_change)
 
     # ---- weighted trend line, x in days from each DUT's latest test
@@ -463,7 +492,8 @@ def analyse_trends(
     enough = present & (n >= min_records) & (dates >= 2)
     rows = enough[g]
     gi, x, y = g[rows], (t[rows] - t_latest[g[rows]]) / DAY, r[rows]
-    sy = np.where(has_u[gi], np.where(has_u_row[rows], u[rows], 1.0), 1.0)
+    u_w = np.where(u_rand[rows] > 0, u_rand[rows], u[rows])  # random part as the weight
+    sy = np.where(has_u[gi], np.where(has_u_row[rows], u_w, 1.0), 1.0)
     rate, u_rate, lo_r, hi_r = nan.copy(), nan.copy(), nan.copy(), nan.copy()
     a_fit, chi2, scale, k = nan.copy(), nan.copy(), nan.copy(), nan.copy()
     cross, c_lo, c_hi = nan.copy(), nan.copy(), nan.copy()
@@ -477,13 +507,15 @@ def analyse_trends(
         a, b = res["a"][idx], res["b"][idx]
         va, vb, cab, c2 = res["var_a"][idx], res["var_b"][idx], res["cov_ab"][idx], res["chi2"][idx]
         nu = dof[idx].astype(float)
-        red = c2 / nu
+        sys = _shared_parts(gi, x, sy, np.where(has_u[gi], sh[rows], 0.0), inst[rows], m)
+        red = c2 / (nu + sys[3][idx])  # χ² against its expectation under the model
         stated = has_u[idx]
         s2 = np.where(stated, np.maximum(1.0, red), red)
         typea = ~stated | (s2 > 1.0)
         p = 0.5 * (1.0 + confidence)
         kk = np.where(typea, special.stdtrit(nu, p), float(special.ndtri(p)))
         va, vb, cab = va * s2, vb * s2, cab * s2
+        va, vb, cab = va + sys[0][idx], vb + sys[1][idx], cab + sys[2][idx]
         rate[idx], u_rate[idx] = 30.0 * b, 30.0 * np.sqrt(vb)
         lo_r[idx], hi_r[idx] = rate[idx] - kk * u_rate[idx], rate[idx] + kk * u_rate[idx]
         a_fit[idx], chi2[idx], scale[idx], k[idx] = a, c2, s2, kk
@@ -527,6 +559,11 @@ def analyse_trends(
                    med, excess, keys, n, dates, min_records, group_excess_pct, horizon_days,
                    baseline, confidence)
     settings = {"baseline": baseline.describe(), "threshold": threshold.describe(),
+                "shared_errors": ("records with the same instrument share its systematic "
+                                  "error: not in the rate's weights, kept in the level"
+                                  if bool(np.any(sh > 0)) else
+                                  "none known (each record's uncertainty taken as "
+                                  "independent)"),
                 "horizon_days": float(horizon_days), "group_excess_pct": float(group_excess_pct),
                 "confidence": float(confidence), "min_records": min_records,
                 "as_of": iso_date(as_of)}
@@ -538,6 +575,49 @@ def analyse_trends(
         k=k, crossing_time=cross, crossing_low=c_lo, crossing_high=c_hi, crossed=crossed,
         group_key=keys, group_median=med, group_size=size, excess_pct=excess,
         flags=flags, confidence=float(confidence), as_of=float(as_of), settings=settings)
+
+
+def _shared_parts(g, x, sy, sh, inst, m):
+    """What errors shared by the records of one DUT taken with the same instrument do to
+    the weighted line: one common shift per (DUT, instrument) of size ``sh`` per record
+    (perfectly correlated, GUM 5.2.2 with r = 1).
+
+    Returns ``(var_a, var_b, cov_ab, extra_chi2)`` per DUT: the shifts propagated through
+    the line by its sensitivities ∂b/∂y_i = w_i(x_i − x̄)/Sxx and
+    ∂a/∂y_i = w_i/Σw − x̄·∂b/∂y_i (a is the level at x = 0), and how much they add to the
+    expected weighted residual sum of squares, Σ_g ‖s_g − projection of s_g on the line‖²
+    in the weights' norm (0 for one instrument with a constant shift: a line absorbs it;
+    the step of a change of instrument shows in the residuals and must not be read as
+    excess scatter)."""
+    zero = np.zeros(m)
+    if not np.any(sh > 0):
+        return zero, zero, zero, zero
+    w = 1.0 / (sy * sy)
+    sw = np.bincount(g, w, m)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xbar = np.bincount(g, w * x, m) / sw
+        dx = x - xbar[g]
+        sxx = np.bincount(g, w * dx * dx, m)
+        db = w * dx / sxx[g]
+        da = w / sw[g] - xbar[g] * db
+    # one code per (DUT, instrument)
+    _, code = np.unique(np.char.add(g.astype(str), np.char.add("\x1f", inst.astype(str))),
+                        return_inverse=True)
+    code = code.ravel()
+    nc = int(code.max()) + 1 if code.size else 0
+    ca = np.bincount(code, np.nan_to_num(da * sh), nc)
+    cb = np.bincount(code, np.nan_to_num(db * sh), nc)
+    owner = np.zeros(nc, np.int64)
+    owner[code] = g
+    # residual norm of each shift pattern after a weighted line fit (centred design)
+    s0 = np.bincount(code, w * sh, nc)
+    s1 = np.bincount(code, w * sh * dx, nc)
+    s2 = np.bincount(code, w * sh * sh, nc)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        proj = s0 * s0 / sw[owner] + s1 * s1 / sxx[owner]
+    q = np.maximum(np.nan_to_num(s2 - proj), 0.0)
+    return (np.bincount(owner, ca * ca, m), np.bincount(owner, cb * cb, m),
+            np.bincount(owner, ca * cb, m), np.bincount(owner, q, m))
 
 
 def _flags(m, duts, aging, crossed, soon, outlier, insufficient, fallback, latest, u_latest,

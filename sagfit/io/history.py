@@ -36,7 +36,7 @@ from ..core.errors import HistoryError, ReadingsFileError
 __all__ = ["History", "HistoryRecords", "RecordOutcome", "SCHEMA_VERSION", "DEFAULT_DB",
            "parse_date", "dut_test_times", "dut_group_labels"]
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 DEFAULT_DB = "sagfit-history.sqlite"
 #: PRAGMA application_id of a sagfit history ("SGFH"), so other tools can tell the file.
 APPLICATION_ID = 0x53474648
@@ -78,6 +78,13 @@ _MIGRATIONS: dict[int, tuple[str, ...]] = {
             flags_json TEXT NOT NULL,
             UNIQUE (file_sha256, dut))""",
         "CREATE INDEX results_by_dut ON results (dut, test_time)",
+    ),
+    # the part of u(Vth) and u(Rth) that came from the meters' systematic errors shared by
+    # the sweep (gain and offset): records taken with the same instrument share it, so a
+    # trend's rate must not be weighted with it (NULL in records of version 1: unknown)
+    2: (
+        "ALTER TABLE results ADD COLUMN u_vth_shared REAL",
+        "ALTER TABLE results ADD COLUMN u_rth_shared REAL",
     ),
 }
 
@@ -208,6 +215,19 @@ class HistoryRecords:
     group_label: tuple[str, ...]
     file_name: tuple[str, ...]
     file_sha256: tuple[str, ...]
+    #: the meters' shared (systematic) part of u_rth (Ω; 0 where none was modelled, NaN in
+    #: records written before it was stored)
+    u_rth_shared: np.ndarray | None = None
+    #: the instruments each record was taken with ("voltage:ID|current:ID" from the bench
+    #: profile's identifiers; "" when the profile named none)
+    instrument: tuple[str, ...] | None = None
+
+    def __post_init__(self):
+        n = int(np.asarray(self.dut_index).size)
+        if self.u_rth_shared is None:
+            object.__setattr__(self, "u_rth_shared", np.full(n, np.nan))
+        if self.instrument is None:
+            object.__setattr__(self, "instrument", ("",) * n)
 
     def __len__(self) -> int:
         return int(self.dut_index.size)
@@ -309,9 +329,8 @@ class History:
         if self._readonly and version == 0:
             raise HistoryError(f"{self.path}: no history recorded in this file; record tests "
                                f"into it first with 'sagfit record FILE --db {self.path}'")
-        if self._readonly and version < SCHEMA_VERSION:
-            raise HistoryError(f"{self.path}: an older history schema (version {version}); "
-                               "run 'sagfit record' on it once to upgrade it")
+        # an older schema is read as it is (missing columns read as unknown); the next
+        # 'sagfit record' upgrades it
         if version > SCHEMA_VERSION:
             raise HistoryError(
                 f"{self.path}: written by a newer sagfit (history schema version {version}; "
@@ -433,8 +452,8 @@ class History:
                 c.executemany(
                     "INSERT INTO results (run_id, dut, group_label, test_time, test_date, "
                     "file_sha256, n, method, vth, u_vth, rth, u_rth, cov_vth_rth, chi2, dof, "
-                    "p_value, scale, coverage_factor, flags_json) "
-                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    "p_value, scale, coverage_factor, flags_json, u_vth_shared, u_rth_shared) "
+                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (self._row(fits, i, run_id, labels[i], float(t[i]), sha256) for i in todo))
             self._before_commit()
             c.execute("COMMIT")
@@ -463,7 +482,9 @@ class History:
                 str(fits.method[i]), _num(fits.vth[i]), _num(fits.u_vth[i]),
                 _num(fits.rth[i]), _num(fits.u_rth[i]), _num(fits.cov_vr[i]),
                 _num(fits.chi2[i]), int(fits.dof[i]), _num(fits.p_value[i]),
-                _num(fits.scale[i]), _num(fits.k[i]), json.dumps(flags, ensure_ascii=False))
+                _num(fits.scale[i]), _num(fits.k[i]), json.dumps(flags, ensure_ascii=False),
+                _num(math.sqrt(max(float(fits.var_vth_shared[i]), 0.0))),
+                _num(math.sqrt(max(float(fits.var_rth_shared[i]), 0.0))))
 
     # ------------------------------------------------------------------ reading
     def count(self) -> int:
@@ -476,8 +497,10 @@ class History:
 
     def records(self, duts: Iterable[str] | None = None) -> HistoryRecords:
         """All records (or those of the named DUTs), sorted by DUT then test date."""
+        have = {r[1] for r in self._conn.execute("PRAGMA table_info(results)")}
+        shared = "u_rth_shared" if "u_rth_shared" in have else "NULL"
         cols = ("dut, test_time, rth, u_rth, vth, u_vth, cov_vth_rth, chi2, dof, group_label, "
-                "r.file_sha256, file_name")
+                f"r.file_sha256, file_name, {shared}, settings_json")
         base = (f"SELECT {cols} FROM results r JOIN runs ON runs.id = r.run_id")
         try:
             if duts is None:
@@ -505,7 +528,28 @@ class History:
             time=col(1), rth=col(2), u_rth=col(3), vth=col(4), u_vth=col(5),
             cov_vth_rth=col(6), chi2=col(7), dof=np.array([r[8] for r in rows], np.int64),
             group_label=tuple(r[9] or "" for r in rows),
-            file_sha256=tuple(r[10] for r in rows), file_name=tuple(r[11] for r in rows))
+            file_sha256=tuple(r[10] for r in rows), file_name=tuple(r[11] for r in rows),
+            u_rth_shared=col(12), instrument=_instrument_keys([r[13] for r in rows]))
+
+
+def _instrument_keys(settings_texts) -> tuple[str, ...]:
+    """Per record, which meters took it: ``"voltage:ID|current:ID"`` from the identifiers
+    the bench profile gave (stored with each run's settings); ``""`` when none was named.
+    Parsed once per run, not per record."""
+    cache: dict = {}
+    out = []
+    for text in settings_texts:
+        if text not in cache:
+            try:
+                insts = json.loads(text).get("instruments") or []
+            except (TypeError, ValueError, AttributeError):
+                insts = []
+            parts = sorted(f"{d.get('role')}:{d.get('identifier')}" for d in insts
+                           if isinstance(d, Mapping) and d.get("role") in ("voltage", "current")
+                           and d.get("identifier"))
+            cache[text] = "|".join(parts)
+        out.append(cache[text])
+    return tuple(out)
 
 
 def check_db_path(db: str, inputs: Iterable[str] = ()) -> str:
