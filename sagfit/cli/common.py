@@ -17,10 +17,13 @@ DutOpt = Annotated[Optional[str], typer.Option("--dut", help="Only these DUTs, e
 ConfidenceOpt = Annotated[Optional[float], typer.Option(
     "--confidence", help="Confidence level of the intervals [default: 0.95].")]
 VoltageAccOpt = Annotated[Optional[str], typer.Option(
-    "--voltage-accuracy", help="Voltmeter spec ±(% of reading + offset), e.g. '0.05%+2mV' "
-                               "(a rectangular half-width).")]
+    "--voltage-accuracy", help="Voltmeter spec ±(% of reading + offset), e.g. '0.05%+2mV', "
+                               "or as a data sheet prints it: '35ppm + 5ppm of range, range "
+                               "10V', '0.5% + 3 counts, resolution 1mV' (a rectangular "
+                               "half-width).")]
 CurrentAccOpt = Annotated[Optional[str], typer.Option(
-    "--current-accuracy", help="Ammeter spec, e.g. '0.2%+1mA'.")]
+    "--current-accuracy", help="Ammeter spec, e.g. '0.2%+1mA' or '0.1% of range, range "
+                               "20A'.")]
 LoadTolOpt = Annotated[Optional[str], typer.Option(
     "--load-tolerance", help="Load resistor tolerance, e.g. '1%'.")]
 VoltageNoiseOpt = Annotated[Optional[str], typer.Option(

@@ -223,38 +223,100 @@ class Accuracy:
                         self.noise_percent, self.noise_offset)
 
 
-def parse_accuracy(text: str, dimension: str, *, what: str = "accuracy") -> Accuracy:
-    """Parse ``'0.05%+2mV'``, ``'±(0.2 % + 1 mA)'``, ``'2mV'`` or ``'0.1%'``.
+_SPEC_SCALE = {"%": 1.0, "pct": 1.0, "percent": 1.0, "ppm": 1e-4}  # → per cent
+_COUNT_WORDS = r"(?:counts?|digits?|dgts?|lsds?|d)"
 
-    The result is read as a rectangular half-width (GUM 4.3.7), the usual reading of a
-    meter's accuracy specification when no confidence level is stated (common practice).
+
+def parse_accuracy(text: str, dimension: str, *, what: str = "accuracy",
+                   range: float | str | None = None,
+                   resolution: float | str | None = None) -> Accuracy:
+    """Parse a meter's accuracy specification into ±(p % of reading + offset).
+
+    Accepted forms (terms joined by ``+``; the data-sheet forms of common practice):
+
+    - ``'0.05%+2mV'``, ``'±(0.2 % + 1 mA)'``, ``'2mV'``, ``'0.1%'``: per cent of reading
+      plus a fixed offset in a unit of the quantity;
+    - ``'35ppm + 5ppm of range, range 10V'``: parts per million of reading and of range;
+      ``ppm`` or ``%`` alone, or ``of reading`` (``rdg``), is of reading;
+    - ``'0.1% of range, range 20A'`` or ``'0.1% of 20A'``: per cent of range (the range
+      named in the term, in a ``range`` clause, or by the ``range`` argument);
+    - ``'0.5% + 3 counts, resolution 1mV'``: counts (digits) of the last displayed
+      digit, with the meter's resolution on that range.
+
+    Every part of range and every count becomes part of the fixed offset (a per cent of
+    range is the same number of volts at any reading on that range). The whole is read as
+    a rectangular half-width (GUM 4.3.7), the usual reading of a meter's specification
+    when no confidence level is stated (common practice).
     """
-    s = str(text).strip().replace("±", "").replace("+/-", "")
+    raw = str(text).strip()
+    s = raw.replace("±", "").replace("+/-", "")
+    clauses = [c.strip() for c in re.split(r"[,;]", s)]
+    s = clauses[0]
     if s.startswith("(") and s.endswith(")"):
         s = s[1:-1]
     if not s:
         raise InputError(f"{what}: empty specification")
+    for clause in clauses[1:]:
+        m = re.match(r"^(range|rng|resolution|res)\s*[:=]?\s*(.+)$", clause, re.I)
+        if not m:
+            raise InputError(f"{what}: cannot read {clause!r} in {raw!r} (after a comma, "
+                             "write 'range 10V' or 'resolution 1mV')")
+        if m.group(1).lower() in ("range", "rng"):
+            range = m.group(2)
+        else:
+            resolution = m.group(2)
+
+    def quantity(value, name):
+        if value is None or isinstance(value, (int, float)):
+            return None if value is None else float(value)
+        if not re.search(r"[A-Za-zΩΩµμ]\s*$", str(value)):
+            unit = {"V": "V", "A": "A", "ohm": "Ω"}.get(dimension, dimension)
+            raise InputError(f"{what}: the {name} {value!r} needs a unit, e.g. '10{unit}'")
+        return parse_quantity(str(value).replace(" ", ""), dimension, what=f"{what} {name}")
+
     percent = 0.0
     offset = 0.0
-    parts = [p for p in re.split(r"\+", s.replace(" ", "")) if p]
+    parts = [" ".join(p.split()) for p in re.split(r"(?<![eE])\+", s) if p.strip()]
     if not parts or len(parts) > 2:
-        raise InputError(f"{what}: cannot read {text!r}; write it as e.g. '0.05%+2mV'")
+        raise InputError(f"{what}: cannot read {raw!r}; write it as e.g. '0.05%+2mV'")
     for part in parts:
-        if part.endswith("%") or part.lower().endswith("pct"):
-            try:
-                percent += parse_percent(part, what=what)
-            except InputError:
-                raise InputError(f"{what}: cannot read {part!r} in {text!r}") from None
+        rel = re.match(rf"^({_NUMBER})\s*(%|pct|percent|ppm)(?:\s*of\s*(.+))?$", part, re.I)
+        cnt = re.match(rf"^({_NUMBER})\s*{_COUNT_WORDS}$", part, re.I)
+        if rel:
+            x = float(rel.group(1)) * _SPEC_SCALE[rel.group(2).lower()]
+            of = (rel.group(3) or "reading").strip().lower()
+            if of in ("reading", "rdg", "rd", "value"):
+                percent += x
+            elif of in ("range", "rng", "full scale", "fs"):
+                r = quantity(range, "range")
+                if r is None:
+                    raise InputError(f"{what}: {part!r} in {raw!r} needs the range; write e.g. "
+                                     f"'{raw}, range 10{_unit_of(dimension)}' (or give the "
+                                     "range in the bench profile)")
+                offset += x / 100.0 * r
+            else:
+                offset += x / 100.0 * quantity(rel.group(3).strip(), "range")
+        elif cnt:
+            res = quantity(resolution, "resolution")
+            if res is None:
+                raise InputError(f"{what}: {part!r} in {raw!r} needs the resolution (one "
+                                 f"count); write e.g. '{raw}, resolution "
+                                 f"1m{_unit_of(dimension)}'")
+            offset += float(cnt.group(1)) * res
         else:
             try:
                 if not re.search(r"[A-Za-zΩΩµμ]\s*$", part):
                     raise InputError("offset without a unit")  # '2' could be V, mV or digits
-                offset += parse_quantity(part, dimension, what=what)
+                offset += parse_quantity(part.replace(" ", ""), dimension, what=what)
             except InputError:
-                unit = {"V": "mV", "A": "mA", "ohm": "mΩ"}.get(dimension, dimension)
                 raise InputError(
-                    f"{what}: cannot read {part!r} in {text!r} (give the offset with a unit "
-                    f"of {dimension}, e.g. '2{unit}')") from None
+                    f"{what}: cannot read {part!r} in {raw!r} (give the offset with a unit "
+                    f"of {dimension}, e.g. '2m{_unit_of(dimension)}', or as '% of range', "
+                    "'ppm of range' or 'counts')") from None
     if percent < 0 or offset < 0 or not math.isfinite(percent) or not math.isfinite(offset):
-        raise InputError(f"{what}: {text!r} must be non-negative and finite")
-    return Accuracy(percent=percent, offset=offset, text=str(text).strip())
+        raise InputError(f"{what}: {raw!r} must be non-negative and finite")
+    return Accuracy(percent=percent, offset=offset, text=raw)
+
+
+def _unit_of(dimension: str) -> str:
+    return {"V": "V", "A": "A", "ohm": "Ω"}.get(dimension, dimension)

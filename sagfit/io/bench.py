@@ -30,9 +30,9 @@ __all__ = ["BenchProfile", "Instrument", "read_bench"]
 
 _ALLOWED = {
     "voltage": {"accuracy", "instrument", "calibration_due", "distribution", "k", "noise",
-                "errors"},
+                "errors", "range", "resolution"},
     "current": {"accuracy", "instrument", "calibration_due", "distribution", "k", "noise",
-                "errors"},
+                "errors", "range", "resolution"},
     "load": {"tolerance", "instrument", "calibration_due"},
     "fit": {"confidence"},
     "bench": {"name", "operator", "location", "notes"},
@@ -76,8 +76,15 @@ def read_bench(path: str) -> BenchProfile:
             if not isinstance(sec["accuracy"], str):
                 raise SpecFileError(path, "write the accuracy as a string, e.g. \"0.05%+2mV\"",
                                     key=key)
+            extent = {}
+            for word in ("range", "resolution"):  # for '% of range' and 'counts' specs
+                if word in sec:
+                    if not isinstance(sec[word], str):
+                        raise SpecFileError(path, f"write the {word} with its unit as a "
+                                            f"string, e.g. \"10{dim}\"", key=f"{role}.{word}")
+                    extent[word] = sec[word]
             try:
-                acc = parse_accuracy(sec["accuracy"], dim, what=key)
+                acc = parse_accuracy(sec["accuracy"], dim, what=key, **extent)
             except InputError as exc:
                 raise SpecFileError(path, str(exc), key=key) from None
             dist = sec.get("distribution", "rectangular")
