@@ -5,6 +5,9 @@ Pure core: a :class:`Spec` (tolerance limits and a decision rule) and a
 vectorised over the DUTs; the only per-DUT Python work is building JSON dicts on request
 (:meth:`Acceptance.to_dicts`) and reading the flags of the DUTs that carry any.
 
+Length: the decision rules, the frozen ``Spec``/``Acceptance`` types and their JSON form
+belong together (a rule's limits, its decision and how it is reported change as one).
+
 Every rule is expressed as an *acceptance interval* [A_L, A_U] (measured values that
 pass) and a *rejection limit* on each side (measured values beyond it fail); measured
 values in between are *inconclusive*:

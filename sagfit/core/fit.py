@@ -8,6 +8,11 @@ unit weights give ordinary least squares and the scatter sets the covariance (Ty
 All sums run over DUTs as segment sums (``_groupsum``); the York iteration updates every DUT
 together and stops updating each DUT once its slope has converged.
 
+Length: the York kernel, its state for the error propagation, the assembly of ``Fits``
+and the fit's own flags are one path through the same per-DUT sums; the shared-error
+propagation itself lives in :mod:`sagfit.core.systematic`, the checks in
+:mod:`sagfit.core.checks`.
+
 References
 ----------
 - D. York, N. M. Evensen, M. López Martínez, J. De Basabe Delgado, "Unified equations

@@ -2,6 +2,10 @@
 
 Pure core: numbers in, a frozen :class:`Plan` out; no file access.
 
+Length: candidate loads, their safety screening and the predicted uncertainties of a
+plan are one computation over the same candidate arrays; E-series values live in
+:mod:`sagfit.core.eseries`.
+
 Method
 ------
 1. The source is assumed to follow its rough equivalent V = Vth − Rth·I, so a load R

@@ -9,8 +9,9 @@ Method, per DUT (all DUTs together, sums with ``np.bincount``):
    stated value.
 2. **Change** from baseline to the latest record, c = 100·(Rth_L/Rth_B − 1) %, with
    u²(c) = 100²·[(u_L/Rth_B)² + (Rth_L·u_B/Rth_B²)²] (GUM law of propagation,
-   JCGM 100:2008 5.1.2; the two tests taken as uncorrelated, which overstates u(c) a
-   little when the same meters were used on both dates).
+   JCGM 100:2008 5.1.2; with the same instruments on both dates only the random parts
+   enter, their shared calibration error cancelling in the ratio; otherwise the two
+   tests are taken as uncorrelated).
 3. **Rate**: weighted least-squares line Rth(t) = a + b·(t − t_L), weights 1/u²(Rth)
    (the York et al. 2004 kernel of :func:`sagfit.fit.york_line` with no error in t,
    which is WLS; N. R. Draper, H. Smith, *Applied Regression Analysis*, 3rd ed. (1998),
@@ -19,7 +20,10 @@ Method, per DUT (all DUTs together, sums with ``np.bincount``):
    S² = max(1, χ²/ν), ν = n − 2 (PDG convention), and intervals then use Student t with
    ν degrees of freedom; without scatter beyond the stated uncertainties, the normal
    quantile. A rate is *significantly above zero* when its lower confidence limit is
-   above zero.
+   above zero. Records taken with the same instrument share its systematic error
+   (GUM 5.2, F.1.2.1): the weights are the random parts, and each instrument's shared
+   part enters as one common shift of its records (:func:`_shared_parts`), which a line
+   absorbs into its level unless the instrument changed.
 4. **Projected crossing** of the threshold T: t* = t_L + (T − a)/b, with Fieller's
    interval — the set of t where |a + b·t − T| ≤ k·√var(a + b·t) (E. C. Fieller,
    "Some problems in interval estimation", J. R. Stat. Soc. B 16, 175–185 (1954);
@@ -35,6 +39,10 @@ significantly above zero and the projected crossing is within the horizon),
 group median, groups of three or more), ``insufficient-history`` (info; fewer than
 ``min_records`` records on two or more dates, so no rate), ``baseline-fallback`` (info;
 no record on the baseline date).
+
+Length: one module because the steps share the sorted record arrays and per-DUT
+indexes built at the top of :func:`analyse_trends`; split, each part would rebuild or
+pass a dozen of them.
 """
 
 from __future__ import annotations

@@ -2,7 +2,8 @@
 
 Edge module (the standard library's ``sqlite3`` is imported here and nowhere else), so
 that a server database can be put behind the same ``History`` class later without
-touching the rest of sagfit.
+touching the rest of sagfit. Length: that one-module rule is the reason; every SQL
+statement sagfit runs is in this file.
 
 Guarantees
 ----------
