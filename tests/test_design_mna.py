@@ -143,5 +143,7 @@ def test_en_and_single_component_explanation():
     # R2 (tap to ground) 10 % high moves Vth by +0.142857 V, Rth by +47.6 Ω: R2 is named
     net = parse_netlist(DIVIDER.replace("R2 tap 0 2k0", "R2 tap 0 2.2k"))
     v2, r2 = equivalent(net)
-    best = explain(t, v2 - t.vth, r2 - t.rth)
-    assert best[0][0] == "R2" and best[0][1] == pytest.approx(0.1, rel=0.05)
+    # differences in units of 1 mV and 1 Ω: only a change of R2 fits both
+    best = explain(t, [[v2 - t.vth, r2 - t.rth]], [[1e-3, 1.0]])[0]
+    assert best[0].part == "R2" and best[0].relative_change == pytest.approx(0.1, rel=0.1)
+    assert not best[0].within_tolerance  # 10 % against a 1 % part
