@@ -18,13 +18,14 @@ from .common import (BenchOpt, CurrentAccOpt, DutOpt, JsonOpt, LoadTolOpt, Volta
 from ..core.errors import OptionError
 from ..core.formatting import format_estimate, format_value
 from ..core.mna import Circuit
-from ..core.tolerance import PERCENTILES, analyse, compare
+from ..core.tolerance import MC_CHUNK, PERCENTILES, analyse, compare
 from ..core.units import parse_quantity
 
 _METHODS = ("worst-case", "rss", "monte-carlo")
-#: Monte Carlo work (draws × unknowns) above which a terminal shows a progress bar
-#: (about a second of solving on the 2-core development machine)
-PROGRESS_WORK = 5_000_000
+#: Monte Carlo work (draws × unknowns) from which a terminal shows a progress bar (50,000
+#: draws of a 200-node network: about a second with the tolerance analysis around it on
+#: the 2-core development machine, 2026-12-05)
+PROGRESS_WORK = 10_000_000
 
 
 def _q(text, dim, option):
@@ -110,7 +111,7 @@ def design_command(
                                    load_tolerance, bench)
         circuit = Circuit(net)
         show = (not json_out and interactive() and draws * circuit.size >= PROGRESS_WORK)
-        with progress(f"Monte Carlo: {draws:,} draws", show, total=-(-draws // 20_000)) as step:
+        with progress(f"Monte Carlo: {draws:,} draws", show, total=-(-draws // MC_CHUNK)) as step:
             t = analyse(circuit, draws=draws, distribution=distribution, seed=seed,
                         on_progress=lambda done, total: step(
                             f"Monte Carlo: {done:,} of {total:,} draws"))
