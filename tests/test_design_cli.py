@@ -104,3 +104,19 @@ class TestProgress:
         net.write_text(DIVIDER + ".port tap 0\n")
         code, _, err = _run(capsys, "design", str(net), "--draws", "2000", *argv)
         assert code == 0 and calls[0]["enabled"] is False and err == ""
+
+
+def test_sample_pack_design_against_the_fleet(capsys):
+    """The docs' example runs as written: the invented pack design against the invented
+    fleet readings (fitted here); the older pack PK-12 is not consistent and a cell's
+    internal resistance is named, the five other cells as alike."""
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1] / "sample_runs"
+    code, out, err = _run(capsys, "design", str(root / "pack_design.cir"), "--measured",
+                          str(root / "fleet_packs.csv"), "--draws", "2000", "--json")
+    assert code == 1, err
+    units = {u["dut"]: u for u in json.loads(out)["measured"]["units"]}
+    assert not units["PK-12"]["consistent"] and units["PK-07"]["consistent"]
+    e = units["PK-12"]["explanation"][0]
+    assert e["part"].startswith("RC") and len(e["alike"]) == 5 and not e["within_tolerance"]
