@@ -118,6 +118,17 @@ def test_developers_map_matches_tree():
     assert named == actual
 
 
+def test_package_map_names_every_module():
+    """Each module of the four packages has its line (its file name) in DEVELOPERS.md's
+    package map."""
+    text = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    section = text.split("## Package map", 1)[1].split("\n## ", 1)[0]
+    named = set(re.findall(r"`(?:[a-z_]+/)?([a-z_0-9]+\.py)`", section))
+    missing = sorted(f"{p.parent.name}/{p.name}" for p in PKG.glob("*/*.py")
+                     if p.name != "__init__.py" and p.name not in named)
+    assert missing == []
+
+
 def test_import_sagfit_does_not_import_typer():
     """`import sagfit` stays free of the CLI and of heavy optional libraries."""
     import subprocess

@@ -48,6 +48,10 @@ class Element:
     control: tuple[str, ...] = ()
     tol: float = 0.0
     line: int = 0
+    #: columns (1-based characters) of the element's name and of its two nodes; the
+    #: nodes' lines (a continuation line may hold them)
+    column: int = 0
+    node_at: tuple[tuple[int, int], tuple[int, int]] = ((0, 0), (0, 0))
 
 
 @dataclass(frozen=True, slots=True)
@@ -110,6 +114,7 @@ def _parse(text, path, port):
     notes: list[str] = []
     names: dict[str, int] = {}
     port_line = None
+    port_at = ((None, None), (None, None))
     for start, toks in _lines(text):
         col, word, lno = toks[0]
         letter = word[0].upper()
@@ -122,6 +127,7 @@ def _parse(text, path, port):
                     raise NetlistError(path, ".port needs two nodes, e.g. '.port out 0'",
                                        lno, col)
                 port_line = (toks[1][1].lower(), toks[2][1].lower())
+                port_at = ((toks[1][2], toks[1][0]), (toks[2][2], toks[2][0]))
                 continue
             if d in (".title", ".op", ".tf", ".options", ".option"):
                 continue
@@ -158,9 +164,11 @@ def _parse(text, path, port):
                                f"name, found {len(rest)}", lno, c)
         nodes = (rest[0][1].lower(), rest[1][1].lower())
         nodes = tuple("0" if n in GROUND else n for n in nodes)
+        where = dict(line=lno, column=col,
+                     node_at=((rest[0][2], rest[0][0]), (rest[1][2], rest[1][0])))
         if letter in "LC":
             notes.append(f"{word}: {'inductor taken as a short' if letter == 'L' else 'capacitor taken as an open'} at DC")
-            elements.append(Element(word, letter, nodes, 0.0, line=lno))
+            elements.append(Element(word, letter, nodes, 0.0, **where))
             continue
         vc, vt, vl = rest[-1]
         control: tuple[str, ...] = ()
@@ -174,7 +182,7 @@ def _parse(text, path, port):
             raise NetlistError(path, f"cannot read value {vt!r} of {word}", vl, vc) from None
         if letter == "R" and not (value > 0 and math.isfinite(value)):
             raise NetlistError(path, f"resistor {word} must be above 0 Ω and finite", vl, vc)
-        elements.append(Element(word, letter, nodes, value, control, tol, lno))
+        elements.append(Element(word, letter, nodes, value, control, tol, **where))
     p = port or port_line
     if p is None:
         raise NetlistError(path, "no port: add a line '.port <node+> <node->' or give the "
@@ -182,11 +190,13 @@ def _parse(text, path, port):
     p = tuple("0" if n.lower() in GROUND else n.lower() for n in p)
     if not elements:
         raise NetlistError(path, "no elements", None, None)
-    _check(path, elements, p)
+    if port is not None:  # given as an option: no place in the file
+        port_at = ((None, None), (None, None))
+    _check(path, elements, p, port_at)
     return Netlist(path, tuple(elements), p, tuple(notes))
 
 
-def _check(path, elements, port):
+def _check(path, elements, port, port_at):
     """Floating nodes, loops of voltage sources/inductors, controls that do not exist."""
     vnames = {e.name.lower() for e in elements if e.kind in "VL"}
     nodes = {n for e in elements for n in e.nodes} | {n for e in elements if e.kind in "EG"
@@ -194,10 +204,10 @@ def _check(path, elements, port):
     for e in elements:
         if e.kind in "FH" and e.control[0] not in vnames:
             raise NetlistError(path, f"{e.name}: controlling source {e.control[0]!r} is not a "
-                               "voltage source of this netlist", e.line, None)
-    for n in port:
+                               "voltage source of this netlist", e.line, e.column)
+    for n, (ln, c) in zip(port, port_at):
         if n not in nodes:
-            raise NetlistError(path, f"port node {n!r} is not in the netlist", None, None)
+            raise NetlistError(path, f"port node {n!r} is not in the netlist", ln, c)
     if "0" not in nodes:
         raise NetlistError(path, "no ground node '0'", None, None)
     # union-find over conducting elements (C is open; controlled-source control pins draw
@@ -215,15 +225,19 @@ def _check(path, elements, port):
             parent[find(e.nodes[0])] = find(e.nodes[1])
     g = find("0")
     for e in elements:
-        for n in e.nodes:
+        for n, (ln, c) in zip(e.nodes, e.node_at):
             if find(n) != g:
                 raise NetlistError(path, f"node {n!r} of {e.name} is floating (no DC path to "
-                                   "ground)", e.line, None)
+                                   "ground)", ln, c)
+        for n in (e.control if e.kind in "EG" else ()):
+            if find(n) != g:
+                raise NetlistError(path, f"control node {n!r} of {e.name} is not connected to "
+                                   "the circuit (no DC path to ground)", e.line, e.column)
     parent = {n: n for n in nodes}
     for e in elements:
         if e.kind in "VEHL":
             a, b = find(e.nodes[0]), find(e.nodes[1])
             if a == b:
                 raise NetlistError(path, f"{e.name} closes a loop of voltage sources (or "
-                                   "inductors, shorts at DC)", e.line, None)
+                                   "inductors, shorts at DC)", e.line, e.column)
             parent[a] = b

@@ -23,6 +23,9 @@ import numpy as np
 from .mna import Circuit
 
 VERTEX_LIMIT = 12
+#: Monte Carlo draws generated and solved per pass (bounds memory; the draws do not
+#: depend on it: the generator's stream is consumed in the same order)
+MC_CHUNK = 20_000
 PERCENTILES = (0.135, 2.5, 50.0, 97.5, 99.865)
 
 
@@ -56,8 +59,13 @@ class Tolerances:
 
 
 def analyse(circuit: Circuit, *, draws: int = 10_000, distribution: str = "uniform",
-            seed: int = 1) -> Tolerances:
-    """Run every method on ``circuit``; ``draws=0`` skips Monte Carlo."""
+            seed: int = 1, on_progress=None) -> Tolerances:
+    """Run every method on ``circuit``; ``draws=0`` skips Monte Carlo.
+
+    ``on_progress(done, total)``, when given, is called after each pass of Monte Carlo
+    draws (``MC_CHUNK`` at a time)."""
+    if distribution not in ("uniform", "normal"):
+        raise ValueError(f"distribution must be 'uniform' or 'normal', not {distribution!r}")
     x0 = circuit.nominal
     tol = circuit.tol
     p = x0.size
@@ -91,40 +99,168 @@ def analyse(circuit: Circuit, *, draws: int = 10_000, distribution: str = "unifo
     mv = mr = None
     if draws > 0:
         rng = np.random.default_rng(seed)
-        if distribution == "uniform":
-            z = rng.uniform(-1.0, 1.0, (draws, p))
-        elif distribution == "normal":
-            z = rng.standard_normal((draws, p)) / 3.0
-        else:
-            raise ValueError(f"distribution must be 'uniform' or 'normal', not {distribution!r}")
-        e = circuit.solve(x0 + z * span)
-        mv, mr = e.vth, e.rth
+        mv, mr = np.empty(draws), np.empty(draws)
+        for lo in range(0, draws, MC_CHUNK):
+            n = min(MC_CHUNK, draws - lo)
+            if distribution == "uniform":
+                z = rng.uniform(-1.0, 1.0, (n, p))
+            else:
+                z = rng.standard_normal((n, p)) / 3.0
+            e = circuit.solve(x0 + z * span)
+            mv[lo:lo + n], mr[lo:lo + n] = e.vth, e.rth
+            if on_progress is not None:
+                on_progress(lo + n, draws)
     return Tolerances(tuple(e.name for e in circuit.params), x0, tol, vth, rth, dvth, drth,
                       svth, srth, float(np.sqrt(np.sum(dvth ** 2))),
                       float(np.sqrt(np.sum(drth ** 2))), wc_vth, wc_rth, vv, vr, mv, mr,
                       distribution, seed)
 
 
-def normalised_error(measured: float, u_meas: float, expected: float, u_design: float
-                     ) -> float:
+def normalised_error(measured, u_meas, expected, u_design):
     """E_n = (measured − expected) / √(U_meas² + U_design²), expanded uncertainties
-    (ISO 13528:2022, clause 9.7; ISO/IEC 17043:2023). |E_n| ≤ 1 is consistent."""
-    return float((measured - expected) / np.hypot(u_meas, u_design))
+    (ISO 13528:2022, clause 9.7; ISO/IEC 17043:2023). |E_n| ≤ 1 is consistent.
+    Scalars give a float, arrays an array."""
+    en = (np.asarray(measured, float) - expected) / np.hypot(u_meas, u_design)
+    return float(en) if np.ndim(en) == 0 else en
 
 
-def explain(t: Tolerances, dv: float, dr: float) -> list[tuple[str, float, float]]:
-    """Single parts that, moved alone, would explain a measured-minus-expected difference
-    (dv in Vth, dr in Rth): for each part the first-order value change that best fits both
-    differences (least squares over the two outputs, each scaled by its RSS band), and the
-    residual misfit. Returns (name, relative change of the part, misfit), best first."""
-    sv = t.rss_vth or 1.0
-    sr = t.rss_rth or 1.0
-    a = np.stack([t.svth / sv, t.srth / sr], axis=1)  # (P, 2)
-    y = np.array([dv / sv, dr / sr])
-    nrm = np.sum(a * a, axis=1)
+def design_uncertainty(t: Tolerances) -> tuple[float, float, str]:
+    """Expanded uncertainty (k = 2) of the expected Vth and Rth from the parts' spread,
+    and where it comes from: the standard deviation of the Monte Carlo draws when they
+    were run (non-linearity included), else the first-order RSS read with the parts'
+    distribution (uniform: u = RSS/√3; normal with tol = 3σ: u = RSS/3; GUM JCGM
+    100:2008, 4.3.7 and 5.1.2)."""
+    if t.mc_vth is not None and t.mc_vth.size >= 100:
+        return (2 * float(np.std(t.mc_vth, ddof=1)), 2 * float(np.std(t.mc_rth, ddof=1)),
+                "monte-carlo")
+    div = np.sqrt(3.0) if t.distribution == "uniform" else 3.0
+    return 2 * t.rss_vth / div, 2 * t.rss_rth / div, "rss"
+
+
+@dataclass(frozen=True, slots=True)
+class Explanation:
+    """One part that, changed alone, would explain a unit's difference (first order)."""
+
+    part: str
+    #: the change of the part's value it needs, as a fraction of its nominal value
+    relative_change: float
+    #: the part's value after that change (SI)
+    value: float
+    #: whether the change lies within the part's tolerance
+    within_tolerance: bool
+    #: what is left unexplained, in units of the combined expanded uncertainties
+    #: (≤ 1: the changed part accounts for the difference)
+    misfit: float
+    #: other parts whose change would have the same effect (equal cells of a pack)
+    alike: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class Comparison:
+    """Measured units against the design's expected equivalent, one entry per DUT (NaN
+    where a quantity was not measured)."""
+
+    duts: tuple[str, ...]
+    vth: np.ndarray
+    U_vth: np.ndarray
+    rth: np.ndarray
+    U_rth: np.ndarray
+    expected_vth: float
+    expected_rth: float
+    U_design_vth: float
+    U_design_rth: float
+    U_design_from: str
+    en_vth: np.ndarray
+    en_rth: np.ndarray
+    #: |E_n| ≤ 1 for every quantity measured
+    consistent: np.ndarray
+    #: per DUT, the best single-part explanations (empty where consistent)
+    explanations: tuple[tuple[Explanation, ...], ...]
+
+
+def compare(t: Tolerances, duts, vth, U_vth, rth, U_rth, *, keep: int = 3) -> Comparison:
+    """E_n of every DUT's measured Vth and Rth against the design, and for each DUT with
+    |E_n| > 1 the ``keep`` single parts that best explain the difference.
+
+    ``vth``, ``U_vth``, ``rth``, ``U_rth``: arrays over DUTs, expanded uncertainties;
+    NaN where not measured.
+    """
+    arr = [np.asarray(a, float).reshape(-1) for a in (vth, U_vth, rth, U_rth)]
+    vth, U_vth, rth, U_rth = arr
+    uv, ur, source = design_uncertainty(t)
+    en_v = normalised_error(vth, U_vth, t.vth, uv)
+    en_r = normalised_error(rth, U_rth, t.rth, ur)
+    with np.errstate(invalid="ignore"):
+        bad = (np.abs(en_v) > 1) | (np.abs(en_r) > 1)
+    ex: list[tuple[Explanation, ...]] = [()] * vth.size
+    idx = np.flatnonzero(bad)
+    for lo in range(0, idx.size, 1000):  # bounds the (DUTs × parts × 2) work array
+        i = idx[lo:lo + 1000]
+        diff = np.stack([vth[i] - t.vth, rth[i] - t.rth], axis=1)
+        scale = np.stack([np.hypot(U_vth[i], uv), np.hypot(U_rth[i], ur)], axis=1)
+        for k, row in zip(i, explain(t, diff, scale, keep=keep)):
+            ex[k] = row
+    return Comparison(tuple(str(d) for d in duts), vth, U_vth, rth, U_rth, t.vth, t.rth, uv,
+                      ur, source, en_v, en_r, ~bad, tuple(ex))
+
+
+def explain(t: Tolerances, diff, scale, *, keep: int = 3) -> list[tuple[Explanation, ...]]:
+    """Single parts that, moved alone, would explain measured-minus-expected differences.
+
+    ``diff`` and ``scale``: arrays (DUTs, 2) of the differences in (Vth, Rth) and the
+    combined expanded uncertainty of each; NaN marks a quantity not measured. For each
+    part the first-order change that best fits the measured differences (least squares,
+    each difference in units of its scale) and the misfit left. Best first: the parts
+    that explain the difference (misfit ≤ 1) needing the smallest change relative to
+    their tolerance, then the rest by misfit.
+    """
+    diff = np.atleast_2d(np.asarray(diff, float))
+    scale = np.atleast_2d(np.asarray(scale, float))
+    seen = np.isfinite(diff) & np.isfinite(scale) & (scale > 0)
+    w = np.where(seen, 1.0 / np.where(seen, scale, 1.0), 0.0)  # (D, 2)
+    y = np.where(seen, diff, 0.0) * w  # (D, 2)
+    s = np.stack([t.svth, t.srth], axis=1)  # (P, 2): d output / d value
+    a = s[None, :, :] * w[:, None, :]  # (D, P, 2)
+    nrm = np.sum(a * a, axis=2)
     with np.errstate(divide="ignore", invalid="ignore"):
-        step = np.where(nrm > 0, a @ y / nrm, np.nan)
-    resid = np.sqrt(np.sum((y[None, :] - a * step[:, None]) ** 2, axis=1))
-    rel = np.where(t.nominal_values != 0, step / t.nominal_values, np.nan)
-    order = np.argsort(np.where(np.isfinite(step), resid, np.inf), kind="stable")
-    return [(t.names[i], float(rel[i]), float(resid[i])) for i in order if np.isfinite(step[i])]
+        step = np.where(nrm > 0, np.einsum("dpo,do->dp", a, y) / nrm, np.nan)
+        resid = np.sqrt(np.sum((y[:, None, :] - a * step[:, :, None]) ** 2, axis=2))
+        x0 = t.nominal_values
+        rel = np.where(x0 != 0, step / x0, np.nan)
+        need = np.abs(rel) / np.where(t.tol > 0, t.tol, np.inf)
+    # a part without a stated tolerance is not expected to move: after every part that has one
+    need = np.where(t.tol > 0, need, 1e300 * np.minimum(np.abs(rel), 1e8) + 1e290)
+    usable = np.isfinite(step) & np.isfinite(rel)
+    fits = resid <= 1
+    key1 = np.where(usable & fits, need, np.inf)
+    key2 = np.where(usable, np.where(fits, 0.0, resid), np.inf)
+    out = []
+    for d in range(diff.shape[0]):
+        order = np.lexsort((key1[d], key2[d]))
+        row: list[Explanation] = []
+        alike: list[list[int]] = []
+        for p in order:
+            if not usable[d, p]:
+                break
+            r = float(rel[d, p])
+            twin = next((k for k, e in enumerate(row) if _same(e, r, resid[d, p])), None)
+            if twin is not None:
+                alike[twin].append(int(p))
+                continue
+            if len(row) == keep:
+                break
+            row.append(Explanation(t.names[p], r, float(x0[p] * (1 + r)),
+                                   bool(abs(r) <= t.tol[p] * (1 + 1e-9)),
+                                   float(resid[d, p])))
+            alike.append([])
+        out.append(tuple(Explanation(e.part, e.relative_change, e.value, e.within_tolerance,
+                                     e.misfit, tuple(t.names[i] for i in sorted(a)))
+                         for e, a in zip(row, alike)))
+    return out
+
+
+def _same(e: Explanation, rel: float, resid: float) -> bool:
+    """Another part with the same effect (say, one of six equal cells): the same relative
+    change and misfit to 0.1 %."""
+    return (abs(rel - e.relative_change) <= 1e-3 * abs(e.relative_change)
+            and abs(resid - e.misfit) <= 1e-3 * max(e.misfit, 1e-3))

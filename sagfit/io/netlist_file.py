@@ -1,20 +1,24 @@
-"""Netlist files (edge module): read bytes, decode, hand the text to core.netlist; write
-an acceptance spec whose limits come from a design's tolerance analysis."""
+"""Netlist files (edge module): read bytes, decode, hand the text to core.netlist; the
+text of an acceptance spec whose limits come from a design's tolerance analysis (written
+by the command through ``io.outputs.atomic_write``)."""
 
 from __future__ import annotations
 
 import json
 import os
-import tempfile
 
-from ..core.errors import InputError
-from ..core.netlist import Netlist, parse_netlist
+from ..core.netlist import Netlist, NetlistError, parse_netlist
+from .files import read_input
+
+#: a netlist larger than this is refused before it is read
+LIMIT = 64 << 20
 
 
 def read_netlist(path: str, port: tuple[str, str] | None = None) -> Netlist:
     """Read a SPICE-subset netlist file (UTF-8 or Latin-1)."""
-    with open(path, "rb") as fh:
-        raw = fh.read()
+    raw = read_input(path, NetlistError, what="netlist", limit=LIMIT,
+                     too_large=lambda n: f"{n / 1e6:.0f} MB is larger than a netlist "
+                                         f"sagfit reads ({LIMIT >> 20} MB)")
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
@@ -31,14 +35,3 @@ def spec_text(name: str, vth: tuple[float, float], rth: tuple[float, float], met
             f"{json.dumps(f'limits from {method} analysis of {os.path.basename(source)}')}\n\n"
             f"[limits.vth]\nmin = \"{vth[0]!r}V\"\nmax = \"{vth[1]!r}V\"\n\n"
             f"[limits.rth]\nmin = \"{rlo!r}ohm\"\nmax = \"{rth[1]!r}ohm\"\n")
-
-
-def write_spec(path: str, text: str, inputs: tuple[str, ...]) -> None:
-    """Write ``text`` atomically; refuse to overwrite an input file."""
-    if any(os.path.abspath(path) == os.path.abspath(i) for i in inputs):
-        raise InputError(f"{path}: would overwrite an input file; choose another name")
-    d = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(dir=d, prefix=".spec-", suffix=".tmp")
-    with os.fdopen(fd, "w", encoding="utf-8") as fh:
-        fh.write(text)
-    os.replace(tmp, path)
