@@ -59,3 +59,54 @@ class TestInstrumentsThatEnteredTheResult:
                   "--bench", bench, "--json")
         doc = json.loads(run.out)
         assert "SHUNT-Q9" not in json.dumps(doc)
+
+
+class TestCautionsFollowTheSource:
+    def test_regulator_board_caution_says_extrapolated_not_melting(self, cli):
+        """A 5 V board tested to 1.5 A: the 132 A is called an extrapolation, without the
+        'melt tools' wording of a source seen delivering its current."""
+        run = cli("fit", SAMPLES / "reg5v_board.csv")
+        line = next(ln for ln in run.out.splitlines() if "short-circuit" in ln
+                    and ln.startswith("caution:"))
+        assert "(extrapolated)" in line and "tested up to 1.5 A" in line
+        assert "melt" not in run.out and "battery" not in run.out
+
+    def test_below_knee_uses_the_limit_not_the_line(self, cli, tmp_path):
+        """A 12 V supply seen limiting at 1 A, refitted below the knee: the line's 860 A
+        raises no short-circuit caution."""
+        rows = ["load_ohm,voltage_V,current_A", "open,12.0000,0.0000"]
+        for r in (100, 47, 33, 22, 18, 15, 12.5):
+            i = 12 / (r + 0.014)
+            rows.append(f"{r},{12 - 0.014 * i:.4f},{i:.4f}")
+        rows += [f"{r},{r:.4f},1.0000" for r in (10, 8.2, 6.8, 5.6, 4.7)]
+        p = tmp_path / "limit.csv"
+        p.write_text("\n".join(rows) + "\n")
+        run = cli("fit", p, "--below-knee", "--voltage-accuracy", "0.01%+1mV",
+                  "--current-accuracy", "0.1%+1mA")
+        assert run.code == 0, run.err
+        assert "short-circuit current Isc (extrapolated)" in run.out
+        assert "High prospective short-circuit current" not in run.out
+
+    def test_record_gives_its_cautions_once_per_run(self, cli, tmp_path):
+        """Three files in one record run: each recorded, the cautions printed once."""
+        import shutil
+        files = []
+        for k in range(3):
+            files.append(tmp_path / f"pack{k}.csv")
+            shutil.copy(SAMPLES / "pack_a.csv", files[-1])
+        run = cli("record", *files, "--db", tmp_path / "h.sqlite")
+        assert run.code == 0, run.err
+        assert run.out.count("recorded 1 DUT(s)") == 3
+        assert run.out.count("High prospective short-circuit current") == 1
+        assert run.out.count("Hot load resistors") == 1
+        assert run.out.count("not a safety assessment") == 1
+        doc = json.loads(cli("record", *files, "--db", tmp_path / "h2.sqlite", "--json").out)
+        assert len(doc["runs"]) == 3 and len(doc["cautions"]) == 3
+        assert all("cautions" not in r for r in doc["runs"])
+
+    def test_record_of_a_bad_second_file_records_nothing(self, cli, tmp_path):
+        bad = tmp_path / "bad.csv"
+        bad.write_text("load_ohm,voltage_V\nopen,12.7\n10,x\n")
+        run = cli("record", SAMPLES / "pack_a.csv", bad, "--db", tmp_path / "h.sqlite")
+        assert run.code == 2 and "bad.csv" in run.err
+        assert not (tmp_path / "h.sqlite").exists()
