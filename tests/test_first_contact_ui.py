@@ -110,3 +110,48 @@ class TestCautionsFollowTheSource:
         run = cli("record", SAMPLES / "pack_a.csv", bad, "--db", tmp_path / "h.sqlite")
         assert run.code == 2 and "bad.csv" in run.err
         assert not (tmp_path / "h.sqlite").exists()
+
+
+class TestPowerFigure:
+    @staticmethod
+    def _band_and_labels(fig):
+        ax = fig.axes[0]
+        band = ax.collections[0].get_paths()[0].vertices
+        labels = [t.get_text() for leg in fig.legends for t in leg.get_texts()]
+        return band, labels, ax
+
+    def test_regulator_peak_is_labelled_extrapolated(self):
+        """A 5 V board tested to 1.5 A: the 166 W peak is marked extrapolated, the
+        region below the smallest tested load is shaded and labelled."""
+        import sagfit
+        from sagfit.report.plots import power_figure
+        r = sagfit.read_readings(SAMPLES / "reg5v_board.csv")
+        band, labels, ax = self._band_and_labels(power_figure(r, sagfit.fit(r), 0))
+        assert any(lb.startswith("maximum power at R = Rth (extrapolated)") for lb in labels)
+        assert any(lb.startswith("extrapolated: loads below") for lb in labels)
+        assert ax.get_ylim()[0] == 0.0
+
+    def test_band_never_below_zero(self):
+        """A poorly determined source: the k·u band stops at zero power."""
+        import numpy as np
+
+        from sagfit.core.readings import Readings
+        from sagfit.report.plots import power_figure
+        # invented: three noisy readings, a wide band
+        rd = Readings.from_arrays(voltage=[5.0, 4.6, 4.75], current=[0.0, 0.5, 1.0])
+        import sagfit
+        fig = power_figure(rd, sagfit.fit(rd), 0)
+        band, labels, _ = self._band_and_labels(fig)
+        assert np.nanmin(band[:, 1]) >= 0.0
+
+    def test_sweep_through_the_peak_is_not_labelled(self):
+        """A cell swept past R = Rth: the peak was measured and is not labelled."""
+        import numpy as np
+
+        from sagfit.core.readings import Readings
+        from sagfit.report.plots import power_figure
+        import sagfit
+        i = np.array([0.0, 0.5, 1.0, 1.5, 2.0, 2.5])  # invented: Isc = 3 A
+        rd = Readings.from_arrays(voltage=1.5 - 0.5 * i, current=i, u_voltage=[0.001] * 6)
+        band, labels, _ = self._band_and_labels(power_figure(rd, sagfit.fit(rd), 0))
+        assert any(lb.startswith("maximum power at R = Rth:") for lb in labels)

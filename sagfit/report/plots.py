@@ -527,7 +527,14 @@ def residual_figure(readings, fits, i: int, *, used=None):
 def power_figure(readings, fits, i: int):
     """Power delivered into a load R, P = Vth²·R/(Rth + R)², against R (log axis), with
     its k·u band (delta method), the maximum-power point R = Rth and the tested loads.
+
+    Power is never negative, so the band stops at zero. Loads below the smallest one
+    tested draw more current than the sweep reached: there the curve is dashed, the
+    region shaded and labelled "extrapolated", and so is the maximum-power point when the
+    sweep did not come near it (``sagfit.core.extrapolation``).
     Returns None when Rth ≤ 0 or the DUT was not fitted (no maximum-power point)."""
+    from ..core.extrapolation import REACHED
+
     vth, rth = float(fits.vth[i]), float(fits.rth[i])
     if fits.error[i] is not None or not (math.isfinite(vth) and math.isfinite(rth)) or rth <= 0:
         return None
@@ -549,19 +556,33 @@ def power_figure(readings, fits, i: int):
            + 2.0 * dv * dr * fits.cov_vr[i])
     band = float(fits.k[i]) * np.sqrt(np.maximum(var, 0.0))
     fi = fits[i]
+    # the smallest load the sweep reached; below it the curve is read off the fitted line
+    r_min = float(np.min(r_test[tested])) if tested.any() else math.inf
+    i_max = float(np.max(np.abs(cur))) if cur.size else 0.0
+    pmax_extrapolated = not i_max >= REACHED * abs(float(fits.isc[i])) / 2
+    beyond = grid < r_min
     with house_style():
         fig, ax = new_figure(6.4, 4.2)
         ax.set_xscale("log")
-        ax.fill_between(grid, p - band, p + band, color=COLORS["band_ci"], alpha=0.25, lw=0,
-                        label=f"confidence band ({_level(fits)})")
-        ax.plot(grid, p, color=COLORS["model"], label="P = Vth²·R/(Rth + R)²")
+        ax.fill_between(grid, np.maximum(p - band, 0.0), p + band, color=COLORS["band_ci"],
+                        alpha=0.25, lw=0, label=f"confidence band ({_level(fits)})")
+        if beyond.any():
+            ax.axvspan(lo, min(r_min, hi), color=COLORS["grid"], alpha=0.6, lw=0,
+                       label="extrapolated: loads below the smallest tested")
+            cut = int(np.count_nonzero(beyond))
+            ax.plot(grid[:cut + 1], p[:cut + 1], color=COLORS["model"], ls="--")
+        ax.plot(grid[beyond.sum():], p[beyond.sum():], color=COLORS["model"],
+                label="P = Vth²·R/(Rth + R)²")
+        star = (f"maximum power at R = Rth{' (extrapolated)' if pmax_extrapolated else ''}:\n"
+                f"{format_estimate(fi.pmax.value, fi.pmax.u, 'W')} at "
+                f"{format_value(rth, 'Ω', 3)}")
         ax.plot([rth], [fi.pmax.value], marker="*", ms=11, color=COLORS["knee"], ls="none",
-                label=f"maximum power at R = Rth: {format_estimate(fi.pmax.value, fi.pmax.u, 'W')}"
-                      f" at {format_value(rth, 'Ω', 3)}")
+                mfc="white" if pmax_extrapolated else COLORS["knee"], label=star)
         if tested.any():
             ax.plot(r_test[tested], (vol * cur)[tested], "o", color=COLORS["point"],
                     label="tested loads (V·I measured)")
         ax.set_xlim(lo, hi)
+        ax.set_ylim(bottom=0.0)
         si_axis(ax, "x", "Ω", "Load resistance")
         si_axis(ax, "y", "W", "Delivered power")
         fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
