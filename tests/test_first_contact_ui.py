@@ -155,3 +155,90 @@ class TestPowerFigure:
         rd = Readings.from_arrays(voltage=1.5 - 0.5 * i, current=i, u_voltage=[0.001] * 6)
         band, labels, _ = self._band_and_labels(power_figure(rd, sagfit.fit(rd), 0))
         assert any(lb.startswith("maximum power at R = Rth:") for lb in labels)
+
+
+@pytest.fixture
+def terminal(monkeypatch):
+    """Pretend stdout is an interactive terminal of a given width."""
+    import sagfit.cli.common as common
+
+    def at(width: int):
+        monkeypatch.setattr(common, "interactive", lambda: True)
+        monkeypatch.setenv("COLUMNS", str(width))
+    return at
+
+
+def _table_lines(text):
+    return [ln for ln in text.splitlines() if "│" in ln or "┃" in ln]
+
+
+class TestNarrowTerminal:
+    def test_fit_table_fits_80_columns_without_cutting_numbers(self, cli, terminal):
+        """Six packs on 80 columns: the empty flags column and the least important ones
+        are left out and named; every number shown is whole (no '…')."""
+        terminal(80)
+        run = cli("fit", SAMPLES / "fleet_packs.csv", "--bench", SAMPLES / "bench.toml",
+                  "--quiet")
+        assert run.code == 0, run.err
+        lines = _table_lines(run.out)
+        assert lines and max(len(ln) for ln in lines) <= 80
+        assert "…" not in run.out.split("Uncertainties")[0]
+        assert "12.7404 ± 0.0017 V" in run.out and "21.479 ± 0.054 mΩ" in run.out
+        assert "left out to fit 80 columns: flags" in run.out
+        assert "--wide" in run.out
+
+    def test_wide_and_piped_show_every_column(self, cli, terminal):
+        src, bench = SAMPLES / "fleet_packs.csv", SAMPLES / "bench.toml"
+        piped = cli("fit", src, "--bench", bench, "--quiet")
+        assert "flags" in piped.out and "Pmax" in piped.out and "left out" not in piped.out
+        terminal(80)
+        wide = cli("fit", src, "--bench", bench, "--quiet", "--wide")
+        assert "flags" in wide.out and "Pmax" in wide.out and "left out" not in wide.out
+
+    def test_accept_decision_never_cut(self, cli, terminal):
+        """'inconclusive (flagged)' wraps at its space rather than losing letters."""
+        terminal(80)
+        run = cli("accept", SAMPLES / "accept_reel.csv", "--spec",
+                  SAMPLES / "accept_spec.toml", "--bench", SAMPLES / "accept_bench.toml",
+                  "--quiet")
+        lines = _table_lines(run.out)
+        assert max(len(ln) for ln in lines) <= 80
+        table = "\n".join(lines)
+        assert "inconclusi…" not in table and "…" not in table
+        assert "inconclusive" in table
+
+    def test_trend_dates_never_cut(self, cli, terminal, tmp_path):
+        """The projected crossing dates stay whole on 80 columns."""
+        import re
+        db = tmp_path / "h.sqlite"
+        files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))
+        assert cli("record", *files, "--db", db, "--bench",
+                   SAMPLES / "fleet_history" / "bench.toml", "--quiet").code == 0
+        wide = cli("trend", "--db", db, "--json")
+        dates = {r["projected_crossing"] for r in json.loads(wide.out)["results"]} - {None}
+        terminal(80)
+        run = cli("trend", "--db", db)
+        lines = _table_lines(run.out)
+        assert max(len(ln) for ln in lines) <= 80
+        assert "…" not in "\n".join(lines)
+        shown = set(re.findall(r"\d{4}-\d{2}-\d{2}", "\n".join(lines)))
+        assert shown and all(len(d) == 10 for d in shown)
+        assert dates and dates <= shown  # every projected date, whole
+
+    @pytest.mark.parametrize("args", [
+        ["plan", "--vth", "12.6V", "--rth", "50mohm", "--max-current", "10A",
+         "--max-power", "25W"],
+        ["simulate-predict"],
+    ])
+    def test_predict_and_plan_fit_80_columns(self, cli, terminal, tmp_path, args):
+        if args == ["simulate-predict"]:
+            res = tmp_path / "fit.json"
+            assert cli("fit", SAMPLES / "fleet_packs.csv", "--bench", SAMPLES / "bench.toml",
+                       "--out", res).code == 0
+            args = ["predict", res, "--load", "1,2.2,open", "--dut", "PK-07"]
+        terminal(80)
+        run = cli(*args)
+        assert run.code == 0, run.err
+        lines = _table_lines(run.out)
+        assert lines and max(len(ln) for ln in lines) <= 80
+        assert "…" not in "\n".join(lines)

@@ -38,6 +38,9 @@ JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document t
 QuietOpt = Annotated[bool, typer.Option(
     "--quiet", "-q", help="Routine run: leave out the safety cautions in the terminal "
                           "(they stay in --json and the reports).")]
+WideOpt = Annotated[bool, typer.Option(
+    "--wide", help="Print every table column at full width, however wide the terminal "
+                   "(piped output always does).")]
 VerboseOpt = Annotated[bool, typer.Option("--verbose", "-v", help="Also list ignored columns "
                                                                   "and the settings used.")]
 

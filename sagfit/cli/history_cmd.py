@@ -11,7 +11,7 @@ import typer
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
                      IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
-                     VoltageNoiseOpt, fit_settings, guarded, interactive, load_readings,
+                     VoltageNoiseOpt, WideOpt, fit_settings, guarded, interactive, load_readings,
                      progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
@@ -269,6 +269,7 @@ def trend_command(
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write a trend report (HTML with figures, JSON, CSV) into this "
                          "folder.")] = None,
+    wide: WideOpt = False,
 ) -> None:
     """Aging trends of internal resistance: change from baseline, rate, projected
     threshold crossing, and each DUT against its group. Exit 1 when a DUT is flagged."""
@@ -318,7 +319,7 @@ def trend_command(
         if json_out:
             write_document(doc)
         else:
-            print_trends(trends, doc)
+            print_trends(trends, doc, wide=wide)
     raise typer.Exit(1 if trends.flagged.any() else 0)
 
 
@@ -361,29 +362,22 @@ def trend_document(trends, db: str, version: str, n_records: int) -> dict:
     }
 
 
-def print_trends(trends, doc) -> None:
+def print_trends(trends, doc, *, wide: bool = False) -> None:
     """The trend table (flagged DUTs first), then the flag messages."""
     import numpy as np
-    from rich.console import Console
-    from rich.table import Table
 
     from ..core.formatting import format_estimate, format_percent, format_value
     from ..core.trend import iso_date
+    from .render import Col, _console, print_table
 
-    import sys
-
-    tty = sys.stdout.isatty()
-    console = Console(highlight=False, width=None if tty else 180, soft_wrap=not tty)
+    console = _console()
     lvl = f"{trends.confidence * 100:g} %"
     s = trends.settings
-    t = Table(title=f"Rth trends as of {s['as_of']}: baseline {s['baseline']}, threshold "
-                    f"{s['threshold']}, horizon {s['horizon_days']:g} d",
-              title_justify="left", show_edge=False)
-    for col, just in (("DUT", "left"), ("n", "right"), ("baseline Rth", "right"),
-                      (f"latest Rth ± U ({lvl})", "right"), ("change", "right"),
-                      ("rate per 30 d", "right"), ("projected crossing", "left"),
-                      ("vs group median", "right"), ("flags", "left")):
-        t.add_column(col, justify=just)
+    cols = [Col("DUT", "left"), Col("n", drop=5), Col("baseline Rth", drop=4),
+            Col(f"latest Rth ± U ({lvl})"), Col("change"), Col("rate per 30 d", drop=3),
+            Col("projected crossing", "left", wrap=True), Col("vs group median", drop=2),
+            Col("flags", "left", wrap=True, drop=1)]
+    rows = []
     flagged = trends.flagged
     order = np.concatenate((np.flatnonzero(flagged), np.flatnonzero(~flagged)))
     U = trends.expanded_latest
@@ -399,14 +393,17 @@ def print_trends(trends, doc) -> None:
             cross = "n/a"
         grp = (f"{trends.excess_pct[i]:+.0f} % of {format_value(trends.group_median[i], 'Ω')}"
                if trends.group_size[i] >= 3 else "group < 3")
-        t.add_row(trends.duts[i], str(int(trends.records[i])),
-                  format_value(trends.baseline_rth[i], "Ω"),
-                  format_estimate(trends.latest_rth[i], U[i], "Ω"),
-                  format_percent(trends.change_pct[i], trends.u_change_pct[i]),
-                  format_estimate(trends.rate[i], trends.u_rate[i], "Ω")
-                  if np.isfinite(trends.rate[i]) else "n/a",
-                  cross, grp, ",".join(trends.codes(i)))
-    console.print(t)
+        rows.append((trends.duts[i], str(int(trends.records[i])),
+                     format_value(trends.baseline_rth[i], "Ω"),
+                     format_estimate(trends.latest_rth[i], U[i], "Ω"),
+                     format_percent(trends.change_pct[i], trends.u_change_pct[i]),
+                     format_estimate(trends.rate[i], trends.u_rate[i], "Ω")
+                     if np.isfinite(trends.rate[i]) else "n/a",
+                     cross, grp, ", ".join(trends.codes(i))))
+    print_table(console, cols, rows, wide=wide,
+                title=f"Rth trends as of {s['as_of']}: baseline {s['baseline']}, threshold "
+                      f"{s['threshold']}, horizon {s['horizon_days']:g} d",
+                title_justify="left")
     if len(trends) > MAX_TABLE_ROWS:
         console.print(f"… {len(trends) - MAX_TABLE_ROWS} more DUTs not shown (all in --json "
                       "or --report)")
