@@ -242,3 +242,26 @@ class TestNarrowTerminal:
         lines = _table_lines(run.out)
         assert lines and max(len(ln) for ln in lines) <= 80
         assert "…" not in "\n".join(lines)
+
+
+class TestOneReportScheme:
+    def test_three_reports_share_names_and_style(self, cli, tmp_path):
+        """fit, accept and trend reports: report.html, results.json/csv, fig-*.png, and the
+        same style sheet inline."""
+        from sagfit.report.style import STYLESHEET
+        cli("fit", SAMPLES / "fleet_packs.csv", "--report", tmp_path / "f", "--quiet")
+        cli("accept", SAMPLES / "accept_reel.csv", "--spec", SAMPLES / "accept_spec.toml",
+            "--report", tmp_path / "a", "--quiet")
+        db = tmp_path / "h.sqlite"
+        files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))[:3]
+        cli("record", *files, "--db", db, "--quiet")
+        cli("trend", "--db", db, "--report", tmp_path / "t")
+        for sub in "fat":
+            names = {p.name for p in (tmp_path / sub).iterdir()}
+            assert {"report.html", "results.json", "results.csv"} <= names, sub
+            pngs = [n for n in names if n.endswith(".png")]
+            assert pngs and all(n.startswith("fig-") for n in pngs), (sub, pngs)
+            page = (tmp_path / sub / "report.html").read_text(encoding="utf-8")
+            assert STYLESHEET in page
+        assert (tmp_path / "t" / "fig-C05-trend.png").exists()
+        assert (tmp_path / "a" / "fig-histogram-vth.png").exists()
