@@ -265,3 +265,38 @@ class TestOneReportScheme:
             assert STYLESHEET in page
         assert (tmp_path / "t" / "fig-C05-trend.png").exists()
         assert (tmp_path / "a" / "fig-histogram-vth.png").exists()
+
+
+class TestBatchFigure:
+    def test_fit_report_has_the_batch_figure_without_flags(self, cli, tmp_path):
+        """Six packs, none flagged: the report still shows every DUT in one figure."""
+        run = cli("fit", SAMPLES / "fleet_packs.csv", "--bench", SAMPLES / "bench.toml",
+                  "--report", tmp_path / "r", "--figures", "none", "--quiet")
+        assert run.code == 0, run.err
+        assert (tmp_path / "r" / "fig-batch-vth-rth.png").exists()
+        page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
+        assert "Vth against Rth of the 6 fitted DUTs" in page
+
+    def test_many_duts_make_a_few_artists(self):
+        """2,000 DUTs: one point set and one bar collection per group, not 2,000 lines."""
+        import numpy as np
+
+        from sagfit.core.fit import fit_lines
+        from sagfit.core.readings import Readings
+        from sagfit.report.plots import batch_figure
+        rng = np.random.default_rng(21)  # invented batch, seeded
+        m, i = 2000, np.array([0.0, 1.0, 2.0, 3.0])
+        vth = rng.normal(5.0, 0.01, m)[:, None]
+        rth = rng.normal(0.05, 0.004, m)[:, None]
+        v = (vth - rth * i + rng.normal(0, 1e-4, (m, 4))).ravel()
+        rd = Readings.from_arrays(voltage=v, current=np.tile(i, m), u_voltage=np.full(4 * m, 1e-4),
+                                  dut=np.repeat([f"B{j}" for j in range(m)], 4))
+        fits = fit_lines(rd)
+        hl = np.arange(m) < 10
+        fig = batch_figure(fits, highlight=hl)
+        ax = fig.axes[0]
+        assert len(ax.lines) <= 2 and len(ax.collections) <= 4
+        pts = sum(len(ln.get_xdata()) for ln in ax.lines)
+        assert pts == m
+        labels = [t.get_text() for t in ax.get_legend().get_texts()]
+        assert any("(1990)" in lb for lb in labels) and any("(10)" in lb for lb in labels)

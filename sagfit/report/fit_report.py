@@ -553,10 +553,21 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
     summary.append(_stats_rows(fits))
 
     hist_html = ""
+    figs = []
+    if n_ok >= 2:
+        # the batch at a glance, flagged or not: every DUT's Vth and Rth with its interval
+        from . import plots
+
+        fig = plots.batch_figure(fits, highlight=warned)
+        name = batch_figure_name("batch", "vth-rth")
+        png_sink((name, plots.png_bytes(fig)))
+        figs.append(_figure(plots.figure_svg(fig, title="Vth against Rth of every DUT"),
+                            f"Vth against Rth of the {n_ok} fitted DUTs, each with its "
+                            f"{fits.confidence * 100:g} % interval on both axes; DUTs with a "
+                            "warning in orange.", name))
     if n_ok >= HISTOGRAM_MIN_DUTS:
         from . import plots
 
-        figs = []
         for key, arr, unit, label in (("vth", fits.vth, "V", "Open-circuit voltage Vth"),
                                       ("rth", fits.rth, "Ω", "Internal resistance Rth")):
             fig = plots.histogram_figure(np.where(fits.ok, arr, np.nan), unit, label,
@@ -565,6 +576,7 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
             png_sink((name, plots.png_bytes(fig)))
             figs.append(_figure(plots.figure_svg(fig, title=f"histogram of {key}"),
                                 f"Distribution of {label} across the {n_ok} fitted DUTs.", name))
+    if figs:
         hist_html = "<div class='figrow'>" + "".join(figs) + "</div>"
 
     sections = [_dut_section(readings, fits, bud, int(i), anchors[int(i)], png_sink, used)

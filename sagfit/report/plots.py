@@ -15,7 +15,8 @@ Shared helpers, for any command that writes figures into a report:
 Figures of one DUT: :func:`fit_figure` (terminal voltage against current with both-axis
 error bars, the fitted line, confidence and prediction bands), :func:`residual_figure`
 (normalised residuals against current and time) and :func:`power_figure` (delivered
-power against load resistance). Across DUTs: :func:`histogram_figure`.
+power against load resistance). Across DUTs: :func:`histogram_figure` and
+:func:`batch_figure` (Vth against Rth of every DUT with its interval).
 """
 
 from __future__ import annotations
@@ -32,7 +33,7 @@ import numpy as np
 from ..core.formatting import format_estimate, format_interval, format_value, si_prefix
 
 __all__ = ["house_style", "si_axis", "figure_svg", "save_png", "new_figure", "COLORS",
-           "fit_figure", "residual_figure", "power_figure", "histogram_figure",
+           "fit_figure", "residual_figure", "power_figure", "histogram_figure", "batch_figure",
            "flagged_lines", "knee_point", "dut_curves"]
 
 # A restrained palette of sagfit's own: dark ink, one steel-blue accent for the model,
@@ -623,4 +624,44 @@ def histogram_figure(values, unit: str, label: str, *, highlight=None,
         ax.grid(axis="x", visible=False)
         si_axis(ax, "x", unit, label)
         ax.set_ylabel("DUTs")
+    return fig
+
+
+#: Above this many DUTs the points and bars of the batch figure are drawn as an image
+#: inside the SVG (a page stays a few hundred kB with 10,000 DUTs).
+RASTER_ABOVE = 500
+
+
+def batch_figure(fits, *, highlight=None, highlight_label: str = "with a warning"):
+    """Every fitted DUT of a batch at once: Vth against Rth, each with its interval
+    (±k·u on both axes, k the DUT's coverage factors for Vth and Rth), the DUTs in ``highlight`` (a boolean
+    mask) in the flag colour.
+
+    Drawn with two ``errorbar`` calls (one collection of bars per group, not one artist
+    per DUT), so 10,000 DUTs cost about what 10 do; above ``RASTER_ABOVE`` DUTs the
+    marks are rasterised inside the vector figure.
+    """
+    ok = np.asarray(fits.ok, bool) & np.isfinite(fits.vth) & np.isfinite(fits.rth)
+    hl = (np.zeros(len(fits), bool) if highlight is None else np.asarray(highlight, bool)) & ok
+    x, y = np.asarray(fits.rth, float), np.asarray(fits.vth, float)
+    ex = np.nan_to_num(np.asarray(fits.k_rth, float) * fits.u_rth)
+    ey = np.nan_to_num(np.asarray(fits.k, float) * fits.u_vth)
+    raster = int(ok.sum()) > RASTER_ABOVE
+    small = int(ok.sum()) > 200
+    with house_style():
+        fig, ax = new_figure(6.4, 4.4)
+        for mask, color, label in ((ok & ~hl, COLORS["model"], "DUTs (bars: interval, ±k·u)"),
+                                   (hl, COLORS["flag"], highlight_label)):
+            if not mask.any():
+                continue
+            ax.errorbar(x[mask], y[mask], xerr=ex[mask], yerr=ey[mask], fmt="o",
+                        ms=2.0 if small else 4.0, color=color, ecolor=color,
+                        elinewidth=0.5 if small else 0.8, alpha=0.6 if small else 1.0,
+                        label=f"{label} ({int(mask.sum())})", rasterized=raster)
+        if not ok.any():
+            ax.text(0.5, 0.5, "no fitted DUTs", transform=ax.transAxes, ha="center")
+        si_axis(ax, "x", "Ω", "Internal resistance Rth")
+        si_axis(ax, "y", "V", "Open-circuit voltage Vth")
+        if ok.any():
+            ax.legend(loc="best")
     return fig
