@@ -213,13 +213,13 @@ class TestOutputs:
                   "--report", rep)
         assert run.code in (0, 1, 3), run.err
         names = sorted(p.name for p in rep.iterdir())
-        assert {"accept.html", "accept.csv", "accept.json", "hist-vth.png",
-                "hist-rth.png"} <= set(names)
-        page = (rep / "accept.html").read_text(encoding="utf-8")
+        assert {"report.html", "results.csv", "results.json", "fig-histogram-vth.png",
+                "fig-histogram-rth.png"} <= set(names)
+        page = (rep / "report.html").read_text(encoding="utf-8")
         assert "<script>alert" not in page and "&lt;script&gt;" in page
         assert "B&amp;C" in page and page.count("<svg") == 4
         assert not any(p.name.endswith(".part") for p in rep.iterdir())
-        assert math.isfinite(json.loads((rep / "accept.json").read_text())["summary"]["yield"])
+        assert math.isfinite(json.loads((rep / "results.json").read_text())["summary"]["yield"])
 
     @pytest.mark.reference("RFC 4180, Common Format and MIME Type for CSV Files (quoting)")
     def test_csv_quoting_round_trips(self):

@@ -78,7 +78,7 @@ class TestFleet:
         codes = {f["code"] for f in doc["results"][0]["flags"]}
         assert codes == {"aging", "outlier-in-group"}
         assert doc["results"][0]["group"]["size"] == 16
-        assert (tmp_path / "r" / "trend_C05.png").exists()
+        assert (tmp_path / "r" / "fig-C05-trend.png").exists()
 
     def test_settings_change_the_verdict(self, cli, fleet_db):
         """A looser threshold and a short horizon leave C12 unflagged for aging."""
@@ -99,9 +99,9 @@ class TestFleet:
         run = cli("trend", "--db", fleet_db, "--report", out)
         assert run.code == 1
         names = {p.name for p in out.iterdir()}
-        assert {"index.html", "trend.json", "trend.csv", "fleet_ST-A.png",
-                "trend_C05.png"} <= names
-        page = (out / "index.html").read_text(encoding="utf-8")
+        assert {"report.html", "results.json", "results.csv", "fig-group-ST-A.png",
+                "fig-C05-trend.png"} <= names
+        page = (out / "report.html").read_text(encoding="utf-8")
         assert "<svg" in page and "C12" in page
 
 
@@ -215,6 +215,6 @@ class TestTrendErrors:
         assert cli("record", src, "--db", db, "--voltage-accuracy", "1mV").code == 0
         out = tmp_path / "rep"
         cli("trend", "--db", db, "--report", out)
-        page = (out / "index.html").read_text(encoding="utf-8")
+        page = (out / "report.html").read_text(encoding="utf-8")
         assert "<script>" not in page and "&lt;script&gt;" in page
         assert all("<" not in p.name and "/" not in p.name for p in out.iterdir())

@@ -13,7 +13,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt, WideOpt,
                      VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, settings_record, show_progress, write_document)
 
@@ -47,6 +47,7 @@ def accept_command(
                          "folder.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
+    wide: WideOpt = False,
     scheduler: Annotated[Optional[str], typer.Option(
         "--scheduler", help="Dask scheduler address (tcp://host:8786) for a data set; "
                             "default: local worker processes.")] = None,
@@ -104,7 +105,7 @@ def accept_command(
             write_document(doc, acc)
         else:
             print_acceptance(acc, fits, readings, settings, verbose=verbose,
-                             warnings=doc["warnings"], quiet=quiet)
+                             warnings=doc["warnings"], quiet=quiet, wide=wide)
     raise typer.Exit(acc.exit_code)
 
 
@@ -166,22 +167,19 @@ def _check_record(c) -> dict:
 
 
 def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False,
-                     warnings=(), quiet: bool = False) -> None:
+                     warnings=(), quiet: bool = False, wide: bool = False) -> None:
     """The terminal view: a table of (at most 40) DUTs, worst first, then the summary."""
-    import sys
-
     import numpy as np
-    from rich.console import Console
 
     from ..core.acceptance import ERROR
     from ..core.safety import fit_cautions
+    from .render import _console
 
-    tty = sys.stdout.isatty()
-    console = Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
+    console = _console()
     if len(acc) == 1 and acc.decision[0] != ERROR:
-        _print_one(console, acc)
+        _print_one(console, acc, wide)
     else:
-        _print_many(console, acc)
+        _print_many(console, acc, wide)
     k = acc.k[np.isfinite(acc.k)]
     kt = f"k = {float(k[0]):.3g}" if k.size and np.all(k == k[0]) else "k per DUT"
     console.print(f"values ± U (expanded uncertainty, {kt}); ✗ outside the rejection limit, "
@@ -225,22 +223,22 @@ def print_acceptance(acc, fits, readings, settings, *, verbose: bool = False,
         console.print(f"caution: {c}", markup=False)
 
 
-def _print_many(console, acc) -> None:
+def _print_many(console, acc, wide: bool = False) -> None:
     """One row per DUT (at most 40, worst first), one column per check."""
     import numpy as np
-    from rich.table import Table
 
     from ..core.acceptance import DECISIONS, ERROR, FAIL, PASS
     from ..report.accept_report import format_check, limits_text
+    from .render import Col, print_table
 
     order = np.argsort(-_rank(acc.decision), kind="stable")
     shown = order[:MAX_TABLE_ROWS]
-    t = Table(show_edge=False, title=f"acceptance: {acc.rule.rule} rule"
-              + (f", {acc.spec.name}" if acc.spec.name else ""), title_justify="left")
-    t.add_column("DUT")
-    t.add_column("decision")
-    for cr in acc.checks:
-        t.add_column(f"{cr.name}\n{limits_text(cr.check)}", justify="right")
+    n_checks = len(acc.checks)
+    # on a narrow terminal the last checks go first; the decision and the DUT stay
+    cols = [Col("DUT", "left"), Col("decision", "left", wrap=True)]
+    cols += [Col(f"{cr.name}\n{limits_text(cr.check)}", drop=n_checks - k)
+             for k, cr in enumerate(acc.checks)]
+    rows = []
     for i in shown:
         cells = [acc.duts[i], DECISIONS[acc.decision[i]]
                  + (" (flagged)" if acc.capped[i] else "")]
@@ -251,21 +249,23 @@ def _print_many(console, acc) -> None:
             mark = {PASS: "", FAIL: " ✗"}.get(int(cr.decision[i]), " ?")
             cells.append(format_check(float(cr.value[i]), float(cr.U[i]), cr.check.unit)
                          + mark)
-        t.add_row(*cells)
-    console.print(t, markup=False)
+        rows.append(cells)
+    print_table(console, cols, rows, wide=wide,
+                title=f"acceptance: {acc.rule.rule} rule"
+                + (f", {acc.spec.name}" if acc.spec.name else ""), title_justify="left")
     if len(acc) > MAX_TABLE_ROWS:
         console.print(f"… {len(acc) - MAX_TABLE_ROWS} more DUTs not shown (worst first; all "
                       "of them are in --out results.csv or --json).", markup=False)
 
 
-def _print_one(console, acc) -> None:
+def _print_one(console, acc, wide: bool = False) -> None:
     """One DUT: every check with its limits, acceptance limits, p_c and statement."""
     import numpy as np
-    from rich.table import Table
 
     from ..core.acceptance import DECISIONS, STATEMENTS
     from ..core.formatting import format_p, format_value
     from ..report.accept_report import format_check, limits_text
+    from .render import Col, print_table
 
     def lim(x, unit):
         if not np.isfinite(x):
@@ -273,12 +273,10 @@ def _print_one(console, acc) -> None:
         return f"{x:.4g} %" if unit == "%" else format_value(float(x), unit, 5)
 
     name = DECISIONS[acc.decision[0]] + (" (flagged)" if acc.capped[0] else "")
-    t = Table(show_edge=False, title=f"{acc.duts[0]}: {name} ({acc.rule.rule} rule"
-              + (f", {acc.spec.name})" if acc.spec.name else ")"), title_justify="left")
-    for col, just in (("check", "left"), ("value ± U", "right"), ("tolerance", "right"),
-                      ("acceptance limits", "right"), ("p_c", "right"),
-                      ("decision", "left"), ("statement", "left")):
-        t.add_column(col, justify=just)
+    cols = [Col("check", "left", wrap=True), Col("value ± U"), Col("tolerance", drop=3),
+            Col("acceptance limits", drop=2), Col("p_c", drop=4),
+            Col("decision", "left", wrap=True), Col("statement", "left", wrap=True, drop=1)]
+    rows = []
     for cr in acc.checks:
         u = cr.check.unit
         lo, hi = cr.accept_lower[0], cr.accept_upper[0]
@@ -290,10 +288,12 @@ def _print_one(console, acc) -> None:
             acc_text = f"≥ {lim(lo, u)}"
         else:
             acc_text = f"{lim(lo, u)} … {lim(hi, u)}"
-        t.add_row(cr.name, format_check(float(cr.value[0]), float(cr.U[0]), u),
-                  limits_text(cr.check), acc_text, format_p(float(cr.p_c[0])),
-                  DECISIONS[int(cr.decision[0])], STATEMENTS[int(cr.statement[0])])
-    console.print(t, markup=False)
+        rows.append((cr.name, format_check(float(cr.value[0]), float(cr.U[0]), u),
+                     limits_text(cr.check), acc_text, format_p(float(cr.p_c[0])),
+                     DECISIONS[int(cr.decision[0])], STATEMENTS[int(cr.statement[0])]))
+    print_table(console, cols, rows, wide=wide,
+                title=f"{acc.duts[0]}: {name} ({acc.rule.rule} rule"
+                + (f", {acc.spec.name})" if acc.spec.name else ")"), title_justify="left")
 
 
 def _rank(decision):

@@ -41,6 +41,9 @@ JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document t
 QuietOpt = Annotated[bool, typer.Option(
     "--quiet", "-q", help="Routine run: leave out the safety cautions in the terminal "
                           "(they stay in --json and the reports).")]
+WideOpt = Annotated[bool, typer.Option(
+    "--wide", help="Print every table column at full width, however wide the terminal "
+                   "(piped output always does).")]
 VerboseOpt = Annotated[bool, typer.Option("--verbose", "-v", help="Also list ignored columns "
                                                                   "and the settings used.")]
 
@@ -147,7 +150,9 @@ def settings_record(settings: dict) -> dict:
 
 
 def load_readings(file: str, settings: dict, dut: str | None = None):
-    """Read a readings file with the settings, optionally keeping some DUTs."""
+    """Read a readings file with the settings, optionally keeping some DUTs.
+
+    ``settings["instruments"]`` is narrowed to the instruments the readings used."""
     from ..core._parallel import gc_paused
     from ..io.readings_csv import read_readings
     from . import settle_long_lived
@@ -159,6 +164,12 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
         if dut:
             names = [d.strip() for d in dut.split(",") if d.strip()]
             readings = readings.only_duts(names)
+        # only the instruments that entered the result are listed (and checked for their
+        # calibration date): no ammeter where I = V/R
+        from ..core.traceability import instruments_used
+
+        settings["instruments"] = instruments_used(settings.get("instruments", ()),
+                                                   readings.current_from, readings.voltage_from)
         # pandas is imported now and the readings live to the end: out of the collector's
         # view before it runs again
         settle_long_lived()

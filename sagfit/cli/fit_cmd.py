@@ -8,7 +8,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt, WideOpt,
                      VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_document)
@@ -35,6 +35,7 @@ def fit_command(
         "--out", help="Also write the results to this .csv or .json file.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
+    wide: WideOpt = False,
     level: Annotated[float, typer.Option(
         "--level", help="Significance level of the non-linearity checks.")] = 0.01,
     current_range: Annotated[Optional[str], typer.Option(
@@ -114,7 +115,7 @@ def fit_command(
         else:
             from .render import print_fits
 
-            print_fits(fits, readings, doc, verbose=verbose, quiet=quiet)
+            print_fits(fits, readings, doc, verbose=verbose, quiet=quiet, wide=wide)
     raise typer.Exit(3 if fits.error.count(None) != len(fits.error) else 0)
 
 

@@ -11,7 +11,7 @@ import typer
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
                      IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
-                     VoltageNoiseOpt, fit_settings, guarded, interactive, load_readings,
+                     VoltageNoiseOpt, WideOpt, fit_settings, guarded, interactive, load_readings,
                      progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
@@ -24,7 +24,9 @@ DbOpt = Annotated[str, typer.Option(
 
 @app.command("record")
 def record_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV of one test date.")],
+    files: Annotated[list[str], typer.Argument(
+        help="Readings CSV of one test date; several files are recorded in one run.",
+        metavar="FILE...")],
     date: Annotated[Optional[str], typer.Option(
         "--date", help="Test date YYYY-MM-DD [default: the time column, else the file's "
                        "'# date:' comment].")] = None,
@@ -43,80 +45,124 @@ def record_command(
     json_out: JsonOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
-    """Fit every DUT in FILE and append the results to the history database."""
-    with guarded(file):
-        from .. import __version__
-        from ..core.analysis import fit
-        from ..io.history import History, check_db_path, dut_group_labels, dut_test_times
-        from ..core.safety import fit_cautions
+    """Fit every DUT in each FILE and append the results to the history database.
 
-        inputs = [file] + ([bench] if bench else [])
+    Every file is read and fitted before anything is recorded (a bad file records
+    nothing); the safety cautions are given once for the whole run."""
+    from ..core.safety import caution_inputs, merged_cautions
+
+    with guarded(files[0]):
+        inputs = list(files) + ([bench] if bench else [])
+        from ..io.history import check_db_path
+
         check_db_path(db, inputs)
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
                                 independent_errors=independent_errors)
-        with progress("reading " + file, show_progress(file, json_out), total=2) as step:
-            readings = load_readings(file, settings, None)
-            labels = dict(zip(readings.duts, dut_group_labels(readings)))
-            if dut:
-                readings = readings.only_duts([d.strip() for d in dut.split(",") if d.strip()])
-            times, date_source = dut_test_times(readings, date)
-            step(f"fitting {readings.n_duts} DUT(s)")
-            fits = fit(readings, confidence=settings["confidence"])
-        require_some_fit(file, fits)
-        from ..core.traceability import traceability_record
+    fitted = []
+    for file in files:
+        with guarded(file):
+            fitted.append(_fit_for_record(file, dict(settings), dut, date, json_out))
+    docs = []
+    with guarded(db):
+        for file, run in zip(files, fitted):
+            docs.append(_record_one(file, run, db, date, force))
+    cautions = merged_cautions([run["caution_inputs"] for run in fitted])
+    failed = any(d["not_fitted"] for d in docs)
+    if len(docs) == 1:
+        doc = {**docs[0], "cautions": cautions}
+    else:
+        from .. import __version__
 
-        trace = traceability_record(settings.get("instruments", ()),
-                                    {**readings.meta, **({"date": date} if date else {})})
-        # stored with the settings of every record, so the history keeps the fact
-        srec = {**settings_record(settings), "calibration_warnings": trace["warnings"]}
-        with History(db, create=True) as hist:
-            outcome = hist.record(
-                fits, test_time=times, file_name=file, sha256=str(readings.meta["sha256"]),
-                group_labels=[labels.get(d, "") for d in fits.duts], settings=srec,
-                date_source=date_source, tool_version=__version__, force=force)
-            total = hist.count()
-        failed = [(d, e) for d, e in zip(fits.duts, fits.error) if e is not None]
-        from ..core.trend import iso_date
-
-        dates = sorted({iso_date(t) for t, e in zip(times, fits.error) if e is None})
-        doc = {"tool": "sagfit", "version": __version__, "database": db,
-               "input": {"file": file, "sha256": readings.meta["sha256"],
-                         "dates": dates, "date_source": date_source},
-               "settings": srec,
-               "recorded": list(outcome.added), "replaced": list(outcome.replaced),
-               "already_recorded": list(outcome.skipped),
-               "not_fitted": [{"dut": d, "error": e} for d, e in failed],
-               "records_in_database": total,
-               "traceability": trace, "warnings": trace["warnings"],
-               "cautions": fit_cautions(fits, readings)}
-        if json_out:
-            write_document(doc)
-        else:
-            _print_record(doc, quiet=quiet)
+        warnings = list(dict.fromkeys(w for d in docs for w in d["warnings"]))
+        doc = {"tool": "sagfit", "version": __version__, "database": db, "runs": docs,
+               "warnings": warnings, "cautions": cautions}
+    if json_out:
+        write_document(doc)
+    else:
+        _print_record(docs, cautions=[] if quiet else cautions)
     raise typer.Exit(3 if failed else 0)
 
 
-def _print_record(doc, quiet: bool = False) -> None:
-    when = ", ".join(doc["input"]["dates"][:3]) + ("…" if len(doc["input"]["dates"]) > 3 else "")
+def _fit_for_record(file: str, settings: dict, dut, date, json_out: bool) -> dict:
+    """Read and fit one file for ``record`` (nothing written yet)."""
+    from ..core.analysis import fit
+    from ..core.safety import caution_inputs
+    from ..io.history import dut_group_labels, dut_test_times
+
+    with progress("reading " + file, show_progress(file, json_out), total=2) as step:
+        readings = load_readings(file, settings, None)
+        labels = dict(zip(readings.duts, dut_group_labels(readings)))
+        if dut:
+            readings = readings.only_duts([d.strip() for d in dut.split(",") if d.strip()])
+        times, date_source = dut_test_times(readings, date)
+        step(f"fitting {readings.n_duts} DUT(s)")
+        fits = fit(readings, confidence=settings["confidence"])
+    require_some_fit(file, fits)
+    return {"settings": settings, "readings": readings, "labels": labels, "times": times,
+            "date_source": date_source, "fits": fits,
+            "caution_inputs": caution_inputs(fits, readings)}
+
+
+def _record_one(file: str, run: dict, db: str, date, force: bool) -> dict:
+    """Append one fitted file to the history; its part of the output document."""
+    from .. import __version__
+    from ..core.traceability import traceability_record
+    from ..core.trend import iso_date
+    from ..io.history import History
+
+    settings, readings, fits, times = (run["settings"], run["readings"], run["fits"],
+                                       run["times"])
+    trace = traceability_record(settings.get("instruments", ()),
+                                {**readings.meta, **({"date": date} if date else {})})
+    # stored with the settings of every record, so the history keeps the fact
+    srec = {**settings_record(settings), "calibration_warnings": trace["warnings"]}
+    with History(db, create=True) as hist:
+        outcome = hist.record(
+            fits, test_time=times, file_name=file, sha256=str(readings.meta["sha256"]),
+            group_labels=[run["labels"].get(d, "") for d in fits.duts], settings=srec,
+            date_source=run["date_source"], tool_version=__version__, force=force)
+        total = hist.count()
+    failed = [(d, e) for d, e in zip(fits.duts, fits.error) if e is not None]
+    dates = sorted({iso_date(t) for t, e in zip(times, fits.error) if e is None})
+    return {"tool": "sagfit", "version": __version__, "database": db,
+            "input": {"file": file, "sha256": readings.meta["sha256"],
+                      "dates": dates, "date_source": run["date_source"]},
+            "settings": srec,
+            "recorded": list(outcome.added), "replaced": list(outcome.replaced),
+            "already_recorded": list(outcome.skipped),
+            "not_fitted": [{"dut": d, "error": e} for d, e in failed],
+            "records_in_database": total,
+            "traceability": trace, "warnings": trace["warnings"]}
+
+
+def _print_record(docs, cautions=()) -> None:
     lines = []
-    n_new = len(doc["recorded"]) + len(doc["replaced"])
-    if n_new:
-        rep = f" ({len(doc['replaced'])} replaced)" if doc["replaced"] else ""
-        lines.append(f"recorded {n_new} DUT(s){rep} from {doc['input']['file']}, tested "
-                     f"{when} ({doc['input']['date_source']}), into {doc['database']} "
-                     f"({doc['records_in_database']} records in all)")
-    if doc["already_recorded"]:
-        lines.append(f"{len(doc['already_recorded'])} DUT(s) of this file were already "
-                     "recorded and were left as they are (--force replaces them)")
-    for item in doc["not_fitted"][:MAX_TABLE_ROWS]:
-        lines.append(f"not recorded {item['dut']}: {item['error']}")
-    if len(doc["not_fitted"]) > MAX_TABLE_ROWS:
-        lines.append(f"… and {len(doc['not_fitted']) - MAX_TABLE_ROWS} more DUTs not fitted")
-    for w in doc.get("warnings", []):
-        lines.append(f"warning: {w}")
-    for c in [] if quiet else doc["cautions"]:
+    seen_warnings = set()
+    for doc in docs:
+        dates = doc["input"]["dates"]
+        when = ", ".join(dates[:3]) + ("…" if len(dates) > 3 else "")
+        n_new = len(doc["recorded"]) + len(doc["replaced"])
+        if n_new:
+            rep = f" ({len(doc['replaced'])} replaced)" if doc["replaced"] else ""
+            lines.append(f"recorded {n_new} DUT(s){rep} from {doc['input']['file']}, tested "
+                         f"{when} ({doc['input']['date_source']}), into {doc['database']} "
+                         f"({doc['records_in_database']} records in all)")
+        if doc["already_recorded"]:
+            lines.append(f"{len(doc['already_recorded'])} DUT(s) of {doc['input']['file']} "
+                         "were already recorded and were left as they are (--force replaces "
+                         "them)")
+        for item in doc["not_fitted"][:MAX_TABLE_ROWS]:
+            lines.append(f"not recorded {item['dut']}: {item['error']}")
+        if len(doc["not_fitted"]) > MAX_TABLE_ROWS:
+            lines.append(f"… and {len(doc['not_fitted']) - MAX_TABLE_ROWS} more DUTs not "
+                         "fitted")
+        for w in doc.get("warnings", []):
+            if w not in seen_warnings:
+                seen_warnings.add(w)
+                lines.append(f"warning: {w}")
+    for c in cautions:
         lines.append(f"caution: {c}")
     write_stdout("\n".join(lines) + "\n")
 
@@ -223,6 +269,7 @@ def trend_command(
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write a trend report (HTML with figures, JSON, CSV) into this "
                          "folder.")] = None,
+    wide: WideOpt = False,
 ) -> None:
     """Aging trends of internal resistance: change from baseline, rate, projected
     threshold crossing, and each DUT against its group. Exit 1 when a DUT is flagged."""
@@ -273,7 +320,7 @@ def trend_command(
         if json_out:
             write_document(doc)
         else:
-            print_trends(trends, doc)
+            print_trends(trends, doc, wide=wide)
     raise typer.Exit(1 if trends.flagged.any() else 0)
 
 
@@ -318,29 +365,22 @@ def trend_document(trends, db: str, version: str, n_records: int) -> dict:
     }
 
 
-def print_trends(trends, doc) -> None:
+def print_trends(trends, doc, *, wide: bool = False) -> None:
     """The trend table (flagged DUTs first), then the flag messages."""
     import numpy as np
-    from rich.console import Console
-    from rich.table import Table
 
     from ..core.formatting import format_estimate, format_percent, format_value
     from ..core.trend import iso_date
+    from .render import Col, _console, print_table
 
-    import sys
-
-    tty = sys.stdout.isatty()
-    console = Console(highlight=False, width=None if tty else 180, soft_wrap=not tty)
+    console = _console()
     lvl = f"{trends.confidence * 100:g} %"
     s = trends.settings
-    t = Table(title=f"Rth trends as of {s['as_of']}: baseline {s['baseline']}, threshold "
-                    f"{s['threshold']}, horizon {s['horizon_days']:g} d",
-              title_justify="left", show_edge=False)
-    for col, just in (("DUT", "left"), ("n", "right"), ("baseline Rth", "right"),
-                      (f"latest Rth ± U ({lvl})", "right"), ("change", "right"),
-                      ("rate per 30 d", "right"), ("projected crossing", "left"),
-                      ("vs group median", "right"), ("flags", "left")):
-        t.add_column(col, justify=just)
+    cols = [Col("DUT", "left"), Col("n", drop=5), Col("baseline Rth", drop=4),
+            Col(f"latest Rth ± U ({lvl})"), Col("change"), Col("rate per 30 d", drop=3),
+            Col("projected crossing", "left", wrap=True), Col("vs group median", drop=2),
+            Col("flags", "left", wrap=True, drop=1)]
+    rows = []
     flagged = trends.flagged
     order = np.concatenate((np.flatnonzero(flagged), np.flatnonzero(~flagged)))
     U = trends.expanded_latest
@@ -356,14 +396,17 @@ def print_trends(trends, doc) -> None:
             cross = "n/a"
         grp = (f"{trends.excess_pct[i]:+.0f} % of {format_value(trends.group_median[i], 'Ω')}"
                if trends.group_size[i] >= 3 else "group < 3")
-        t.add_row(trends.duts[i], str(int(trends.records[i])),
-                  format_value(trends.baseline_rth[i], "Ω"),
-                  format_estimate(trends.latest_rth[i], U[i], "Ω"),
-                  format_percent(trends.change_pct[i], trends.u_change_pct[i]),
-                  format_estimate(trends.rate[i], trends.u_rate[i], "Ω")
-                  if np.isfinite(trends.rate[i]) else "n/a",
-                  cross, grp, ",".join(trends.codes(i)))
-    console.print(t)
+        rows.append((trends.duts[i], str(int(trends.records[i])),
+                     format_value(trends.baseline_rth[i], "Ω"),
+                     format_estimate(trends.latest_rth[i], U[i], "Ω"),
+                     format_percent(trends.change_pct[i], trends.u_change_pct[i]),
+                     format_estimate(trends.rate[i], trends.u_rate[i], "Ω")
+                     if np.isfinite(trends.rate[i]) else "n/a",
+                     cross, grp, ", ".join(trends.codes(i))))
+    print_table(console, cols, rows, wide=wide,
+                title=f"Rth trends as of {s['as_of']}: baseline {s['baseline']}, threshold "
+                      f"{s['threshold']}, horizon {s['horizon_days']:g} d",
+                title_justify="left")
     if len(trends) > MAX_TABLE_ROWS:
         console.print(f"… {len(trends) - MAX_TABLE_ROWS} more DUTs not shown (all in --json "
                       "or --report)")

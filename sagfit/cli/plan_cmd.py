@@ -10,7 +10,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, fit_settings,
+from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, WideOpt, fit_settings,
                      guarded, interactive, progress, write_document, write_stdout)
 
 INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
@@ -341,6 +341,7 @@ def plan_command(
         "--battery/--no-battery", help="The source is a battery (no short-circuit step); "
                                        "--no-battery for a current-limited supply.")] = True,
     json_out: JsonOpt = False,
+    wide: WideOpt = False,
 ) -> None:
     """Propose loads for a load test: expected readings, dissipation, and the predicted
     uncertainties of Vth and Rth, with the usual cautions."""
@@ -386,7 +387,7 @@ def plan_command(
             doc = {"tool": "sagfit", "version": __version__, **result.to_dict()}
             write_document(doc)
         else:
-            _print_plan(result)
+            _print_plan(result, wide)
 
 
 def _series(text: str) -> str:
@@ -422,23 +423,20 @@ def _plan_option_error(exc, v_name: str = "--vth", r_name: str = "--rth"):
     return InputError("plan refused: " + msg)
 
 
-def _print_plan(p) -> None:
-    from rich.table import Table
-
+def _print_plan(p, wide: bool = False) -> None:
     from ..core.formatting import format_value
-    from .render import _console
+    from .render import Col, _console, print_table
 
     console = _console()
-    t = Table(title=f"Load plan for Vth ≈ {format_value(p.vth, 'V', 4)}, "
-                    f"Rth ≈ {format_value(p.rth, 'Ω', 3)}", title_justify="left",
-              show_edge=False)
-    for col in ("step", "load", "current", "voltage", "in resistor", "in source"):
-        t.add_column(col, justify="left" if col in ("step", "load") else "right")
-    for k, (lab, i, v, pw, ps) in enumerate(zip(p.labels, p.current, p.voltage, p.power,
-                                                p.source_power), start=1):
-        t.add_row(str(k), lab, format_value(i, "A", 3), format_value(v, "V", 5),
-                  format_value(pw, "W", 3), format_value(ps, "W", 3))
-    console.print(t)
+    cols = [Col("step", "left", drop=2), Col("load", "left"), Col("current"), Col("voltage"),
+            Col("in resistor"), Col("in source", drop=1)]
+    rows = [(str(k), lab, format_value(i, "A", 3), format_value(v, "V", 5),
+             format_value(pw, "W", 3), format_value(ps, "W", 3))
+            for k, (lab, i, v, pw, ps) in enumerate(zip(p.labels, p.current, p.voltage,
+                                                        p.power, p.source_power), start=1)]
+    print_table(console, cols, rows, wide=wide,
+                title=f"Load plan for Vth ≈ {format_value(p.vth, 'V', 4)}, "
+                      f"Rth ≈ {format_value(p.rth, 'Ω', 3)}", title_justify="left")
     lim = f"limits: current ≤ {format_value(p.current_limit, 'A', 3)}"
     if math.isfinite(p.power_limit):
         lim += f", ≤ {format_value(p.power_limit, 'W', 3)} in each resistor (after derating)"

@@ -7,7 +7,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import ConfidenceOpt, JsonOpt, guarded, write_document
+from .common import ConfidenceOpt, DutOpt, JsonOpt, WideOpt, guarded, write_document
 
 
 @app.command("predict")
@@ -18,10 +18,10 @@ def predict_command(
         "--load", help="Load resistances, comma-separated: 3.3,4k7,470R,1M5,open.")] = None,
     current: Annotated[Optional[str], typer.Option(
         "--current", help="Set load currents, comma-separated: 0.5,1A,250mA.")] = None,
-    dut: Annotated[Optional[str], typer.Option(
-        "--dut", help="Only these DUTs (comma-separated).")] = None,
+    dut: DutOpt = None,
     confidence: ConfidenceOpt = None,
     json_out: JsonOpt = False,
+    wide: WideOpt = False,
 ) -> None:
     """Terminal voltage, current and power of each fitted source at other loads, each
     with a confidence interval for the mean and, for the voltage, a prediction interval
@@ -45,7 +45,7 @@ def predict_command(
                             "predictions": [p.to_dict() for p in preds],
                             "warnings": warnings, "cautions": cautions})
         else:
-            _print(preds, models)
+            _print(preds, models, wide)
             from .render import _console
 
             console = _console()
@@ -128,11 +128,9 @@ def _read_document(path: str):
                          f"({exc.msg}); expected the output of `sagfit fit --json`") from None
 
 
-def _print(preds, models) -> None:
-    from rich.table import Table
-
+def _print(preds, models, wide: bool = False) -> None:
     from ..core.formatting import format_estimate, format_interval, format_value
-    from .render import _console
+    from .render import Col, _console, print_table
 
     console = _console()
     by_dut: dict[str, list] = {}
@@ -140,15 +138,13 @@ def _print(preds, models) -> None:
         by_dut.setdefault(p.dut, []).append(p)
     for dut, rows in by_dut.items():
         lvl = f"{rows[0].level * 100:g} %"
-        t = Table(title=f"{dut}: predicted operating points ({lvl} intervals)",
-                  title_justify="left", show_edge=False)
         same = any(p.voltage.pi_same is not None for p in rows)
-        cols = [("load", "right"), ("current", "right"), ("voltage", "right"),
-                ("V interval (true value)", "right"), ("V interval (one reading)", "right")]
+        cols = [Col("load"), Col("current", drop=3), Col("voltage"),
+                Col("V interval (true value)", drop=1), Col("V interval (one reading)")]
         if same:
-            cols.append(("V interval (same meter)", "right"))
-        for col, just in cols + [("power", "right")]:
-            t.add_column(col, justify=just)
+            cols.append(Col("V interval (same meter)", drop=4))
+        cols.append(Col("power", drop=2))
+        cells = []
         for p in rows:
             load = "open" if p.load_ohm == float("inf") else format_value(p.load_ohm, "Ω")
             if p.given == "current":
@@ -156,15 +152,18 @@ def _print(preds, models) -> None:
             if p.extrapolated:
                 load += " *"
             v = p.voltage
-            cells = [load, format_estimate(p.current.value, p.current.u, "A"),
-                     format_estimate(v.value, v.u, "V"),
-                     format_interval(v.ci[0], v.ci[1], "V", v.u, v.value),
-                     format_interval(v.pi[0], v.pi[1], "V", v.u_pi, v.value) if v.pi else "n/a"]
+            row = [load, format_estimate(p.current.value, p.current.u, "A"),
+                   format_estimate(v.value, v.u, "V"),
+                   format_interval(v.ci[0], v.ci[1], "V", v.u, v.value),
+                   format_interval(v.pi[0], v.pi[1], "V", v.u_pi, v.value) if v.pi else "n/a"]
             if same:
-                cells.append(format_interval(v.pi_same[0], v.pi_same[1], "V", v.u_pi_same,
-                                             v.value) if v.pi_same else "n/a")
-            t.add_row(*cells, format_estimate(p.power.value, p.power.u, "W"))
-        console.print(t)
+                row.append(format_interval(v.pi_same[0], v.pi_same[1], "V", v.u_pi_same,
+                                           v.value) if v.pi_same else "n/a")
+            row.append(format_estimate(p.power.value, p.power.u, "W"))
+            cells.append(tuple(row))
+        print_table(console, cols, cells, wide=wide,
+                    title=f"{dut}: predicted operating points ({lvl} intervals)",
+                    title_justify="left")
     if any(p.extrapolated for p in preds):
         console.print("* beyond the current range of the fitted readings: an extrapolation "
                       "that holds only if the source stays linear there", markup=False)

@@ -10,67 +10,143 @@ MAX_TABLE_ROWS = 40
 
 
 def _console():
+    """The console of the terminal; piped output is not cut to a width."""
     from rich.console import Console
 
-    import sys
+    from .common import interactive
 
-    tty = sys.stdout.isatty()
+    tty = interactive()
     return Console(highlight=False, width=None if tty else 160, soft_wrap=not tty)
 
 
-def print_fits(fits, readings, doc, *, verbose: bool = False, quiet: bool = False) -> None:
+class Col:
+    """A table column: header, justification, whether its cells may wrap at spaces
+    (text) or stay on one line (numbers), and how soon it is left out on a narrow
+    terminal (``drop``: 0 never; the highest goes first)."""
+
+    __slots__ = ("header", "justify", "wrap", "drop")
+
+    def __init__(self, header: str, justify: str = "right", *, wrap: bool = False,
+                 drop: int = 0):
+        self.header, self.justify, self.wrap, self.drop = header, justify, wrap, drop
+
+
+def print_table(console, cols, rows, *, wide: bool = False, **table_kw) -> list[str]:
+    """Print a table whose numbers are never cut.
+
+    On an interactive terminal narrower than the table, columns are left out first (the
+    empty ones, then by ``Col.drop``, highest first) until the table fits; text cells
+    wrap at spaces; a note names what was left out and says that ``--wide`` shows it.
+    With ``wide`` or when the output is piped, every column is printed at its full width.
+    A cell too long for the terminal even then is folded onto the next line, never
+    ellipsised. Returns the headers left out.
+    """
+    from rich.cells import cell_len
     from rich.table import Table
 
+    from .common import interactive
+
+    rows = [[str(c) for c in r] for r in rows]
+
+    def widths(k):
+        """(least, natural) width of column k: a number column needs its longest cell on
+        one line, a text column at least its longest word."""
+        texts = [cols[k].header] + [r[k] for r in rows]
+        lines = [ln for t in texts for ln in t.split("\n")] or [""]
+        natural = max(cell_len(ln) for ln in lines)
+        if not cols[k].wrap:
+            return natural, natural
+        return max(cell_len(w) for ln in lines for w in ln.split() or [""]), natural
+
+    def total(keep, which):
+        # one space of padding either side of each column and one rule between columns
+        return len(keep) - 1 + sum(widths(k)[which] + 2 for k in keep)
+
+    keep = list(range(len(cols)))
+    dropped: list[str] = []
+    fixed: dict[int, int] = {}
+    if wide or not interactive():
+        console.width = max(console.width, total(keep, 1))
+    else:
+        limit = console.width
+        empty = [k for k in keep if cols[k].drop and all(not r[k].strip() for r in rows)]
+        order = empty + sorted((k for k in keep if cols[k].drop and k not in empty),
+                               key=lambda k: (-cols[k].drop, -k))
+        for k in order:
+            if total(keep, 0) <= limit:
+                break
+            keep.remove(k)
+            dropped.append(cols[k].header.split("\n")[0])
+        if total(keep, 1) > limit:
+            # text columns share what is left beyond their longest words, in proportion
+            # to what they would take unwrapped (rich alone may cut a word)
+            spare = max(limit - total(keep, 0), 0)
+            extra = {k: widths(k)[1] - widths(k)[0] for k in keep}
+            grow = sum(extra.values()) or 1
+            fixed = {k: widths(k)[0] + (spare * extra[k]) // grow for k in keep}
+    t = Table(show_edge=False, **table_kw)
+    for k in keep:
+        c = cols[k]
+        t.add_column(c.header, justify=c.justify, no_wrap=not c.wrap, overflow="fold",
+                     width=fixed.get(k))
+    for r in rows:
+        t.add_row(*(r[k] for k in keep))
+    console.print(t, markup=False)
+    if dropped:
+        console.print(f"(left out to fit {console.width} columns: {', '.join(dropped)}; "
+                      "--wide or a wider terminal shows them)", markup=False)
+    return dropped
+
+
+def print_fits(fits, readings, doc, *, verbose: bool = False, quiet: bool = False,
+               wide: bool = False) -> None:
     console = _console()
     lvl = f"{fits.confidence * 100:g} %"
     if len(fits) == 1 and fits.error[0] is None:
         r = fits[0]
-        t = Table(title=f"{r.dut}: Thevenin/Norton equivalent ({r.n} readings, {r.method})",
-                  title_justify="left", show_edge=False)
-        t.add_column("quantity")
-        t.add_column("value ± u", justify="right")
-        t.add_column(f"{lvl} interval", justify="right")
         from ..core.extrapolation import extrapolated_isc_pmax
 
         ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
         xi = " (extrapolated)" if ex_isc[0] else ""
         xp = " (extrapolated)" if ex_pmax[0] else ""
+        rows = []
         for label, est, unit in (("open-circuit voltage Vth", r.vth, "V"),
                                  ("internal resistance Rth", r.rth, "Ω"),
                                  ("short-circuit current Isc" + xi, r.isc, "A"),
                                  ("maximum power Pmax" + xp, r.pmax, "W")):
-            t.add_row(label, format_estimate(est.value, est.u, unit),
-                      format_interval(est.ci_low, est.ci_high, unit, est.u, est.value))
-        console.print(t)
+            rows.append((label, format_estimate(est.value, est.u, unit),
+                         format_interval(est.ci_low, est.ci_high, unit, est.u, est.value)))
+        print_table(console, [Col("quantity", "left", wrap=True), Col("value ± u"),
+                              Col(f"{lvl} interval", drop=1)], rows, wide=wide,
+                    title=f"{r.dut}: Thevenin/Norton equivalent ({r.n} readings, {r.method})",
+                    title_justify="left")
         console.print(_quality(r.chi2, r.dof, r.p_value, r.method, r.corr_vth_rth))
         knee = _knee_line(fits, 0)
         if knee:
             console.print(knee, markup=False)
     else:
-        t = Table(show_edge=False)
-        for col, just in (("DUT", "left"), ("n", "right"), ("Vth", "right"), ("Rth", "right"),
-                          ("Isc", "right"), ("Pmax", "right"), ("method", "left"),
-                          ("χ²/ν", "right"), ("p", "right"), ("flags", "left")):
-            t.add_column(col, justify=just)
+        cols = [Col("DUT", "left"), Col("n", drop=4), Col("Vth"), Col("Rth"),
+                Col("Isc", drop=6), Col("Pmax", drop=7), Col("method", "left", drop=5),
+                Col("χ²/ν", drop=1), Col("p", drop=2), Col("flags", "left", wrap=True, drop=3)]
+        rows = []
         shown = range(min(len(fits), MAX_TABLE_ROWS))
         for i in shown:
             if fits.error[i] is not None:
-                t.add_row(fits.duts[i], str(fits.n[i]), "error", "", "", "", "", "", "",
-                          "")
+                rows.append([fits.duts[i], str(fits.n[i]), "error"] + [""] * 7)
                 continue
             red = fits.chi2[i] / fits.dof[i] if fits.dof[i] > 0 else np.nan
             type_a = str(fits.method[i]) == "ols"  # residual SS, not χ²: no χ²/ν nor p
-            t.add_row(fits.duts[i], str(fits.n[i]),
-                      format_estimate(fits.vth[i], fits.u_vth[i], "V"),
-                      format_estimate(fits.rth[i], fits.u_rth[i], "Ω"),
-                      format_estimate(fits.isc[i], fits.u_isc[i], "A"),
-                      format_estimate(fits.pmax[i], fits.u_pmax[i], "W"),
-                      str(fits.method[i]),
-                      "—" if type_a else f"{red:.2f}" if np.isfinite(red) else "",
-                      "—" if type_a else
-                      format_p(fits.p_value[i]) if np.isfinite(fits.p_value[i]) else "",
-                      ",".join(f.code for f in fits.flags[i] if f.severity == "warning"))
-        console.print(t)
+            rows.append([fits.duts[i], str(fits.n[i]),
+                         format_estimate(fits.vth[i], fits.u_vth[i], "V"),
+                         format_estimate(fits.rth[i], fits.u_rth[i], "Ω"),
+                         format_estimate(fits.isc[i], fits.u_isc[i], "A"),
+                         format_estimate(fits.pmax[i], fits.u_pmax[i], "W"),
+                         str(fits.method[i]),
+                         "—" if type_a else f"{red:.2f}" if np.isfinite(red) else "",
+                         "—" if type_a else
+                         format_p(fits.p_value[i]) if np.isfinite(fits.p_value[i]) else "",
+                         ", ".join(f.code for f in fits.flags[i] if f.severity == "warning")])
+        print_table(console, cols, rows, wide=wide)
         if any(str(fits.method[i]) == "ols" for i in shown if fits.error[i] is None):
             console.print("χ²/ν and p — : Type A fit (no meter uncertainty stated), judged by "
                           "its scatter alone; χ²/ν and p do not apply (residual SS in --json).",

@@ -13,7 +13,7 @@ import numpy as np
 
 from .formatting import format_value
 
-__all__ = ["cautions", "fit_cautions", "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
+__all__ = ["cautions", "fit_cautions", "caution_inputs", "merged_cautions", "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
            "HIGH_CURRENT_A", "HOT_RESISTOR_W"]
 
 HAZARDOUS_V = 60.0
@@ -24,8 +24,14 @@ DEFERRAL = ("These reminders are not a safety assessment: follow local electrica
 
 
 def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
-             always: bool = False) -> list[str]:
+             isc_extrapolated=None, tested_current=None, always: bool = False) -> list[str]:
     """Cautions for a set of results (arrays; NaN ignored); the deferral line last.
+
+    ``isc`` holds prospective short-circuit currents the readings reached or came near
+    (or a knee's limit); ``isc_extrapolated`` those read off the line far beyond the tested
+    currents (``tested_current``, the highest current reached): a regulator or a
+    current-limited supply is not shown by its readings to deliver them, so the caution
+    says the figure is an extrapolation rather than warning of what a short does.
 
     Returns an empty list when nothing applies, unless ``always``.
     """
@@ -48,6 +54,17 @@ def cautions(*, vth=None, isc=None, reading_power=None, voltages=None,
         out.append(f"High prospective short-circuit current: about {format_value(i, 'A', 2)}. "
                    "Compute Isc, never measure it by shorting the terminals; a short can "
                    "melt tools and start fires. Fuse the test leads.")
+    ix = mx(isc_extrapolated)
+    if ix > HIGH_CURRENT_A and not i > HIGH_CURRENT_A:
+        top = mx(tested_current)
+        reached = (f" (tested up to {format_value(top, 'A', 2)})"
+                   if np.isfinite(top) else "")
+        out.append(f"High prospective short-circuit current (extrapolated): the fitted "
+                   f"line gives about {format_value(ix, 'A', 2)} at a short, far beyond the "
+                   f"tested currents{reached}. A source that limits its current delivers "
+                   "less; one that does not (a cell, a pack, a capacitor bank) may deliver "
+                   "it. Compute Isc, never measure it by shorting the terminals; fuse the "
+                   "test leads.")
     p = mx(reading_power)
     if p > HOT_RESISTOR_W:
         out.append(f"Hot load resistors: up to {format_value(p, 'W', 2)} dissipated in a load. "
@@ -72,13 +89,42 @@ def prospective_isc(fits) -> np.ndarray:
     return np.where(limited & np.isfinite(knee_i), np.abs(knee_i), fits.isc)
 
 
-def fit_cautions(fits, readings, *, always: bool = False) -> list[str]:
-    """The cautions for fitted readings: voltages, prospective Isc, load dissipation."""
+def caution_inputs(fits, readings) -> dict:
+    """The arrays :func:`cautions` takes for fitted readings (keyword arguments).
+
+    A DUT whose Isc lies far beyond its tested currents (``extrapolated_isc_pmax``) and
+    showed no knee goes to ``isc_extrapolated`` (the "extrapolated" wording); only readings
+    taken with a load resistor count towards hot resistors.
+    """
+    from .extrapolation import extrapolated_isc_pmax, max_tested_current
+
     v = np.asarray(readings.voltage)
     # Only readings taken with a load resistor heat one: electronic-load (I, V) readings
     # have no resistor (their load is NaN), so no hot-resistor caution comes from them.
     r = np.asarray(readings.load, dtype=float)
     in_resistor = np.isfinite(r) & (r > 0)
     power = np.where(in_resistor, v * np.asarray(readings.current), np.nan)
-    return cautions(vth=fits.vth, isc=prospective_isc(fits),
-                    reading_power=power, voltages=v, always=always)
+    isc = prospective_isc(fits)
+    far = np.zeros(len(fits), bool)
+    tested = np.array([])
+    if readings.n_duts == len(fits):
+        far = extrapolated_isc_pmax(fits, readings)[0] & (isc == np.abs(fits.isc))
+        tested = max_tested_current(readings, len(fits))[far]
+    return {"vth": np.asarray(fits.vth, float), "isc": np.where(far, np.nan, isc),
+            "isc_extrapolated": np.where(far, isc, np.nan), "tested_current": tested,
+            "reading_power": power, "voltages": v}
+
+
+def fit_cautions(fits, readings, *, always: bool = False) -> list[str]:
+    """The cautions for fitted readings: voltages, prospective Isc, load dissipation."""
+    return cautions(**caution_inputs(fits, readings), always=always)
+
+
+def merged_cautions(inputs: list[dict], *, always: bool = False) -> list[str]:
+    """One set of cautions for several runs (a list of :func:`caution_inputs` results),
+    as if their DUTs had been in one file: each caution once, with the worst figure."""
+    if not inputs:
+        return cautions(always=always)
+    keys = inputs[0].keys()
+    return cautions(**{k: np.concatenate([np.ravel(d[k]) for d in inputs]) for k in keys},
+                    always=always)

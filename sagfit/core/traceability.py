@@ -18,7 +18,7 @@ import datetime as _dt
 from typing import Iterable, Mapping
 
 __all__ = ["date_of_test", "instrument_rows", "calibration_warnings", "traceability_record",
-           "DUE_SOON_DAYS"]
+           "instruments_used", "DUE_SOON_DAYS"]
 
 DUE_SOON_DAYS = 30  # "due soon" note: sagfit's own choice, a month's notice
 _ROLE_WORDS = {"voltage": "voltmeter", "current": "ammeter", "load": "load resistors"}
@@ -68,6 +68,22 @@ def date_of_test(meta: Mapping | None, today: _dt.date | None = None) -> tuple[_
     if raw:
         return fallback, f"today (the file's date {str(raw)[:40]!r} is not an ISO date)"
     return fallback, "today (the file has no '# date:' line)"
+
+
+def instruments_used(instruments: Iterable, current_from: str, voltage_from: str) -> tuple:
+    """The instruments whose readings entered the result.
+
+    ``current_from`` and ``voltage_from`` are ``Readings.current_from`` and
+    ``Readings.voltage_from`` (``"measured"`` or ``"load"``). An ammeter named in a bench
+    profile did not enter a fit of (R, V) readings, where I = V/R; a voltmeter did not enter
+    one of (R, I) readings; the load resistors entered only where a quantity was computed
+    from them (with both V and I measured, R is only cross-checked). Instruments of any
+    other role are kept.
+    """
+    used = {"current": current_from == "measured", "voltage": voltage_from == "measured",
+            "load": "load" in (current_from, voltage_from)}
+    return tuple(inst for inst in instruments or ()
+                 if used.get(str(_get(inst, "role") or ""), True))
 
 
 def instrument_rows(instruments: Iterable, on: _dt.date) -> list[dict]:

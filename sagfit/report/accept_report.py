@@ -2,9 +2,9 @@
 
 Edge module (pandas for the CSV; matplotlib, through :mod:`sagfit.plots`, for the
 figures — both imported inside the functions). The report folder holds
-``accept.html`` (self-contained: inline SVG figures, escaped text), ``accept.csv``,
-``accept.json`` and one PNG histogram per check, written atomically and only inside
-the folder.
+``report.html`` (self-contained: inline SVG figures, escaped text), ``results.csv``,
+``results.json`` and one PNG histogram per check (``fig-histogram-<check>.png``; the
+names of :mod:`sagfit.report.style`), written atomically and only inside the folder.
 """
 
 from __future__ import annotations
@@ -16,6 +16,7 @@ import numpy as np
 
 from ..core.acceptance import DECISIONS, ERROR, FAIL, INCONCLUSIVE, PASS, STATEMENTS
 from ..core.formatting import format_estimate, format_percent, format_value
+from .style import REPORT_HTML, RESULTS_CSV, RESULTS_JSON, STYLESHEET, batch_figure_name
 
 __all__ = ["acceptance_table", "acceptance_csv", "limits_text", "format_check",
            "write_accept_report"]
@@ -187,18 +188,7 @@ def histogram(acc, j: int):
 
 
 # ---------------------------------------------------------------------- the report
-_CSS = """
-body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;color:#222831;margin:2em;
-max-width:70em}
-h1{font-size:1.4em}h2{font-size:1.1em;margin-top:1.6em}
-table{border-collapse:collapse;font-size:0.9em}
-th,td{padding:0.25em 0.7em;border-bottom:1px solid #e5e7eb;text-align:right}
-th:first-child,td:first-child{text-align:left}
-.pass{color:#3d7a57}.fail{color:#b3402f;font-weight:600}.inconclusive{color:#8a6412}
-.error{color:#6b7280}.note{color:#6b7280;font-size:0.9em}
-.caution{border-left:4px solid #c2410c;padding:0.3em 0.8em;background:#fff7ed}
-figure{display:inline-block;margin:0.5em 1em 0.5em 0}svg{max-width:100%;height:auto}
-"""
+
 
 
 def _e(x) -> str:
@@ -209,21 +199,21 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
     """Write the acceptance report into ``folder`` (created if needed)."""
     from pathlib import Path
 
-    from ..io.outputs import atomic_write, prepare_folder, safe_filename
+    from ..io.outputs import atomic_write, prepare_folder
     from .plots import figure_svg, save_png
 
     root = prepare_folder(folder, inputs)
     import json
 
-    atomic_write(root / "accept.json", json.dumps(doc, indent=2, ensure_ascii=False,
+    atomic_write(root / RESULTS_JSON, json.dumps(doc, indent=2, ensure_ascii=False,
                                                   allow_nan=False) + "\n",
                  inputs=inputs, within=root, option="--report")
-    atomic_write(root / "accept.csv", acceptance_csv(acc), inputs=inputs, within=root,
+    atomic_write(root / RESULTS_CSV, acceptance_csv(acc), inputs=inputs, within=root,
                  option="--report")
     figures = []
     for j, cr in enumerate(acc.checks):
         fig = histogram(acc, j)
-        name = f"hist-{safe_filename(cr.name)}.png"
+        name = batch_figure_name("histogram", cr.name)
         save_png(fig, root / name, root, inputs=inputs)
         figures.append((cr, figure_svg(fig, title=f"Histogram of {cr.name}"), name))
     s = doc["summary"]
@@ -232,7 +222,7 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
     parts = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
              "<meta name='viewport' content='width=device-width,initial-scale=1'>",
              f"<title>Acceptance report: {_e(spec.name or Path(spec.source).name)}</title>",
-             f"<style>{_CSS}</style></head><body>",
+             f"<style>{STYLESHEET}</style></head><body>",
              f"<h1>Acceptance report: {_e(spec.name or Path(spec.source).name)}</h1>",
              "<p>", f"Readings: {_e(readings.source)} (sha256 "
              f"{_e(str(readings.meta.get('sha256', ''))[:16])}…), {len(readings)} readings, "
@@ -248,7 +238,7 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
         parts.append(f"<p class='caution'>warning: {_e(w)}</p>")
     for c in doc.get("cautions", []):
         parts.append(f"<p class='caution'>{_e(c)}</p>")
-    parts.append("<h2>Summary</h2><table><tr><th>decision</th><th>DUTs</th></tr>")
+    parts.append("<h2>Summary</h2><table class='grid'><tr><th>decision</th><th>DUTs</th></tr>")
     for name in DECISIONS:
         parts.append(f"<tr><td class='{name}'>{name}</td><td>{s[name]}</td></tr>")
     parts.append(f"<tr><td>total</td><td>{s['total']}</td></tr></table>")
@@ -256,7 +246,7 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
         parts.append(f"<p>Yield (passed / tested): {100 * s['yield']:.1f} %."
                      + (f" {s['capped_by_flags']} DUT(s) inside the limits but flagged are "
                         "inconclusive." if s["capped_by_flags"] else "") + "</p>")
-    parts.append("<h2>Limits</h2><table><tr><th>check</th><th>tolerance</th>"
+    parts.append("<h2>Limits</h2><table class='grid'><tr><th>check</th><th>tolerance</th>"
                  "<th>fail</th><th>inconclusive</th><th>extrapolated</th><th>note</th></tr>")
     ranked = {x["quantity"]: x for x in s["failed_most"]}
     extra = s.get("extrapolated", {})
@@ -278,10 +268,10 @@ def write_accept_report(folder, acc, fits, readings, doc, *, inputs=()) -> None:
                      f"({_e(name)})</figcaption></figure>")
     parts.append(_units_table(acc))
     parts.append("<p class='note'>Values are shown ± U, the expanded uncertainty used for "
-                 "the decision. Full precision, SI units: accept.csv and accept.json. "
-                 "Statements per ILAC-G8:09/2019 §4.2.3 are in accept.json.</p>")
+                 "the decision. Full precision, SI units: results.csv and results.json. "
+                 "Statements per ILAC-G8:09/2019 §4.2.3 are in results.json.</p>")
     parts.append("</body></html>\n")
-    atomic_write(root / "accept.html", "".join(parts), inputs=inputs, within=root,
+    atomic_write(root / REPORT_HTML, "".join(parts), inputs=inputs, within=root,
                  option="--report")
 
 
@@ -330,7 +320,7 @@ def _units_table(acc) -> str:
     rank = np.array([0, 1, 3, 2])[acc.decision]
     order = np.argsort(-rank, kind="stable")[:MAX_REPORT_ROWS]
     head = "".join(f"<th>{_e(cr.name)}</th>" for cr in acc.checks)
-    rows = [f"<h2>Units</h2><table><tr><th>DUT</th><th>decision</th>{head}</tr>"]
+    rows = [f"<h2>Units</h2><table class='grid'><tr><th>DUT</th><th>decision</th>{head}</tr>"]
     for i in order:
         name = DECISIONS[acc.decision[i]]
         cells = []
@@ -352,5 +342,5 @@ def _units_table(acc) -> str:
     rows.append("</table>")
     if len(acc) > MAX_REPORT_ROWS:
         rows.append(f"<p class='note'>{len(acc) - MAX_REPORT_ROWS} more DUTs (worst first "
-                    "above) are in accept.csv.</p>")
+                    "above) are in results.csv.</p>")
     return "".join(rows)

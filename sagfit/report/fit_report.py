@@ -27,9 +27,11 @@ import numpy as np
 from ..core.budget import GROUP_LABELS, budget_arrays
 from ..core.errors import OptionError
 from ..core.formatting import format_estimate, format_interval, format_p, format_value
-from ..io.outputs import atomic_write, document_pieces, prepare_folder, safe_filename
+from ..io.outputs import atomic_write, document_pieces, prepare_folder
 from ..core.safety import DEFERRAL, HAZARDOUS_V, HIGH_CURRENT_A, HOT_RESISTOR_W, fit_cautions
 from ..core.traceability import calibration_warnings, date_of_test, instrument_rows
+from .style import STYLESHEET
+from .style import REPORT_HTML, RESULTS_CSV, RESULTS_JSON, batch_figure_name, dut_figure_name
 
 __all__ = ["write_report", "build_html", "MAX_TABLE_ROWS", "MAX_DUT_SECTIONS",
            "SMALL_FILE_DUTS", "FIGURE_CHOICES"]
@@ -121,13 +123,13 @@ def write_report(folder, fits, readings, doc: Mapping, settings: Mapping,
     for name, data in written:
         atomic_write(root / name, data, inputs=inputs, within=root, option="--report")
     # the same text as `sagfit fit --json`
-    atomic_write(root / "results.json", document_pieces(doc, fits),
+    atomic_write(root / RESULTS_JSON, document_pieces(doc, fits),
                  inputs=inputs, within=root, option="--report")
     from ..io import readings_csv as io_csv
 
-    atomic_write(root / "results.csv", io_csv.fits_csv(fits), inputs=inputs, within=root,
+    atomic_write(root / RESULTS_CSV, io_csv.fits_csv(fits), inputs=inputs, within=root,
                  option="--report")
-    return atomic_write(root / "report.html", page, inputs=inputs, within=root,
+    return atomic_write(root / REPORT_HTML, page, inputs=inputs, within=root,
                         option="--report")
 
 
@@ -158,52 +160,7 @@ def _section_duts(fits, figures: str) -> tuple[np.ndarray, int, str]:
 
 
 # ----------------------------------------------------------------------------- html
-_CSS = """
-:root { --ink:#222831; --muted:#5b6472; --rule:#d9dde3; --accent:#1d5f8a; --warn:#a23b0b;
-        --soft:#f4f6f8; }
-* { box-sizing: border-box; }
-body { font: 10.5pt/1.45 "DejaVu Sans", "Segoe UI", Helvetica, Arial, sans-serif;
-       color: var(--ink); margin: 0 auto; max-width: 60rem; padding: 1.5rem; }
-h1 { font-size: 1.45rem; margin: 0 0 .2rem; }
-h2 { font-size: 1.15rem; margin: 2rem 0 .6rem; border-bottom: 1px solid var(--rule);
-     padding-bottom: .2rem; }
-h3 { font-size: 1rem; margin: 1.4rem 0 .4rem; }
-p.sub { color: var(--muted); margin: 0 0 1rem; }
-table { border-collapse: collapse; margin: .4rem 0 1rem; font-size: .9rem; }
-th, td { text-align: left; padding: .2rem .6rem .2rem 0; vertical-align: top;
-         border-bottom: 1px solid var(--rule); }
-th { font-weight: 600; color: var(--muted); }
-td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-table.kv th { width: 13rem; }
-code, .hash { font-family: "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: .85rem;
-              word-break: break-all; }
-.box { border: 1px solid var(--rule); border-left: 4px solid var(--warn); padding: .5rem 1rem;
-       margin: 1rem 0; background: var(--soft); }
-.box h2 { border: 0; margin: .2rem 0 .4rem; font-size: 1rem; }
-.box ul { margin: .2rem 0 .4rem 1.1rem; padding: 0; }
-.warn { color: var(--warn); font-weight: 600; }
-.muted { color: var(--muted); }
-ul.flags { margin: .2rem 0 .8rem 1.1rem; padding: 0; }
-ul.flags li.warning { color: var(--warn); }
-figure { margin: .6rem 0 1.2rem; break-inside: avoid; page-break-inside: avoid; }
-figure svg { max-width: 100%; height: auto; display: block; }
-figcaption { font-size: .85rem; color: var(--muted); margin-top: .2rem; }
-.figrow { display: flex; flex-wrap: wrap; gap: 1rem; }
-.figrow figure { flex: 1 1 22rem; }
-section.dut { break-inside: auto; }
-tr.hl td { background: #fdf0e8; }
-@media print {
-  body { max-width: none; padding: 0; font-size: 9.5pt; }
-  a { color: inherit; text-decoration: none; }
-  h2 { break-after: avoid; page-break-after: avoid; }
-  section.dut { break-before: page; page-break-before: always; }
-  table { break-inside: auto; }
-  tr { break-inside: avoid; page-break-inside: avoid; }
-  .box { background: none; }
-  figure svg { width: 12cm; height: auto; max-width: 100%; }
-}
-@page { margin: 15mm 14mm; }
-"""
+
 
 
 def _kv(rows: Iterable[tuple[str, str]]) -> str:
@@ -495,7 +452,6 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
     from . import plots
 
     fi = fits[i]
-    stem = "fig-" + safe_filename(fits.duts[i])
     parts = [f'<section class="dut" id="{anchor}"><h3>DUT {_e(fi.dut)}</h3>']
     if fi.error:
         parts.append(f'<p class="warn">Not fitted: {_e(fi.error)}</p>')
@@ -543,7 +499,7 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
             parts.append(f'<p class="muted">No {kind} figure: Rth is not positive, so there is '
                          "no maximum-power point.</p>")
             continue
-        name = f"{stem}-{kind}.png"
+        name = dut_figure_name(fits.duts[i], kind)
         png_sink((name, plots.png_bytes(fig)))
         fig.set_layout_engine("none")  # laid out once for the PNG; the SVG reuses it
         parts.append(_figure(plots.figure_svg(fig, title=f"{fi.dut}: {kind}"), caption, name))
@@ -597,18 +553,30 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
     summary.append(_stats_rows(fits))
 
     hist_html = ""
+    figs = []
+    if n_ok >= 2:
+        # the batch at a glance, flagged or not: every DUT's Vth and Rth with its interval
+        from . import plots
+
+        fig = plots.batch_figure(fits, highlight=warned)
+        name = batch_figure_name("batch", "vth-rth")
+        png_sink((name, plots.png_bytes(fig)))
+        figs.append(_figure(plots.figure_svg(fig, title="Vth against Rth of every DUT"),
+                            f"Vth against Rth of the {n_ok} fitted DUTs, each with its "
+                            f"{fits.confidence * 100:g} % interval on both axes; DUTs with a "
+                            "warning in orange.", name))
     if n_ok >= HISTOGRAM_MIN_DUTS:
         from . import plots
 
-        figs = []
         for key, arr, unit, label in (("vth", fits.vth, "V", "Open-circuit voltage Vth"),
                                       ("rth", fits.rth, "Ω", "Internal resistance Rth")):
             fig = plots.histogram_figure(np.where(fits.ok, arr, np.nan), unit, label,
                                          highlight=warned, highlight_label="with a warning")
-            name = f"fig-histogram-{key}.png"
+            name = batch_figure_name("histogram", key)
             png_sink((name, plots.png_bytes(fig)))
             figs.append(_figure(plots.figure_svg(fig, title=f"histogram of {key}"),
                                 f"Distribution of {label} across the {n_ok} fitted DUTs.", name))
+    if figs:
         hist_html = "<div class='figrow'>" + "".join(figs) + "</div>"
 
     sections = [_dut_section(readings, fits, bud, int(i), anchors[int(i)], png_sink, used)
@@ -636,7 +604,7 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <meta http-equiv="Content-Security-Policy" content="default-src 'none'; style-src 'unsafe-inline'">
 <title>sagfit report: {_e(Path(str(src)).name)}</title>
-<style>{_CSS}</style>
+<style>{STYLESHEET}</style>
 </head>
 <body>
 <header>

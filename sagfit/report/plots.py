@@ -15,7 +15,8 @@ Shared helpers, for any command that writes figures into a report:
 Figures of one DUT: :func:`fit_figure` (terminal voltage against current with both-axis
 error bars, the fitted line, confidence and prediction bands), :func:`residual_figure`
 (normalised residuals against current and time) and :func:`power_figure` (delivered
-power against load resistance). Across DUTs: :func:`histogram_figure`.
+power against load resistance). Across DUTs: :func:`histogram_figure` and
+:func:`batch_figure` (Vth against Rth of every DUT with its interval).
 """
 
 from __future__ import annotations
@@ -32,7 +33,7 @@ import numpy as np
 from ..core.formatting import format_estimate, format_interval, format_value, si_prefix
 
 __all__ = ["house_style", "si_axis", "figure_svg", "save_png", "new_figure", "COLORS",
-           "fit_figure", "residual_figure", "power_figure", "histogram_figure",
+           "fit_figure", "residual_figure", "power_figure", "histogram_figure", "batch_figure",
            "flagged_lines", "knee_point", "dut_curves"]
 
 # A restrained palette of sagfit's own: dark ink, one steel-blue accent for the model,
@@ -527,7 +528,14 @@ def residual_figure(readings, fits, i: int, *, used=None):
 def power_figure(readings, fits, i: int):
     """Power delivered into a load R, P = Vth²·R/(Rth + R)², against R (log axis), with
     its k·u band (delta method), the maximum-power point R = Rth and the tested loads.
+
+    Power is never negative, so the band stops at zero. Loads below the smallest one
+    tested draw more current than the sweep reached: there the curve is dashed, the
+    region shaded and labelled "extrapolated", and so is the maximum-power point when the
+    sweep did not come near it (``sagfit.core.extrapolation``).
     Returns None when Rth ≤ 0 or the DUT was not fitted (no maximum-power point)."""
+    from ..core.extrapolation import REACHED
+
     vth, rth = float(fits.vth[i]), float(fits.rth[i])
     if fits.error[i] is not None or not (math.isfinite(vth) and math.isfinite(rth)) or rth <= 0:
         return None
@@ -549,19 +557,33 @@ def power_figure(readings, fits, i: int):
            + 2.0 * dv * dr * fits.cov_vr[i])
     band = float(fits.k[i]) * np.sqrt(np.maximum(var, 0.0))
     fi = fits[i]
+    # the smallest load the sweep reached; below it the curve is read off the fitted line
+    r_min = float(np.min(r_test[tested])) if tested.any() else math.inf
+    i_max = float(np.max(np.abs(cur))) if cur.size else 0.0
+    pmax_extrapolated = not i_max >= REACHED * abs(float(fits.isc[i])) / 2
+    beyond = grid < r_min
     with house_style():
         fig, ax = new_figure(6.4, 4.2)
         ax.set_xscale("log")
-        ax.fill_between(grid, p - band, p + band, color=COLORS["band_ci"], alpha=0.25, lw=0,
-                        label=f"confidence band ({_level(fits)})")
-        ax.plot(grid, p, color=COLORS["model"], label="P = Vth²·R/(Rth + R)²")
+        ax.fill_between(grid, np.maximum(p - band, 0.0), p + band, color=COLORS["band_ci"],
+                        alpha=0.25, lw=0, label=f"confidence band ({_level(fits)})")
+        if beyond.any():
+            ax.axvspan(lo, min(r_min, hi), color=COLORS["grid"], alpha=0.6, lw=0,
+                       label="extrapolated: loads below the smallest tested")
+            cut = int(np.count_nonzero(beyond))
+            ax.plot(grid[:cut + 1], p[:cut + 1], color=COLORS["model"], ls="--")
+        ax.plot(grid[beyond.sum():], p[beyond.sum():], color=COLORS["model"],
+                label="P = Vth²·R/(Rth + R)²")
+        star = (f"maximum power at R = Rth{' (extrapolated)' if pmax_extrapolated else ''}:\n"
+                f"{format_estimate(fi.pmax.value, fi.pmax.u, 'W')} at "
+                f"{format_value(rth, 'Ω', 3)}")
         ax.plot([rth], [fi.pmax.value], marker="*", ms=11, color=COLORS["knee"], ls="none",
-                label=f"maximum power at R = Rth: {format_estimate(fi.pmax.value, fi.pmax.u, 'W')}"
-                      f" at {format_value(rth, 'Ω', 3)}")
+                mfc="white" if pmax_extrapolated else COLORS["knee"], label=star)
         if tested.any():
             ax.plot(r_test[tested], (vol * cur)[tested], "o", color=COLORS["point"],
                     label="tested loads (V·I measured)")
         ax.set_xlim(lo, hi)
+        ax.set_ylim(bottom=0.0)
         si_axis(ax, "x", "Ω", "Load resistance")
         si_axis(ax, "y", "W", "Delivered power")
         fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
@@ -602,4 +624,44 @@ def histogram_figure(values, unit: str, label: str, *, highlight=None,
         ax.grid(axis="x", visible=False)
         si_axis(ax, "x", unit, label)
         ax.set_ylabel("DUTs")
+    return fig
+
+
+#: Above this many DUTs the points and bars of the batch figure are drawn as an image
+#: inside the SVG (a page stays a few hundred kB with 10,000 DUTs).
+RASTER_ABOVE = 500
+
+
+def batch_figure(fits, *, highlight=None, highlight_label: str = "with a warning"):
+    """Every fitted DUT of a batch at once: Vth against Rth, each with its interval
+    (±k·u on both axes, k the DUT's coverage factors for Vth and Rth), the DUTs in ``highlight`` (a boolean
+    mask) in the flag colour.
+
+    Drawn with two ``errorbar`` calls (one collection of bars per group, not one artist
+    per DUT), so 10,000 DUTs cost about what 10 do; above ``RASTER_ABOVE`` DUTs the
+    marks are rasterised inside the vector figure.
+    """
+    ok = np.asarray(fits.ok, bool) & np.isfinite(fits.vth) & np.isfinite(fits.rth)
+    hl = (np.zeros(len(fits), bool) if highlight is None else np.asarray(highlight, bool)) & ok
+    x, y = np.asarray(fits.rth, float), np.asarray(fits.vth, float)
+    ex = np.nan_to_num(np.asarray(fits.k_rth, float) * fits.u_rth)
+    ey = np.nan_to_num(np.asarray(fits.k, float) * fits.u_vth)
+    raster = int(ok.sum()) > RASTER_ABOVE
+    small = int(ok.sum()) > 200
+    with house_style():
+        fig, ax = new_figure(6.4, 4.4)
+        for mask, color, label in ((ok & ~hl, COLORS["model"], "DUTs (bars: interval, ±k·u)"),
+                                   (hl, COLORS["flag"], highlight_label)):
+            if not mask.any():
+                continue
+            ax.errorbar(x[mask], y[mask], xerr=ex[mask], yerr=ey[mask], fmt="o",
+                        ms=2.0 if small else 4.0, color=color, ecolor=color,
+                        elinewidth=0.5 if small else 0.8, alpha=0.6 if small else 1.0,
+                        label=f"{label} ({int(mask.sum())})", rasterized=raster)
+        if not ok.any():
+            ax.text(0.5, 0.5, "no fitted DUTs", transform=ax.transAxes, ha="center")
+        si_axis(ax, "x", "Ω", "Internal resistance Rth")
+        si_axis(ax, "y", "V", "Open-circuit voltage Vth")
+        if ok.any():
+            ax.legend(loc="best")
     return fig

@@ -23,6 +23,8 @@ import numpy as np
 
 from ..core.formatting import format_estimate, format_percent, format_value
 from ..core.trend import DAY, iso_date
+from .style import REPORT_HTML, RESULTS_CSV, RESULTS_JSON, STYLESHEET, batch_figure_name
+from .style import dut_figure_name
 
 __all__ = ["write_trend_report", "ALL_FIGURES_UP_TO", "MAX_FIGURES"]
 
@@ -32,15 +34,6 @@ MAX_FLEET_CHARTS = 12
 MAX_FLEET_POINTS = 400
 MAX_TABLE_ROWS = 2000
 
-_CSS = """
-body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;color:#222831;margin:2rem;
-max-width:70rem}
-h1{font-size:1.4rem}h2{font-size:1.1rem;margin-top:2rem}
-table{border-collapse:collapse;font-size:.85rem}td,th{padding:.2rem .6rem;text-align:right;
-border-bottom:1px solid #e5e7eb}td:first-child,th:first-child{text-align:left}
-.flag{color:#c2410c;font-weight:600}.note{color:#6b7280}
-figure{margin:1rem 0}figure svg{max-width:100%;height:auto}
-"""
 
 
 def _dates(t):
@@ -121,7 +114,7 @@ def _fleet_figure(trends, members, key, excess_pct):
 
 
 def _csv(trends) -> str:
-    """``trend.csv``: one row per DUT, through the project's CSV writer (numbers as
+    """``results.csv``: one row per DUT, through the project's CSV writer (numbers as
     ``%.10g``, non-finite values as empty cells, text neutralised and quoted as needed)."""
     from ..io.readings_csv import table_csv
 
@@ -148,7 +141,8 @@ def _csv(trends) -> str:
 
 
 def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
-    """Write ``index.html``, ``trend.json``, ``trend.csv`` and PNG figures into ``folder``.
+    """Write ``report.html``, ``results.json``, ``results.csv`` and PNG figures into
+    ``folder`` (the names of :mod:`sagfit.report.style`).
 
     Parameters
     ----------
@@ -164,7 +158,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     """
     from scipy import special
 
-    from ..io.outputs import atomic_write, document_text, prepare_folder, safe_filename
+    from ..io.outputs import atomic_write, document_text, prepare_folder
     from .plots import figure_svg, save_png
 
     root = prepare_folder(folder, inputs)
@@ -175,7 +169,8 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     n = len(trends)
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
-        "<title>sagfit trend report</title>", f"<style>{_CSS}</style></head><body>",
+        "<meta name='viewport' content='width=device-width,initial-scale=1'>",
+        "<title>sagfit trend report</title>", f"<style>{STYLESHEET}</style></head><body>",
         "<h1>Internal resistance trends</h1>",
         f"<p>Database {esc(str(doc.get('database', '')))}: {int(doc.get('records', 0))} records "
         f"of {n} DUT(s), as of {esc(str(s['as_of']))}. Baseline: {esc(s['baseline'])}; "
@@ -183,7 +178,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
         f"limit {s['group_excess_pct']:g} % above the median (common practice); confidence "
         f"{trends.confidence * 100:g} %.</p>",
         f"<p><b>{int(flagged.sum())}</b> of {n} DUT(s) flagged.</p>",
-        "<h2>Summary</h2><table><tr><th>DUT</th><th>records</th><th>baseline Rth</th>"
+        "<h2>Summary</h2><table class='grid'><tr><th>DUT</th><th>records</th><th>baseline Rth</th>"
         "<th>latest Rth ± U</th><th>change</th><th>rate per 30 d</th>"
         "<th>projected crossing</th><th>vs group</th><th>flags</th></tr>",
     ]
@@ -208,7 +203,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
             + "</td><td>" + esc(grp) + "</td><td class='flag'>" + esc(codes) + "</td></tr>")
     parts.append("</table>")
     if n > MAX_TABLE_ROWS:
-        parts.append(f"<p class='note'>{n - MAX_TABLE_ROWS} more DUTs in trend.csv.</p>")
+        parts.append(f"<p class='note'>{n - MAX_TABLE_ROWS} more DUTs in results.csv.</p>")
     msgs = [(trends.duts[i], f) for i in order for f in trends.flags[i]]
     if msgs:
         parts.append("<h2>Flags</h2><ul>")
@@ -226,13 +221,13 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
         if members.size < 3:
             continue
         fig = _fleet_figure(trends, members, key, s["group_excess_pct"])
-        name = f"fleet_{safe_filename(key)}.png"
+        name = batch_figure_name("group", key)
         save_png(fig, root / name, root, inputs=inputs)
         parts.append(f"<figure>{figure_svg(fig, title='Fleet ' + key)}<figcaption>"
                      f"{esc(key)}: {members.size} DUTs (PNG: {esc(name)})</figcaption></figure>")
     if len(groups) > MAX_FLEET_CHARTS:
         parts.append(f"<p class='note'>{len(groups) - MAX_FLEET_CHARTS} more groups: see "
-                     "trend.csv.</p>")
+                     "results.csv.</p>")
 
     # ---- per-DUT trend figures
     show = np.arange(n) if n <= ALL_FIGURES_UP_TO else np.flatnonzero(flagged)
@@ -244,7 +239,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     for i in show:
         rows = slice(int(lo[i]), int(hi[i]))
         fig = _dut_figure(trends, recs, i, rows, k_show)
-        name = f"trend_{safe_filename(trends.duts[i])}.png"
+        name = dut_figure_name(trends.duts[i], "trend")
         save_png(fig, root / name, root, inputs=inputs)
         parts.append(f"<figure>{figure_svg(fig, title='Rth trend of ' + trends.duts[i])}"
                      f"<figcaption>{esc(trends.duts[i])} (PNG: {esc(name)})</figcaption></figure>")
@@ -254,9 +249,10 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     parts.append("<p class='note'>Error bars are expanded uncertainties U = k·u with k = "
                  f"{k_show:.2f}. Generated by sagfit {esc(str(doc.get('version', '')))}.</p>")
     parts.append("</body></html>\n")
-    atomic_write(root / "trend.json", document_text(doc), inputs=inputs, within=root,
+    atomic_write(root / RESULTS_JSON, document_text(doc), inputs=inputs, within=root,
                  option="--report")
-    atomic_write(root / "trend.csv", _csv(trends), inputs=inputs, within=root, option="--report")
-    atomic_write(root / "index.html", "\n".join(parts), inputs=inputs, within=root,
+    atomic_write(root / RESULTS_CSV, _csv(trends), inputs=inputs, within=root,
+                 option="--report")
+    atomic_write(root / REPORT_HTML, "\n".join(parts), inputs=inputs, within=root,
                  option="--report")
     return root

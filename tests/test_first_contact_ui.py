@@ -1,0 +1,302 @@
+"""First-contact cases of the terminal, the reports and the Python API: instruments listed
+only when they entered the result, cautions that follow the data, tables on a narrow
+terminal, one naming scheme, the default bench profile (all data invented)."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from conftest import SAMPLES
+
+# invented: an ammeter that a (R, V) sweep never uses, calibration long overdue
+BENCH_UNUSED_AMMETER = """\
+[voltage]
+accuracy = "0.015%+2mV"
+instrument = "DMM-Q1"
+calibration_due = 2027-05-01
+
+[current]
+accuracy = "0.2%+1mA"
+instrument = "SHUNT-Q9"
+calibration_due = 2020-01-01
+"""
+
+
+class TestInstrumentsThatEnteredTheResult:
+    def test_unused_ammeter_is_not_listed(self, cli, tmp_path):
+        """Readings with I = V/R list the voltmeter only: terminal, JSON and report."""
+        bench = tmp_path / "bench.toml"
+        bench.write_text(BENCH_UNUSED_AMMETER)
+        src = SAMPLES / "pack_a.csv"  # load_ohm, voltage_V
+        doc = json.loads(cli("fit", src, "--bench", bench, "--json").out)
+        ids = [row["identifier"] for row in doc["traceability"]["instruments"]]
+        assert ids == ["DMM-Q1"]
+        assert not doc["traceability"]["warnings"]
+        term = cli("fit", src, "--bench", bench)
+        assert "SHUNT-Q9" not in term.out
+        cli("fit", src, "--bench", bench, "--report", tmp_path / "rep")
+        html = (tmp_path / "rep" / "report.html").read_text(encoding="utf-8")
+        assert "DMM-Q1" in html and "SHUNT-Q9" not in html
+
+    def test_measured_current_keeps_the_ammeter(self, cli, tmp_path):
+        """(I, V) readings use both meters, and the overdue ammeter is reported."""
+        bench = tmp_path / "bench.toml"
+        bench.write_text(BENCH_UNUSED_AMMETER)
+        p = tmp_path / "iv.csv"
+        p.write_text("# date: 2026-11-03\ncurrent_A,voltage_V\n0,12.0\n0.5,11.97\n"
+                     "1,11.95\n1.5,11.92\n")
+        doc = json.loads(cli("fit", p, "--bench", bench, "--json").out)
+        ids = [row["identifier"] for row in doc["traceability"]["instruments"]]
+        assert ids == ["DMM-Q1", "SHUNT-Q9"]
+        assert any("SHUNT-Q9" in w for w in doc["traceability"]["warnings"])
+
+    def test_accept_lists_only_the_voltmeter(self, cli, tmp_path):
+        bench = tmp_path / "bench.toml"
+        bench.write_text(BENCH_UNUSED_AMMETER)
+        run = cli("accept", SAMPLES / "pack_a.csv", "--spec", SAMPLES / "accept_spec.toml",
+                  "--bench", bench, "--json")
+        doc = json.loads(run.out)
+        assert "SHUNT-Q9" not in json.dumps(doc)
+
+
+class TestCautionsFollowTheSource:
+    def test_regulator_board_caution_says_extrapolated_not_melting(self, cli):
+        """A 5 V board tested to 1.5 A: the 132 A is called an extrapolation, without the
+        'melt tools' wording of a source seen delivering its current."""
+        run = cli("fit", SAMPLES / "reg5v_board.csv")
+        line = next(ln for ln in run.out.splitlines() if "short-circuit" in ln
+                    and ln.startswith("caution:"))
+        assert "(extrapolated)" in line and "tested up to 1.5 A" in line
+        assert "melt" not in run.out and "battery" not in run.out
+
+    def test_below_knee_uses_the_limit_not_the_line(self, cli, tmp_path):
+        """A 12 V supply seen limiting at 1 A, refitted below the knee: the line's 860 A
+        raises no short-circuit caution."""
+        rows = ["load_ohm,voltage_V,current_A", "open,12.0000,0.0000"]
+        for r in (100, 47, 33, 22, 18, 15, 12.5):
+            i = 12 / (r + 0.014)
+            rows.append(f"{r},{12 - 0.014 * i:.4f},{i:.4f}")
+        rows += [f"{r},{r:.4f},1.0000" for r in (10, 8.2, 6.8, 5.6, 4.7)]
+        p = tmp_path / "limit.csv"
+        p.write_text("\n".join(rows) + "\n")
+        run = cli("fit", p, "--below-knee", "--voltage-accuracy", "0.01%+1mV",
+                  "--current-accuracy", "0.1%+1mA")
+        assert run.code == 0, run.err
+        assert "short-circuit current Isc (extrapolated)" in run.out
+        assert "High prospective short-circuit current" not in run.out
+
+    def test_record_gives_its_cautions_once_per_run(self, cli, tmp_path):
+        """Three files in one record run: each recorded, the cautions printed once."""
+        import shutil
+        files = []
+        for k in range(3):
+            files.append(tmp_path / f"pack{k}.csv")
+            shutil.copy(SAMPLES / "pack_a.csv", files[-1])
+        run = cli("record", *files, "--db", tmp_path / "h.sqlite")
+        assert run.code == 0, run.err
+        assert run.out.count("recorded 1 DUT(s)") == 3
+        assert run.out.count("High prospective short-circuit current") == 1
+        assert run.out.count("Hot load resistors") == 1
+        assert run.out.count("not a safety assessment") == 1
+        doc = json.loads(cli("record", *files, "--db", tmp_path / "h2.sqlite", "--json").out)
+        assert len(doc["runs"]) == 3 and len(doc["cautions"]) == 3
+        assert all("cautions" not in r for r in doc["runs"])
+
+    def test_record_of_a_bad_second_file_records_nothing(self, cli, tmp_path):
+        bad = tmp_path / "bad.csv"
+        bad.write_text("load_ohm,voltage_V\nopen,12.7\n10,x\n")
+        run = cli("record", SAMPLES / "pack_a.csv", bad, "--db", tmp_path / "h.sqlite")
+        assert run.code == 2 and "bad.csv" in run.err
+        assert not (tmp_path / "h.sqlite").exists()
+
+
+class TestPowerFigure:
+    @staticmethod
+    def _band_and_labels(fig):
+        ax = fig.axes[0]
+        band = ax.collections[0].get_paths()[0].vertices
+        labels = [t.get_text() for leg in fig.legends for t in leg.get_texts()]
+        return band, labels, ax
+
+    def test_regulator_peak_is_labelled_extrapolated(self):
+        """A 5 V board tested to 1.5 A: the 166 W peak is marked extrapolated, the
+        region below the smallest tested load is shaded and labelled."""
+        import sagfit
+        from sagfit.report.plots import power_figure
+        r = sagfit.read_readings(SAMPLES / "reg5v_board.csv")
+        band, labels, ax = self._band_and_labels(power_figure(r, sagfit.fit(r), 0))
+        assert any(lb.startswith("maximum power at R = Rth (extrapolated)") for lb in labels)
+        assert any(lb.startswith("extrapolated: loads below") for lb in labels)
+        assert ax.get_ylim()[0] == 0.0
+
+    def test_band_never_below_zero(self):
+        """A poorly determined source: the k·u band stops at zero power."""
+        import numpy as np
+
+        from sagfit.core.readings import Readings
+        from sagfit.report.plots import power_figure
+        # invented: three noisy readings, a wide band
+        rd = Readings.from_arrays(voltage=[5.0, 4.6, 4.75], current=[0.0, 0.5, 1.0])
+        import sagfit
+        fig = power_figure(rd, sagfit.fit(rd), 0)
+        band, labels, _ = self._band_and_labels(fig)
+        assert np.nanmin(band[:, 1]) >= 0.0
+
+    def test_sweep_through_the_peak_is_not_labelled(self):
+        """A cell swept past R = Rth: the peak was measured and is not labelled."""
+        import numpy as np
+
+        from sagfit.core.readings import Readings
+        from sagfit.report.plots import power_figure
+        import sagfit
+        i = np.array([0.0, 0.5, 1.0, 1.5, 2.0, 2.5])  # invented: Isc = 3 A
+        rd = Readings.from_arrays(voltage=1.5 - 0.5 * i, current=i, u_voltage=[0.001] * 6)
+        band, labels, _ = self._band_and_labels(power_figure(rd, sagfit.fit(rd), 0))
+        assert any(lb.startswith("maximum power at R = Rth:") for lb in labels)
+
+
+@pytest.fixture
+def terminal(monkeypatch):
+    """Pretend stdout is an interactive terminal of a given width."""
+    import sagfit.cli.common as common
+
+    def at(width: int):
+        monkeypatch.setattr(common, "interactive", lambda: True)
+        monkeypatch.setenv("COLUMNS", str(width))
+    return at
+
+
+def _table_lines(text):
+    return [ln for ln in text.splitlines() if "│" in ln or "┃" in ln]
+
+
+class TestNarrowTerminal:
+    def test_fit_table_fits_80_columns_without_cutting_numbers(self, cli, terminal):
+        """Six packs on 80 columns: the empty flags column and the least important ones
+        are left out and named; every number shown is whole (no '…')."""
+        terminal(80)
+        run = cli("fit", SAMPLES / "fleet_packs.csv", "--bench", SAMPLES / "bench.toml",
+                  "--quiet")
+        assert run.code == 0, run.err
+        lines = _table_lines(run.out)
+        assert lines and max(len(ln) for ln in lines) <= 80
+        assert "…" not in run.out.split("Uncertainties")[0]
+        assert "12.7404 ± 0.0017 V" in run.out and "21.479 ± 0.054 mΩ" in run.out
+        assert "left out to fit 80 columns: flags" in run.out
+        assert "--wide" in run.out
+
+    def test_wide_and_piped_show_every_column(self, cli, terminal):
+        src, bench = SAMPLES / "fleet_packs.csv", SAMPLES / "bench.toml"
+        piped = cli("fit", src, "--bench", bench, "--quiet")
+        assert "flags" in piped.out and "Pmax" in piped.out and "left out" not in piped.out
+        terminal(80)
+        wide = cli("fit", src, "--bench", bench, "--quiet", "--wide")
+        assert "flags" in wide.out and "Pmax" in wide.out and "left out" not in wide.out
+
+    def test_accept_decision_never_cut(self, cli, terminal):
+        """'inconclusive (flagged)' wraps at its space rather than losing letters."""
+        terminal(80)
+        run = cli("accept", SAMPLES / "accept_reel.csv", "--spec",
+                  SAMPLES / "accept_spec.toml", "--bench", SAMPLES / "accept_bench.toml",
+                  "--quiet")
+        lines = _table_lines(run.out)
+        assert max(len(ln) for ln in lines) <= 80
+        table = "\n".join(lines)
+        assert "inconclusi…" not in table and "…" not in table
+        assert "inconclusive" in table
+
+    def test_trend_dates_never_cut(self, cli, terminal, tmp_path):
+        """The projected crossing dates stay whole on 80 columns."""
+        import re
+        db = tmp_path / "h.sqlite"
+        files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))
+        assert cli("record", *files, "--db", db, "--bench",
+                   SAMPLES / "fleet_history" / "bench.toml", "--quiet").code == 0
+        wide = cli("trend", "--db", db, "--json")
+        dates = {r["projected_crossing"] for r in json.loads(wide.out)["results"]} - {None}
+        terminal(80)
+        run = cli("trend", "--db", db)
+        lines = _table_lines(run.out)
+        assert max(len(ln) for ln in lines) <= 80
+        assert "…" not in "\n".join(lines)
+        shown = set(re.findall(r"\d{4}-\d{2}-\d{2}", "\n".join(lines)))
+        assert shown and all(len(d) == 10 for d in shown)
+        assert dates and dates <= shown  # every projected date, whole
+
+    @pytest.mark.parametrize("args", [
+        ["plan", "--vth", "12.6V", "--rth", "50mohm", "--max-current", "10A",
+         "--max-power", "25W"],
+        ["simulate-predict"],
+    ])
+    def test_predict_and_plan_fit_80_columns(self, cli, terminal, tmp_path, args):
+        if args == ["simulate-predict"]:
+            res = tmp_path / "fit.json"
+            assert cli("fit", SAMPLES / "fleet_packs.csv", "--bench", SAMPLES / "bench.toml",
+                       "--out", res).code == 0
+            args = ["predict", res, "--load", "1,2.2,open", "--dut", "PK-07"]
+        terminal(80)
+        run = cli(*args)
+        assert run.code == 0, run.err
+        lines = _table_lines(run.out)
+        assert lines and max(len(ln) for ln in lines) <= 80
+        assert "…" not in "\n".join(lines)
+
+
+class TestOneReportScheme:
+    def test_three_reports_share_names_and_style(self, cli, tmp_path):
+        """fit, accept and trend reports: report.html, results.json/csv, fig-*.png, and the
+        same style sheet inline."""
+        from sagfit.report.style import STYLESHEET
+        cli("fit", SAMPLES / "fleet_packs.csv", "--report", tmp_path / "f", "--quiet")
+        cli("accept", SAMPLES / "accept_reel.csv", "--spec", SAMPLES / "accept_spec.toml",
+            "--report", tmp_path / "a", "--quiet")
+        db = tmp_path / "h.sqlite"
+        files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))[:3]
+        cli("record", *files, "--db", db, "--quiet")
+        cli("trend", "--db", db, "--report", tmp_path / "t")
+        for sub in "fat":
+            names = {p.name for p in (tmp_path / sub).iterdir()}
+            assert {"report.html", "results.json", "results.csv"} <= names, sub
+            pngs = [n for n in names if n.endswith(".png")]
+            assert pngs and all(n.startswith("fig-") for n in pngs), (sub, pngs)
+            page = (tmp_path / sub / "report.html").read_text(encoding="utf-8")
+            assert STYLESHEET in page
+        assert (tmp_path / "t" / "fig-C05-trend.png").exists()
+        assert (tmp_path / "a" / "fig-histogram-vth.png").exists()
+
+
+class TestBatchFigure:
+    def test_fit_report_has_the_batch_figure_without_flags(self, cli, tmp_path):
+        """Six packs, none flagged: the report still shows every DUT in one figure."""
+        run = cli("fit", SAMPLES / "fleet_packs.csv", "--bench", SAMPLES / "bench.toml",
+                  "--report", tmp_path / "r", "--figures", "none", "--quiet")
+        assert run.code == 0, run.err
+        assert (tmp_path / "r" / "fig-batch-vth-rth.png").exists()
+        page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
+        assert "Vth against Rth of the 6 fitted DUTs" in page
+
+    def test_many_duts_make_a_few_artists(self):
+        """2,000 DUTs: one point set and one bar collection per group, not 2,000 lines."""
+        import numpy as np
+
+        from sagfit.core.fit import fit_lines
+        from sagfit.core.readings import Readings
+        from sagfit.report.plots import batch_figure
+        rng = np.random.default_rng(21)  # invented batch, seeded
+        m, i = 2000, np.array([0.0, 1.0, 2.0, 3.0])
+        vth = rng.normal(5.0, 0.01, m)[:, None]
+        rth = rng.normal(0.05, 0.004, m)[:, None]
+        v = (vth - rth * i + rng.normal(0, 1e-4, (m, 4))).ravel()
+        rd = Readings.from_arrays(voltage=v, current=np.tile(i, m), u_voltage=np.full(4 * m, 1e-4),
+                                  dut=np.repeat([f"B{j}" for j in range(m)], 4))
+        fits = fit_lines(rd)
+        hl = np.arange(m) < 10
+        fig = batch_figure(fits, highlight=hl)
+        ax = fig.axes[0]
+        assert len(ax.lines) <= 2 and len(ax.collections) <= 4
+        pts = sum(len(ln.get_xdata()) for ln in ax.lines)
+        assert pts == m
+        labels = [t.get_text() for t in ax.get_legend().get_texts()]
+        assert any("(1990)" in lb for lb in labels) and any("(10)" in lb for lb in labels)
