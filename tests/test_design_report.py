@@ -75,8 +75,8 @@ class TestExpectedHistogram:
 
 
 def test_report_folder_from_the_command(tmp_path, capsys):
-    """--report writes design.html (both figures inline, every unit, escaped names),
-    design.json equal to --json, and the two PNGs; an input file is never a folder."""
+    """--report writes report.html (both figures inline, every unit, escaped names),
+    results.json equal to --json, and the two PNGs; an input file is never a folder."""
     net = tmp_path / "d.cir"
     net.write_text(DIVIDER)
     res = tmp_path / "fit.csv"
@@ -88,11 +88,11 @@ def test_report_folder_from_the_command(tmp_path, capsys):
     code, out, _ = _run(capsys, "design", str(net), "--draws", "2000", "--measured", str(res),
                         "--report", str(rep), "--json")
     assert code == 1
-    page = (rep / "design.html").read_text()
+    page = (rep / "report.html").read_text()
     assert page.count("<svg") == 2 and "&lt;b&gt;A1&lt;/b&gt;" in page and "<b>A1" not in page
     assert "not consistent" in page and "ISO 13528" in page
-    assert json.loads((rep / "design.json").read_text()) == json.loads(out)
-    assert (rep / "expected-vth.png").read_bytes()[:4] == b"\x89PNG"
-    assert (rep / "expected-rth.png").stat().st_size > 0
+    assert json.loads((rep / "results.json").read_text()) == json.loads(out)
+    assert (rep / "fig-expected-vth.png").read_bytes()[:4] == b"\x89PNG"
+    assert (rep / "fig-expected-rth.png").stat().st_size > 0
     code, _, err = _run(capsys, "design", str(net), "--report", str(net))
     assert code == 2 and "input file" in err

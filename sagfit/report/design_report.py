@@ -2,9 +2,11 @@
 tolerances, and measured units against them.
 
 Edge module (matplotlib, through :mod:`sagfit.report.plots`, imported inside the
-functions). The report folder holds ``design.html`` (self-contained: inline SVG figures,
-escaped text), ``design.json`` (the document of ``--json``) and one PNG histogram per
-quantity, all written atomically and only inside the folder.
+functions). The report folder follows the scheme of :mod:`sagfit.report.style`:
+``report.html`` (self-contained: inline SVG figures, escaped text, the house style
+sheet), ``results.json`` (the document of ``--json``) and one PNG histogram per quantity
+(``fig-expected-vth.png``, ``fig-expected-rth.png``), all written atomically and only
+inside the folder.
 """
 
 from __future__ import annotations
@@ -96,18 +98,9 @@ def expected_histogram(draws, quantity: str, doc: dict):
     return fig
 
 
+# the house style sheet (report/style.py) plus what only this report's tables need
 _CSS = """
-body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;color:#222831;margin:2em;
-max-width:70em}
-h1{font-size:1.4em}h2{font-size:1.1em;margin-top:1.6em}
-table{border-collapse:collapse;font-size:0.9em}
-th,td{padding:0.25em 0.7em;border-bottom:1px solid #e5e7eb;text-align:right;
-white-space:nowrap}
-td.why,th.why{text-align:left;white-space:normal}
-th:first-child,td:first-child{text-align:left}
-.pass{color:#3d7a57}.fail{color:#b3402f;font-weight:600}.note{color:#6b7280;font-size:0.9em}
-.caution{border-left:4px solid #c2410c;padding:0.3em 0.8em;background:#fff7ed}
-figure{display:inline-block;margin:0.5em 1em 0.5em 0}svg{max-width:100%;height:auto}
+td.why, th.why { text-align: left; white-space: normal; }
 """
 
 
@@ -130,15 +123,16 @@ def write_design_report(folder, doc: dict, t, cmp=None, *, inputs=()) -> None:
 
     from ..io.outputs import atomic_write, prepare_folder
     from .plots import figure_svg, save_png
+    from .style import REPORT_HTML, RESULTS_JSON, STYLESHEET, batch_figure_name
 
     root = prepare_folder(folder, inputs)
-    atomic_write(root / "design.json", json.dumps(doc, indent=2, ensure_ascii=False,
+    atomic_write(root / RESULTS_JSON, json.dumps(doc, indent=2, ensure_ascii=False,
                                                   allow_nan=False) + "\n",
                  inputs=inputs, within=root, option="--report")
     figures = []
     for q, draws in (("vth", t.mc_vth), ("rth", t.mc_rth)):
         fig = expected_histogram(draws, q, doc)
-        name = f"expected-{q}.png"
+        name = batch_figure_name("expected", q)
         save_png(fig, root / name, root, inputs=inputs)
         figures.append((_LABELS[q][0], figure_svg(fig, title=f"Expected {_LABELS[q][0]}"),
                         name))
@@ -146,7 +140,7 @@ def write_design_report(folder, doc: dict, t, cmp=None, *, inputs=()) -> None:
     n = doc["nominal"]
     parts = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
              "<meta name='viewport' content='width=device-width,initial-scale=1'>",
-             f"<title>Design report: {_e(name)}</title><style>{_CSS}</style></head><body>",
+             f"<title>Design report: {_e(name)}</title><style>{STYLESHEET}{_CSS}</style></head><body>",
              f"<h1>Design report: {_e(name)}</h1>",
              f"<p>Netlist {_e(doc['netlist'])}, port {_e(doc['port'][0])}–"
              f"{_e(doc['port'][1])}: nominal Vth {_e(format_value(n['vth_V'], 'V'))}, Rth "
@@ -168,10 +162,10 @@ def write_design_report(folder, doc: dict, t, cmp=None, *, inputs=()) -> None:
     parts.append(_sensitivity_table(doc))
     if "measured" in doc:
         parts.append(_units_table(doc["measured"]))
-    parts.append("<p class='note'>Full precision, SI units: design.json. Safety: measuring "
+    parts.append(f"<p class='note'>Full precision, SI units: {RESULTS_JSON}. Safety: measuring "
                  "a board's output resistance loads or shorts its output; follow the "
                  "equipment manuals and local practice.</p></body></html>\n")
-    atomic_write(root / "design.html", "".join(parts), inputs=inputs, within=root,
+    atomic_write(root / REPORT_HTML, "".join(parts), inputs=inputs, within=root,
                  option="--report")
 
 
@@ -256,7 +250,7 @@ def _units_table(m) -> str:
     rows.append("</table>")
     if len(units) > MAX_REPORT_ROWS:
         rows.append(f"<p class='note'>{len(units) - MAX_REPORT_ROWS} more units (worst "
-                    "first above) are in design.json.</p>")
+                    "first above) are in results.json.</p>")
     if m["skipped"]:
         rows.append("<p class='note'>Without a fit: " + _e(", ".join(
             f"{s['dut']} ({s['reason']})" for s in m["skipped"][:20])) + "</p>")

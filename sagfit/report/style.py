@@ -1,4 +1,4 @@
-"""One look and one naming scheme for the three HTML reports (fit, accept, trend).
+"""One look and one naming scheme for the HTML reports (fit, accept, trend, design).
 
 Every report folder holds ``report.html`` (self-contained, this style sheet inline),
 ``results.json`` and ``results.csv``, and PNG figures named ``fig-<DUT>-<kind>.png`` for a
