@@ -46,6 +46,11 @@ def fit_command(
     robust: Annotated[bool, typer.Option(
         "--robust", help="Refit with Huber's loss (c = 1.345): readings beyond c standard "
                                 "residuals lose weight.")] = False,
+    monte_carlo: Annotated[Optional[int], typer.Option(
+        "--monte-carlo", metavar="DRAWS",
+        help="Also give Monte Carlo coverage intervals of Vth and Rth (JCGM 101:2008) from "
+             "DRAWS draws per DUT of the meters' errors and the readings' noise (seeded, "
+             "repeatable), and say whether the GUM interval agrees; e.g. 100000.")] = None,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write a self-contained report (HTML, PNG, JSON, CSV) into this "
                          "folder.")] = None,
@@ -77,6 +82,7 @@ def fit_command(
 
             refuse_single_file_options({"--dut": dut, "--current-range": current_range,
                                         "--below-knee": below_knee, "--robust": robust,
+                                        "--monte-carlo": monte_carlo,
                                         "--report": report, "--verbose": verbose})
             code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
             raise typer.Exit(code)
@@ -87,12 +93,29 @@ def fit_command(
                 raise OptionError("--figures", f"{figures!r}: choose one of "
                                                f"{', '.join(FIGURE_CHOICES)}")
         check_out_option(out, [file] + ([bench] if bench else []))
-        with progress("reading " + file, show_progress(file, json_out), total=4) as step:
+        if monte_carlo is not None and robust:
+            raise OptionError("--monte-carlo", "not with --robust (a Huber fit's weights "
+                                               "depend on its residuals)")
+        if monte_carlo is not None and monte_carlo < 1000:
+            raise OptionError("--monte-carlo", f"at least 1000 draws (got {monte_carlo}); "
+                                               "100000 is a good start")
+        with progress("reading " + file, show_progress(file, json_out),
+                      total=5 if monte_carlo else 4) as step:
             readings = load_readings(file, settings, dut)
             step(f"fitting and checking {readings.n_duts} DUT(s)")
             fits = fit(readings, confidence=settings["confidence"], level=level,
                        current_range=parse_current_range(current_range),
                        below_knee=below_knee, robust=robust)
+            mc = None
+            if monte_carlo:
+                from ..core.montecarlo import monte_carlo as run_monte_carlo
+                from ..core.results import ColumnRows
+
+                step(f"Monte Carlo, {monte_carlo:,} draws per DUT")
+                used = readings if fits.used_rows is None else readings.select(fits.used_rows)
+                mc = run_monte_carlo(used, fits, draws=monte_carlo)
+                fits = fits.replace(extra={**fits.extra, "monte_carlo": ColumnRows(
+                    {"i": list(range(len(fits)))}, lambda c, i, mc=mc: mc.row(int(c["i"][i])))})
             step("preparing the results")
             need_results = bool(json_out or report or (out and out.lower().endswith(".json")))
             if need_results:
@@ -116,7 +139,39 @@ def fit_command(
             from .render import print_fits
 
             print_fits(fits, readings, doc, verbose=verbose, quiet=quiet, wide=wide)
+            if mc is not None:
+                print_monte_carlo(fits, mc)
     raise typer.Exit(3 if fits.error.count(None) != len(fits.error) else 0)
+
+
+def print_monte_carlo(fits, mc, limit: int = 10) -> None:
+    """The Monte Carlo intervals of the first ``limit`` DUTs and a line for the batch."""
+    import math
+
+    from ..core.formatting import format_interval, format_value
+    from ..core.montecarlo import coverage_probability_note
+    from .render import _console
+
+    console = _console()
+    lvl = f"{mc.confidence * 100:g} %"
+    shown = 0
+    for i in range(len(fits)):
+        if shown >= limit or not math.isfinite(float(mc.vth_low[i])):
+            continue
+        shown += 1
+
+        def verdict(valid, diff, delta, unit):
+            return ("GUM interval agrees within δ = " + format_value(delta, unit) if valid else
+                    "GUM interval ends differ by up to " + format_value(diff, unit))
+
+        console.print(
+            f"{fits.duts[i]}: Monte Carlo {lvl} Vth "
+            f"{format_interval(mc.vth_low[i], mc.vth_high[i], 'V', mc.u_vth[i], fits.vth[i])} "
+            f"({verdict(mc.gum_valid_vth[i], mc.diff_vth[i], mc.delta_vth[i], 'V')}), Rth "
+            f"{format_interval(mc.rth_low[i], mc.rth_high[i], 'Ω', mc.u_rth[i], fits.rth[i])} "
+            f"({verdict(mc.gum_valid_rth[i], mc.diff_rth[i], mc.delta_rth[i], 'Ω')})",
+            markup=False, soft_wrap=True)
+    console.print(coverage_probability_note(fits, mc), markup=False)
 
 
 def parse_current_range(text: str | None):
