@@ -118,6 +118,15 @@ def test_developers_map_matches_tree():
     assert named == actual
 
 
+def test_developers_map_names_every_module():
+    """Each module of a layer (``__init__`` aside) is named in DEVELOPERS.md, by its path
+    under ``sagfit/`` or, in a list of siblings, by its file name."""
+    text = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    missing = [p.relative_to(PKG).as_posix() for p in LAYERED if p.name != "__init__.py"
+               and f"`{p.relative_to(PKG).as_posix()}`" not in text and f"`{p.name}`" not in text]
+    assert missing == []
+
+
 def test_import_sagfit_does_not_import_typer():
     """`import sagfit` stays free of the CLI and of heavy optional libraries."""
     import subprocess

@@ -12,7 +12,7 @@ import math
 import numpy as np
 
 from ._parallel import WORKERS, map_parallel
-from .diagnostics import diagnose, knee_rows
+from .checks import diagnose, knee_rows
 from .errors import InputError
 from .fit import chi2_upper, fit_lines, segment_scope
 from .formatting import format_value
@@ -56,7 +56,7 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
     -------
     Fits
         Columnar results; ``fits["U17"]`` gives one DUT's :class:`FitResult`. Every DUT
-        carries the checks of :mod:`sagfit.diagnostics` in ``diagnostics`` and ``flags``;
+        carries the checks of :mod:`sagfit.core.checks` in ``diagnostics`` and ``flags``;
         ``settings`` records the options used.
 
     See :func:`sagfit.fit.fit_lines` for the method and its references.
