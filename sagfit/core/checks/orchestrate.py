@@ -75,7 +75,7 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     f_drift = drift_run & (drift["p_value"] < level)
     f_lof = np.isfinite(lof["p_value"]) & (lof["p_value"] < level)
     f_out = outl_run & (outl["max_abs_t"] > outl["limit"])
-    skipped = R.ok & ~(curv_run & knee_run & patt_run & drift_run)
+    skipped = R.ok & ~(curv_run & knee_run & patt_run & drift_run & outl_run)
 
     diagnostics = dict(fits.diagnostics)
     diagnostics.update({
@@ -189,12 +189,13 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     new[:] = [()] * m
     # the few-points text depends only on n and on which checks were skipped: build each
     # Flag once and hand the same tuple to every DUT it applies to
-    runs_mask = (curv_run.astype(np.int64) | knee_run << 1 | patt_run << 2 | drift_run << 3)
-    code = np.where(skipped, R.n * 16 + runs_mask, -1)
+    runs_mask = (curv_run.astype(np.int64) | knee_run << 1 | patt_run << 2 | drift_run << 3
+                 | outl_run << 4)
+    code = np.where(skipped, R.n * 32 + runs_mask, -1)
     for c in np.unique(code[skipped]):
-        nk, bits = int(c) // 16, int(c) % 16
+        nk, bits = int(c) // 32, int(c) % 32
         miss = [name for bit, name in enumerate(("curvature", "knee", "pattern (runs test)",
-                                                 "drift")) if not bits >> bit & 1]
+                                                 "drift", "outlier")) if not bits >> bit & 1]
         fl = Flag("few-points", "info",
                   f"{nk} readings are too few for some checks; skipped: {', '.join(miss)}. "
                   "Take more loads (about 10 spread over the range) for a full check")

@@ -66,6 +66,12 @@ def check_outliers(R: Rows, level: float = 0.01):
     if ne.any():
         tmax[ne] = np.maximum.reduceat(at, starts[ne])
     tmax = np.where(run_dut, tmax, NAN)
+    # p-value of the largest |t| over the DUT's n readings (Šidák, as the limit)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p1 = np.where(R.stated, 2.0 * special.ndtr(-tmax),
+                      2.0 * special.stdtr(np.maximum(R.n - 3.0, 1.0), -tmax))
+        p = -np.expm1(R.n * np.log1p(-np.minimum(p1, 1.0)))
     return ({"max_abs_t": tmax, "count": np.where(run_dut, nflag, NAN),
-             "limit": np.where(run_dut, limit, NAN)}, t, run_dut)
+             "limit": np.where(run_dut, limit, NAN),
+             "p_value": np.where(run_dut, p, NAN)}, t, run_dut)
 

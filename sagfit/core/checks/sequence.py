@@ -6,11 +6,18 @@ References
 - Runs test: A. Wald, J. Wolfowitz, Ann. Math. Statist. 11, 147–162 (1940); S. Siegel,
   N. J. Castellan, *Nonparametric Statistics for the Behavioral Sciences*, 2nd ed. (1988),
   one-sample runs test (exact distribution and normal approximation).
-- Spearman rank correlation with the Student-t approximation of its null distribution:
-  M. G. Kendall, J. D. Gibbons, *Rank Correlation Methods*, 5th ed. (1990), ch. 4.
+- Spearman rank correlation and its exact permutation distribution (up to 10 readings):
+  M. G. Kendall, J. D. Gibbons, *Rank Correlation Methods*, 5th ed. (1990), ch. 4–5;
+  above 10 readings the mean of the t and normal approximations: R. L. Iman,
+  W. J. Conover, "Approximations of the critical region for Spearman's rho with and
+  without ties present", Commun. Statist. – Simul. Comput. 7, 269–282 (1978) (citation
+  from memory; its accuracy at 11 and 12 readings checked against the exact distribution
+  in the tests).
 """
 
 from __future__ import annotations
+
+import functools
 
 import numpy as np
 from scipy import special
@@ -93,7 +100,6 @@ def runs_min_p(n):
     return np.exp(np.log(2.0) - _log_comb(n, n1))
 
 
-
 def check_pattern(R: Rows, level):
     m = R.m
     out = {k: np.full(m, NAN) for k in ("runs", "n_positive", "n_negative", "expected",
@@ -116,7 +122,6 @@ def check_pattern(R: Rows, level):
     return out, run
 
 
-
 def check_drift(R: Rows, level, has_time):
     m = R.m
     out = {k: np.full(m, NAN) for k in ("rho", "p_value")}
@@ -124,6 +129,8 @@ def check_drift(R: Rows, level, has_time):
     run = np.zeros(m, bool)
     for duts, rows in dense_blocks(R.n, R.ok, 5):
         size = rows.shape[1]
+        if spearman_min_p(size) > level:
+            continue  # not even a perfect rank correlation could reach the level
         t = take(R.time, rows)
         timed = (reduce_rows(np.logical_and, np.isfinite(t)) if has_time
                  else np.zeros(duts.size, bool))
@@ -132,14 +139,74 @@ def check_drift(R: Rows, level, has_time):
         rr = _ranks(take(R.res, rows))
         d = (rt - rr).astype(float)
         rho = 1.0 - 6.0 * reduce_rows(np.add, d * d) / (size * (size * size - 1.0))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            tt = rho * np.sqrt((size - 2.0) / np.maximum(1.0 - rho * rho, 1e-300))
-        p = 2.0 * special.stdtr(size - 2.0, -np.abs(tt))
+        if size <= SPEARMAN_EXACT_MAX:
+            p = _spearman_exact_p(size, reduce_rows(np.add, d * d))
+        else:
+            p = _spearman_approx_p(size, rho)
         out["rho"][duts] = rho
         out["p_value"][duts] = np.minimum(p, 1.0)
         basis[duts] = _BASES[timed.astype(np.intp)]
         run[duts] = True
     return out, basis, run
+
+
+#: Up to this many readings the drift p-value comes from the exact permutation
+#: distribution of Spearman's statistic (computed once per n); above it from the
+#: Student-t approximation.
+SPEARMAN_EXACT_MAX = 10
+
+
+@functools.lru_cache(maxsize=None)
+def _spearman_null(n: int) -> np.ndarray:
+    """P(S ≤ s) for s = 0 … (n³ − n)/3, S = Σ (i − πᵢ)² over all n! equally likely
+    orderings π: the exact null distribution of Spearman's ρ = 1 − 6S/(n³ − n), no ties
+    (Kendall & Gibbons 1990, ch. 5). Counted by dynamic programming over the set of ranks
+    already placed (2ⁿ subsets × the partial sums), not by listing the n! orderings."""
+    top = (n ** 3 - n) // 3
+    masks = np.arange(1 << n)
+    placed = np.array([bin(k).count("1") for k in range(1 << n)])
+    counts = np.zeros((1 << n, top + 1))
+    counts[0, 0] = 1.0
+    for i in range(n):  # position i takes one of the ranks not yet placed
+        src = masks[placed == i]
+        for j in range(n):
+            free = src[(src >> j & 1) == 0]
+            shift = (i - j) ** 2
+            counts[free | 1 << j, shift:] += counts[free, :top + 1 - shift]
+    total = counts[-1]
+    return np.cumsum(total) / total.sum()
+
+
+def _spearman_exact_p(n: int, s) -> np.ndarray:
+    """Two-sided exact p-value P(|ρ| ≥ |ρ_obs|) from S = Σ d² (S is symmetric about its
+    mean (n³ − n)/6, so the two tails are equal)."""
+    cdf = _spearman_null(n)
+    top = (n ** 3 - n) // 3
+    s = np.rint(np.asarray(s, float)).astype(np.int64)
+    low = np.minimum(s, top - s)
+    return np.minimum(2.0 * cdf[low], 1.0)
+
+
+def _spearman_approx_p(n: int, rho) -> np.ndarray:
+    """Two-sided p-value of Spearman's ρ above the exact range: the mean of the Student-t
+    (t = ρ√((n − 2)/(1 − ρ²)), n − 2 degrees of freedom) and the normal (z = ρ√(n − 1))
+    approximations (Iman & Conover 1978). The t approximation alone is liberal in the far
+    tail: with 11 readings it rejects 1.28 % of null orderings at the 1 % level (exact:
+    0.99 %); the mean rejects 0.74 % (computed from the exact distribution)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tt = rho * np.sqrt((n - 2.0) / np.maximum(1.0 - rho * rho, 1e-300))
+    p_t = 2.0 * special.stdtr(n - 2.0, -np.abs(tt))
+    p_z = 2.0 * special.ndtr(-np.abs(rho) * np.sqrt(n - 1.0))
+    return 0.5 * (p_t + p_z)
+
+
+def spearman_min_p(n) -> np.ndarray:
+    """Smallest attainable two-sided drift p-value with n readings: 2/n! (exact range);
+    above it the approximation can reach any usual level."""
+    n = np.asarray(n, float)
+    with np.errstate(over="ignore"):
+        exact = 2.0 / special.gamma(n + 1.0)
+    return np.where(n <= SPEARMAN_EXACT_MAX, exact, 0.0)
 
 
 def _ranks(v: np.ndarray) -> np.ndarray:
