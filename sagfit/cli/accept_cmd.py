@@ -242,8 +242,7 @@ def _print_many(console, acc) -> None:
     for cr in acc.checks:
         t.add_column(f"{cr.name}\n{limits_text(cr.check)}", justify="right")
     for i in shown:
-        cells = [acc.duts[i], DECISIONS[acc.decision[i]]
-                 + (" (flagged)" if acc.capped[i] else "")]
+        cells = [acc.duts[i], DECISIONS[acc.decision[i]] + _flagged_note(acc, i)]
         for cr in acc.checks:
             if acc.decision[i] == ERROR:
                 cells.append("")
@@ -272,7 +271,7 @@ def _print_one(console, acc) -> None:
             return ""
         return f"{x:.4g} %" if unit == "%" else format_value(float(x), unit, 5)
 
-    name = DECISIONS[acc.decision[0]] + (" (flagged)" if acc.capped[0] else "")
+    name = DECISIONS[acc.decision[0]] + _flagged_note(acc, 0)
     t = Table(show_edge=False, title=f"{acc.duts[0]}: {name} ({acc.rule.rule} rule"
               + (f", {acc.spec.name})" if acc.spec.name else ")"), title_justify="left")
     for col, just in (("check", "left"), ("value ± U", "right"), ("tolerance", "right"),
@@ -294,6 +293,13 @@ def _print_one(console, acc) -> None:
                   limits_text(cr.check), acc_text, format_p(float(cr.p_c[0])),
                   DECISIONS[int(cr.decision[0])], STATEMENTS[int(cr.statement[0])])
     console.print(t, markup=False)
+
+
+def _flagged_note(acc, i) -> str:
+    """' (flagged: knee, outlier)' when a flag turned a pass into inconclusive, else ''."""
+    if not acc.capped[i]:
+        return ""
+    return f" (flagged: {', '.join(acc.warning_codes.get(int(i), ()))})"
 
 
 def _rank(decision):
