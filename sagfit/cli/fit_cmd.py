@@ -147,6 +147,7 @@ def fit_document(fits, readings, settings) -> dict:
 
     from ..core.traceability import traceability_record
 
+    from ..core.analysis import type_a_note
     from ..core.extrapolation import REACHED, extrapolated_isc_pmax
 
     trace = traceability_record(settings.get("instruments", ()), readings.meta)
@@ -161,6 +162,8 @@ def fit_document(fits, readings, settings) -> dict:
         "settings": settings_record(settings),
         "traceability": trace,
         "warnings": trace["warnings"],
+        # once per run: what a fit without stated uncertainties means (None otherwise)
+        "note": type_a_note(fits),
         "results": [],
         # Isc and Pmax read off the line beyond the tested currents, by DUT
         "extrapolated": {"isc": [d for d, x in zip(fits.duts, ex_isc) if x],
