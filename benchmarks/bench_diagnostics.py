@@ -32,7 +32,7 @@ def make(duts: int, seed: int = 3):
 
 
 def main() -> None:
-    from sagfit.core.diagnostics import diagnose
+    from sagfit.core.checks import diagnose
     from sagfit.core.fit import fit_lines
 
     ap = argparse.ArgumentParser()

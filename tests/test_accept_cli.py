@@ -8,6 +8,7 @@ ILAC-G8:09/2019 §4.2.2; exit codes are those of issue 4.
 
 import json
 import math
+import re
 
 import pytest
 
@@ -258,3 +259,28 @@ class TestOneDut:
         assert "acceptance limits" in run.out and "conditional pass" in run.out
         row = next(ln for ln in run.out.splitlines() if ln.strip().startswith("rth"))
         assert "inconclusive" in row and "≤ 40.00 mΩ" in row
+
+
+class TestFlaggedNamed:
+    def test_terminal_names_the_flag_behind_inconclusive(self, cli, tmp_path):
+        """A board inside every limit but with one reading far off its line (a mistyped
+        digit, invented data) is 'inconclusive (flagged: …, outlier)' in the terminal, in the
+        table of many boards and in the one-board view."""
+        rows = ["board,current_A,voltage_V"]
+        currents = [0.0, 0.15, 0.3, 0.45, 0.6, 0.75, 0.9, 1.05, 1.2, 1.35, 1.5]
+        wiggle = [0.3, -0.2, 0.1, -0.3, 0.2, 0.0, -0.1, 0.3, -0.2, 0.1, -0.1]  # mV
+        for b in ("SH5-D-0101", "SH5-D-0102"):
+            for j, (i, w) in enumerate(zip(currents, wiggle)):
+                v = 5.02 - 0.015 * i + w * 1e-3
+                if b == "SH5-D-0102" and j == 5:
+                    v += 0.009  # 9 mV off: the mistyped reading
+                rows.append(f"{b},{i:.4f},{v:.5f}")
+        path = tmp_path / "two_boards.csv"
+        path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+        run = cli("accept", path, "--spec", SPEC, "--bench", BENCH)
+        assert run.code == 3, run.err
+        line = next(ln for ln in run.out.splitlines() if ln.strip().startswith("SH5-D-0102"))
+        named = re.search(r"inconclusive \(flagged: ([a-z, -]+)\)", line)
+        assert named and "outlier" in named.group(1).split(", ")
+        one = cli("accept", path, "--spec", SPEC, "--bench", BENCH, "--dut", "SH5-D-0102")
+        assert re.search(r"SH5-D-0102: inconclusive \(flagged: [a-z, -]*outlier", one.out)

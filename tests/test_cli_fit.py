@@ -287,3 +287,48 @@ def test_version(cli):
 
     run = cli("--version")
     assert run.code == 0 and run.out.strip() == f"sagfit {sagfit.__version__}"
+
+
+class TestTypeANote:
+    """Without stated uncertainties, the run says once what that means (issue: checks that
+    do not cry wolf); with a bench profile it says nothing."""
+
+    PHRASE = "No measurement uncertainty was stated"
+
+    def test_terminal_says_it_once_per_run(self, cli):
+        """Many Type A DUTs: one note for the run, no per-DUT type-a note (also --verbose)."""
+        for args in ((), ("--verbose",)):
+            run = cli("fit", FLEET, *args)
+            assert run.code == 0, run.err
+            assert run.out.count(self.PHRASE) == 1
+            assert "[type-a]" not in run.out
+            assert "--bench" in run.out and "--voltage-accuracy" in run.out
+            assert "degrees of freedom" in run.out
+
+    def test_bench_profile_gives_no_note(self, cli):
+        """With the meters stated there is nothing to say."""
+        run = cli("fit", PACK, "--bench", BENCH)
+        assert self.PHRASE not in run.out
+        assert json.loads(cli("fit", PACK, "--bench", BENCH, "--json").out)["note"] is None
+
+    def test_json_top_level_note(self, cli):
+        """The JSON carries the note once, at the top level, naming the degrees of freedom
+        (pack_a: 6 readings, 4 degrees of freedom, Student t at 95 %: 2.78)."""
+        doc = json.loads(cli("fit", PACK, "--json").out)
+        assert doc["note"].startswith(self.PHRASE)
+        assert "n − 2 = 4 degrees of freedom" in doc["note"] and "±2.78" in doc["note"]
+
+    def test_html_report_says_it_once(self, cli, tmp_path):
+        """The HTML report shows the note once, near the top."""
+        run = cli("fit", FLEET, "--report", tmp_path / "rep", "--figures", "none")
+        assert run.code == 0, run.err
+        html = next((tmp_path / "rep").glob("*.html")).read_text(encoding="utf-8")
+        assert html.count(self.PHRASE) == 1
+        assert html.index(self.PHRASE) < html.index("<h2>Results</h2>")
+
+
+def test_readme_demo_shows_no_false_flag(cli):
+    """The README's first command on the linear demo pack prints no warning."""
+    run = cli("fit", PACK)
+    assert run.code == 0, run.err
+    assert "warning" not in run.out.lower()

@@ -1,4 +1,4 @@
-"""Tests of sagfit.diagnostics: the linearity checks, their false alarms and their power."""
+"""Tests of sagfit.core.checks: the linearity checks, their false alarms and their power."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import special
 
-from sagfit.core.diagnostics import CODES, diagnose, quadratic_fit, runs_test
+from sagfit.core.checks import CODES, diagnose, quadratic_fit, runs_test
 from sagfit.core.fit import fit_lines
 from sagfit.core.readings import Readings
 from sagfit.core.units import parse_accuracy
@@ -403,9 +403,8 @@ def test_tls_direction_is_the_principal_axis():
     cxx − cyy) of each point cloud (plumbing test: numpy's trigonometry is the
     reference), including axis-aligned clouds; a cloud without a direction gives the
     zero vector."""
-    import sys
+    from sagfit.core.checks.shape import _tls
 
-    D = sys.modules["sagfit.core.diagnostics"]
     rng = np.random.default_rng(11)
     n = 20_000
     sx, sy = rng.normal(size=n), rng.normal(size=n)
@@ -415,14 +414,14 @@ def test_tls_direction_is_the_principal_axis():
     sxy[4:8], sx[4:8], sy[4:8] = 0.0, 0.0, 0.0  # axis-aligned
     sxx[4:6], syy[4:6] = 1.0, 10.0
     sxx[6:8], syy[6:8] = 10.0, 1.0
-    _, mx, my, vx, vy, q = D._tls(sx, sy, sxx, sxy, syy, 5.0)
+    _, mx, my, vx, vy, q = _tls(sx, sy, sxx, sxy, syy, 5.0)
     cxx, cyy, cxy = sxx - sx * mx, syy - sy * my, sxy - sx * my
     th = 0.5 * np.arctan2(2 * cxy, cxx - cyy)
     norm = np.sqrt(q)
     # parallel to (cos θ, sin θ): the cross product vanishes, the norms agree
     np.testing.assert_allclose((vx * np.sin(th) - vy * np.cos(th)) / norm, 0.0, atol=1e-12)
     np.testing.assert_allclose(q, vx ** 2 + vy ** 2)
-    one_spot = D._tls(np.zeros(1), np.zeros(1), np.ones(1), np.zeros(1), np.ones(1), 5.0)
+    one_spot = _tls(np.zeros(1), np.zeros(1), np.ones(1), np.zeros(1), np.ones(1), 5.0)
     assert one_spot[5][0] == 0.0
 
 
@@ -430,25 +429,25 @@ def test_tls_direction_is_the_principal_axis():
 def test_row_reductions_equal_numpys(width):
     """The column-by-column row reductions of the checks equal numpy's along axis 1
     (plumbing; sums of integers and booleans exactly, of floats to round-off)."""
-    from sagfit.core.diagnostics import _cumsum_rows, _reduce_rows
+    from sagfit.core.checks.common import cumsum_rows, reduce_rows
 
     rng = np.random.default_rng(width)
     v = rng.normal(size=(50, width))
     b = v > 0
-    np.testing.assert_allclose(_reduce_rows(np.add, v), v.sum(axis=1), rtol=1e-13, atol=1e-13)
-    np.testing.assert_array_equal(_reduce_rows(np.add, b, np.int64), b.sum(axis=1))
-    np.testing.assert_array_equal(_reduce_rows(np.logical_and, b), b.all(axis=1))
-    np.testing.assert_array_equal(_reduce_rows(np.logical_or, b), b.any(axis=1))
-    np.testing.assert_array_equal(_cumsum_rows(b.astype(np.int64)), np.cumsum(b, axis=1))
+    np.testing.assert_allclose(reduce_rows(np.add, v), v.sum(axis=1), rtol=1e-13, atol=1e-13)
+    np.testing.assert_array_equal(reduce_rows(np.add, b, np.int64), b.sum(axis=1))
+    np.testing.assert_array_equal(reduce_rows(np.logical_and, b), b.all(axis=1))
+    np.testing.assert_array_equal(reduce_rows(np.logical_or, b), b.any(axis=1))
+    np.testing.assert_array_equal(cumsum_rows(b.astype(np.int64)), np.cumsum(b, axis=1))
 
 
 @pytest.mark.parametrize("width", [5, 64, 65, 3000])
 def test_row_reductions_equal_numpy_for_short_and_long_rows(width):
     """The column-by-column row reductions (short rows) and numpy's own (long rows, one
     DUT with thousands of readings) give numpy's results (plumbing test)."""
-    from sagfit.core.diagnostics import _cumsum_rows, _reduce_rows
+    from sagfit.core.checks.common import cumsum_rows, reduce_rows
 
     a = np.random.default_rng(width).random((7, width))
-    np.testing.assert_allclose(_reduce_rows(np.add, a), a.sum(axis=1), rtol=1e-12)
-    np.testing.assert_allclose(_cumsum_rows(a), np.cumsum(a, axis=1), rtol=1e-12)
-    assert (_reduce_rows(np.logical_or, a > 0.9, bool) == (a > 0.9).any(axis=1)).all()
+    np.testing.assert_allclose(reduce_rows(np.add, a), a.sum(axis=1), rtol=1e-12)
+    np.testing.assert_allclose(cumsum_rows(a), np.cumsum(a, axis=1), rtol=1e-12)
+    assert (reduce_rows(np.logical_or, a > 0.9, bool) == (a > 0.9).any(axis=1)).all()

@@ -1,4 +1,4 @@
-"""The outlier check (sagfit.core.diagnostics): externally studentised residuals against
+"""The outlier check (sagfit.core.checks.residuals): externally studentised residuals against
 Student's t (Type A) or the normal distribution (stated uncertainties), with Šidák's
 correction over the readings of one DUT.
 

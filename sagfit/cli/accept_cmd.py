@@ -240,8 +240,7 @@ def _print_many(console, acc, wide: bool = False) -> None:
              for k, cr in enumerate(acc.checks)]
     rows = []
     for i in shown:
-        cells = [acc.duts[i], DECISIONS[acc.decision[i]]
-                 + (" (flagged)" if acc.capped[i] else "")]
+        cells = [acc.duts[i], DECISIONS[acc.decision[i]] + _flagged_note(acc, i)]
         for cr in acc.checks:
             if acc.decision[i] == ERROR:
                 cells.append("")
@@ -272,7 +271,7 @@ def _print_one(console, acc, wide: bool = False) -> None:
             return ""
         return f"{x:.4g} %" if unit == "%" else format_value(float(x), unit, 5)
 
-    name = DECISIONS[acc.decision[0]] + (" (flagged)" if acc.capped[0] else "")
+    name = DECISIONS[acc.decision[0]] + _flagged_note(acc, 0)
     cols = [Col("check", "left", wrap=True), Col("value ± U"), Col("tolerance", drop=3),
             Col("acceptance limits", drop=2), Col("p_c", drop=4),
             Col("decision", "left", wrap=True), Col("statement", "left", wrap=True, drop=1)]
@@ -294,6 +293,13 @@ def _print_one(console, acc, wide: bool = False) -> None:
     print_table(console, cols, rows, wide=wide,
                 title=f"{acc.duts[0]}: {name} ({acc.rule.rule} rule"
                 + (f", {acc.spec.name})" if acc.spec.name else ")"), title_justify="left")
+
+
+def _flagged_note(acc, i) -> str:
+    """' (flagged: knee, outlier)' when a flag turned a pass into inconclusive, else ''."""
+    if not acc.capped[i]:
+        return ""
+    return f" (flagged: {', '.join(acc.warning_codes.get(int(i), ()))})"
 
 
 def _rank(decision):

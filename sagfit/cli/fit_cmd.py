@@ -199,11 +199,10 @@ def fit_document(fits, readings, settings) -> dict:
     per-DUT results are built only where they are written (``outputs.document_pieces(doc,
     fits)``, in pieces for a large batch); the terminal view does not need them."""
     from .. import __version__
-    from ..core.safety import fit_cautions
-
-    from ..core.traceability import traceability_record
-
+    from ..core.analysis import type_a_note
     from ..core.extrapolation import REACHED, extrapolated_isc_pmax
+    from ..core.safety import fit_cautions
+    from ..core.traceability import traceability_record
 
     trace = traceability_record(settings.get("instruments", ()), readings.meta)
     ex_isc, ex_pmax = extrapolated_isc_pmax(fits, readings)
@@ -217,6 +216,8 @@ def fit_document(fits, readings, settings) -> dict:
         "settings": settings_record(settings),
         "traceability": trace,
         "warnings": trace["warnings"],
+        # once per run: what a fit without stated uncertainties means (None otherwise)
+        "note": type_a_note(fits),
         "results": [],
         # Isc and Pmax read off the line beyond the tested currents, by DUT
         "extrapolated": {"isc": [d for d, x in zip(fits.duts, ex_isc) if x],

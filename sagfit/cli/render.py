@@ -160,6 +160,8 @@ def print_fits(fits, readings, doc, *, verbose: bool = False, quiet: bool = Fals
                           f"{format_value(float(np.median(fits.rth[ok])), 'Ω', 4)}.")
         console.print(f"Uncertainties are standard uncertainties; intervals at {lvl} are in "
                       "--json and --out.")
+    if doc.get("note"):
+        console.print(f"note: {doc['note']}", markup=False)
     _print_flags(console, fits, verbose)
     errors = [(fits.duts[i], fits.error[i]) for i in np.flatnonzero(~fits.ok).tolist()]
     for d, e in errors[:MAX_TABLE_ROWS]:
@@ -230,6 +232,8 @@ def _print_flags(console, fits, verbose):
                       markup=True)
 
     def shows(f):
+        if f.code == "type-a":  # said once for the run (the note above the flags)
+            return False
         return not (f.severity == "info" and not verbose and len(fits) > 1)
 
     # only DUTs whose flag tuple holds something to show (a vector scan, not a loop)

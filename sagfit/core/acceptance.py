@@ -173,7 +173,8 @@ class DecisionRule:
         Guard band as a multiple r of U (w = r·U) for the ``guarded`` rule; 1 by default.
     cap_flagged : bool
         A DUT with a warning flag (curvature, knee, non-convergence …) is at best
-        inconclusive (default).
+        inconclusive (default). A warning from a significance test counts only when it
+        holds over all the tests its DUT ran (:func:`family_p`).
     ignore_flags : tuple of str
         Warning codes that do not cap the decision.
     """
@@ -460,7 +461,8 @@ class Acceptance:
         of its checks, capped at INCONCLUSIVE for a flagged DUT when the rule says so.
     checks : tuple of CheckResult
     flagged : ndarray of bool
-        The DUT carries a warning flag that counts (see ``DecisionRule.ignore_flags``).
+        The DUT carries a warning flag that counts (see ``DecisionRule.ignore_flags`` and
+        :func:`family_p`).
     capped : ndarray of bool
         The flag turned what would have been a pass into inconclusive.
     warning_codes : mapping of int → tuple of str
@@ -583,14 +585,59 @@ class Acceptance:
         return out
 
 
+#: Flag codes that come from a significance test, with the diagnostics column of its
+#: p-value and the column whose finite value says the test ran for the DUT.
+TESTED_FLAGS = {"curvature": ("curvature", "p_value", "level"),
+                "knee": ("knee", "p_value", "level"),
+                "pattern": ("pattern", "p_value", "level"),
+                "drift": ("drift", "p_value", "level"),
+                "lack-of-fit": ("lack_of_fit", "p_value", "p_value"),
+                "outlier": ("outlier", "p_value", "p_value"),
+                "negative-resistance": ("slope", "p_negative", "p_negative")}
+
+
+def family_p(fits: Fits) -> dict[str, np.ndarray]:
+    """Each tested flag's p-value multiplied by the number of tests its DUT ran
+    (Bonferroni over the checks of one DUT, capped at 1; NaN where the test did not run).
+
+    Each check holds its own false-alarm rate at the level, so a linear DUT that runs k
+    of them collects some warning by chance with a probability up to k times the level.
+    A decision about the unit counts a tested warning only when it holds with all k
+    counted: min(1, k·p) below the level. Then a good unit is held inconclusive by
+    chance with a probability of at most the level (Bonferroni's inequality; e.g.
+    R. G. Miller, *Simultaneous Statistical Inference*, 2nd ed., 1981, ch. 1)."""
+    d = fits.diagnostics
+    m = len(fits)
+    cols = {}
+    for code, (name, p_key, ran_key) in TESTED_FLAGS.items():
+        block = d.get(name, {})
+        if p_key in block and ran_key in block:
+            ran = np.isfinite(np.asarray(block[ran_key], float))
+            cols[code] = np.where(ran, np.asarray(block[p_key], float), np.nan)
+    k = np.zeros(m)
+    for p in cols.values():
+        k += np.isfinite(p)
+    return {code: np.minimum(1.0, p * k) for code, p in cols.items()}
+
+
 def _warnings(fits: Fits, ignore: tuple[str, ...]):
-    """Indices and codes of DUTs with counting warning flags (loops only flagged DUTs)."""
+    """Indices and codes of DUTs with counting warning flags (loops only flagged DUTs):
+    every warning, except a tested one that does not hold over all the DUT's tests
+    (:func:`family_p`)."""
     m = len(fits)
     has = np.fromiter(map(bool, fits.flags), dtype=bool, count=m)
     codes: dict[int, tuple] = {}
+    level = float(fits.settings.get("level", 0.01))
+    fam = family_p(fits) if has.any() else {}
+
+    def counts(f, i):
+        if f.severity != "warning" or f.code in ignore:
+            return False
+        p = fam.get(f.code)
+        return p is None or not (p[i] >= level)  # untested, or NaN p: the flag counts
+
     for i in np.flatnonzero(has):
-        w = tuple(f.code for f in fits.flags[i] if f.severity == "warning"
-                  and f.code not in ignore)
+        w = tuple(f.code for f in fits.flags[i] if counts(f, i))
         if w:
             codes[int(i)] = w
     flagged = np.zeros(m, dtype=bool)

@@ -12,7 +12,7 @@ import math
 import numpy as np
 
 from ._parallel import WORKERS, map_parallel
-from .diagnostics import diagnose, knee_rows
+from .checks import diagnose, knee_rows
 from .errors import InputError
 from .fit import chi2_upper, fit_lines, segment_scope
 from .formatting import format_value
@@ -20,7 +20,7 @@ from .predict import prediction_fields
 from .readings import Readings
 from .results import Fits, Flag
 
-__all__ = ["fit"]
+__all__ = ["fit", "type_a_note"]
 
 #: Huber's tuning constant (95 % efficiency at the normal distribution): P. J. Huber,
 #: E. M. Ronchetti, *Robust Statistics*, 2nd ed. (2009), ch. 4 (value from memory: 1.345).
@@ -56,7 +56,7 @@ def fit(readings: Readings, *, confidence: float = 0.95, level: float = 0.01,
     -------
     Fits
         Columnar results; ``fits["U17"]`` gives one DUT's :class:`FitResult`. Every DUT
-        carries the checks of :mod:`sagfit.diagnostics` in ``diagnostics`` and ``flags``;
+        carries the checks of :mod:`sagfit.core.checks` in ``diagnostics`` and ``flags``;
         ``settings`` records the options used.
 
     See :func:`sagfit.fit.fit_lines` for the method and its references.
@@ -326,3 +326,36 @@ def _mad_scale(z, g, m):
     return np.where(s > 0, s, 1.0)
 
 
+
+
+def type_a_note(fits: Fits) -> str | None:
+    """One plain paragraph for a run in which some fitted DUTs had no stated uncertainty
+    (method ``ols``): what a Type A result means and how to state the meters; ``None``
+    when every fitted DUT had stated uncertainties.
+
+    Said once per run (terminal, JSON ``note``, HTML report) instead of once per DUT.
+    The coverage factor quoted is Student's t at the run's confidence level for the
+    fewest degrees of freedom among those DUTs (JCGM 100:2008, G.3)."""
+    from scipy import special
+
+    ols = fits.ok & (np.asarray(fits.method) == "ols")
+    if not ols.any():
+        return None
+    dof = np.asarray(fits.dof)[ols]
+    lo, hi = int(dof.min()), int(dof.max())
+    conf = float(fits.confidence)
+    k = float(special.stdtrit(max(lo, 1), 0.5 + conf / 2))
+    who = ("this DUT" if len(fits) == 1 else
+           f"all {len(fits)} DUTs" if ols.all() else f"{int(ols.sum())} of {len(fits)} DUTs")
+    dofs = f"{lo}" if lo == hi else f"{lo} to {hi}"
+    z = float(special.ndtri(0.5 + conf / 2))
+    few = (f"; with {'so few' if lo < 10 else lo}{' at the fewest' if lo != hi else ''}, "
+           f"the {100 * conf:g} % interval spans ±{k:.3g} standard uncertainties (±{z:.3g} "
+           "when the uncertainty is known)")
+    return (f"No measurement uncertainty was stated for {who}, so the uncertainties and "
+            "intervals come from the scatter of the readings about each line alone (Type "
+            f"A), with n − 2 = {dofs} degrees of freedom{few}. The meters' calibration "
+            "errors, which the scatter cannot show, are not in them, and the checks judge "
+            "each line by its own scatter. To state the meters, give a bench profile "
+            "(--bench bench.toml) or the specs on the command line (--voltage-accuracy "
+            "'0.015%+2mV', with --current-accuracy or --load-tolerance).")

@@ -140,7 +140,7 @@ def _warned(fits) -> np.ndarray:
 
 
 def _flag_codes(fits, i) -> str:
-    return ", ".join(f.code for f in fits.flags[i])
+    return ", ".join(f.code for f in fits.flags[i] if f.code != "type-a")
 
 
 def _section_duts(fits, figures: str) -> tuple[np.ndarray, int, str]:
@@ -239,6 +239,15 @@ def _cautions_box(fits, readings) -> str:
             else "Cautions")
     return (f'<div class="box" role="note"><h2>{_e(head)}</h2><ul>{items}</ul>'
             f"<p>{_e(DEFERRAL)}</p></div>")
+
+
+def _note_box(doc: Mapping) -> str:
+    """The run's note (no uncertainty stated: what that means), once, or nothing."""
+    note = doc.get("note")
+    if not note:
+        return ""
+    return (f'<div class="box" role="note" id="type-a-note"><h2>No uncertainty stated</h2>'
+            f"<p>{_e(note)}</p></div>")
 
 
 def _traceability(settings: Mapping, doc: Mapping, readings) -> tuple[str, list[str]]:
@@ -479,9 +488,10 @@ def _dut_section(readings, fits, bud, i: int, anchor: str, png_sink, used=None) 
         parts.append(f"<p>Method {_e(fi.method)}, n = {fi.n} readings, χ² = {fi.chi2:.4g} "
                      f"with ν = {fi.dof}, p = {_e(p)}, correlation of Vth and Rth "
                      f"{fi.corr_vth_rth:.3f}, covariance scale S² = {fi.scale:.3g}.</p>")
-    if fi.flags:
+    shown = [f for f in fi.flags if f.code != "type-a"]  # the page's note says it once
+    if shown:
         items = "".join(f'<li class="{_e(f.severity)}"><strong>{_e(f.code)}</strong>: '
-                        f"{_e(f.message)}</li>" for f in fi.flags)
+                        f"{_e(f.message)}</li>" for f in shown)
         parts.append(f'<ul class="flags">{items}</ul>')
     parts.append(_diagnostics_rows(fi.diagnostics))
     figs = [("fit", plots.fit_figure, "Terminal voltage against load current: readings with "
@@ -614,6 +624,7 @@ def build_html(fits, readings, doc: Mapping, settings: Mapping, *, figures: str 
 {_kv(head)}
 </header>
 {_cautions_box(fits, readings)}
+{_note_box(doc)}
 <h2>Settings used</h2>
 {_kv(_settings_rows(srec))}
 <h2>Traceability</h2>
