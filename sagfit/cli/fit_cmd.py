@@ -7,8 +7,8 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
+                     DutOpt, IndependentOpt, SheetOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
                      VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_document)
@@ -18,9 +18,11 @@ MAX_TABLE_ROWS = 40
 
 @app.command("fit")
 def fit_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV (see docs/input-format.md), or a "
-                                            "folder or glob of Parquet/CSV files: a data set "
-                                            "fitted on Dask (docs/cluster.md).")],
+    file: Annotated[str, typer.Argument(help="Readings file: CSV, Parquet, Excel or "
+                                            "OpenDocument (see docs/input-format.md); '-' "
+                                            "for standard input; or a folder or glob of "
+                                            "Parquet/CSV files: a data set fitted on Dask "
+                                            "(docs/cluster.md).")],
     dut: DutOpt = None,
     confidence: ConfidenceOpt = None,
     voltage_accuracy: VoltageAccOpt = None,
@@ -30,6 +32,8 @@ def fit_command(
     current_noise: CurrentNoiseOpt = None,
     independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
+    columns: ColumnsOpt = None,
+    sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the results to this .csv or .json file.")] = None,
@@ -65,7 +69,8 @@ def fit_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                columns=columns, sheet=sheet)
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
@@ -76,7 +81,9 @@ def fit_command(
 
             refuse_single_file_options({"--dut": dut, "--current-range": current_range,
                                         "--below-knee": below_knee, "--robust": robust,
-                                        "--report": report, "--verbose": verbose})
+                                        "--report": report, "--verbose": verbose,
+                                        "--columns (or the bench profile's [columns])":
+                                            settings["columns"], "--sheet": sheet})
             code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
             raise typer.Exit(code)
         if report:

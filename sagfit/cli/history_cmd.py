@@ -9,8 +9,8 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
+from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
+                     DutOpt, IndependentOpt, SheetOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
                      VoltageNoiseOpt, fit_settings, guarded, interactive, load_readings,
                      progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
@@ -24,7 +24,9 @@ DbOpt = Annotated[str, typer.Option(
 
 @app.command("record")
 def record_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV of one test date.")],
+    file: Annotated[str, typer.Argument(help="Readings file of one test date (CSV, Parquet, "
+                                            "Excel or OpenDocument; '-' for standard "
+                                            "input).")],
     date: Annotated[Optional[str], typer.Option(
         "--date", help="Test date YYYY-MM-DD [default: the time column, else the file's "
                        "'# date:' comment].")] = None,
@@ -40,6 +42,8 @@ def record_command(
     current_noise: CurrentNoiseOpt = None,
     independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
+    columns: ColumnsOpt = None,
+    sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -55,7 +59,8 @@ def record_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                columns=columns, sheet=sheet)
         with progress("reading " + file, show_progress(file, json_out), total=2) as step:
             readings = load_readings(file, settings, None)
             labels = dict(zip(readings.duts, dut_group_labels(readings)))
