@@ -45,7 +45,7 @@ def accept_command(
     sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="Also write the decisions to this .csv or .json file.")] = None,
+        "--out", help="Also write the decisions to this .csv, .parquet or .json file.")] = None,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
                          "folder.")] = None,
@@ -100,6 +100,10 @@ def accept_command(
 
             if out.lower().endswith(".json"):
                 atomic_write(out, document_pieces(doc, acc), inputs=inputs)
+            elif out.lower().endswith(".parquet"):
+                from ..report.accept_report import acceptance_parquet
+
+                atomic_write(out, acceptance_parquet(acc), inputs=inputs)
             else:
                 atomic_write(out, acceptance_csv(acc), inputs=inputs)
         if report:

@@ -181,14 +181,15 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
 
 
 def check_out_option(out: str | None, inputs) -> None:
-    """``--out``: a .csv or .json file name in an existing folder, never an input file."""
+    """``--out``: a .csv, .parquet or .json file name in an existing folder, never an
+    input file."""
     if not out:
         return
     from ..io.outputs import check_output_path
 
     check_output_path(out, inputs)
-    if not out.lower().endswith((".csv", ".json")):
-        raise OptionError("--out", f"{out}: use a .csv or .json file name")
+    if not out.lower().endswith((".csv", ".json", ".parquet")):
+        raise OptionError("--out", f"{out}: use a .csv, .parquet or .json file name")
 
 
 def require_some_fit(file: str, fits) -> None:

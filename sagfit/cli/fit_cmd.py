@@ -36,7 +36,7 @@ def fit_command(
     sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="Also write the results to this .csv or .json file.")] = None,
+        "--out", help="Also write the results to this .csv, .parquet or .json file.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
     level: Annotated[float, typer.Option(
@@ -179,11 +179,15 @@ def fit_document(fits, readings, settings) -> dict:
 
 
 def write_results(out: str, fits, doc, inputs) -> None:
-    """``--out``: CSV (one row per DUT) or JSON (the same document as --json)."""
+    """``--out``: CSV or Parquet (one row per DUT) or JSON (the same document as --json)."""
     from ..io.outputs import atomic_write, document_pieces
 
     if out.lower().endswith(".json"):
         atomic_write(out, document_pieces(doc, fits), inputs=inputs)
+    elif out.lower().endswith(".parquet"):
+        from ..io.results_csv import fits_parquet
+
+        atomic_write(out, fits_parquet(fits), inputs=inputs)
     else:
         from ..io.readings_csv import fits_csv
 
