@@ -126,10 +126,11 @@ def numbers(col, scale: float, where: Where, header: str, decimal: str = ".") ->
     return a * scale if scale != 1.0 else a
 
 
-def codes_and_texts(col, in_order: bool = False) -> tuple[np.ndarray, list[str]]:
+def codes_and_texts(col, in_order: bool = False, as_arrow: bool = False):
     """Codes (−1 for an empty cell) and texts of a column of labels, numbered in order of
     first appearance (what users expect). ``in_order``: the dictionary already is (the
-    CSV reader's, built row by row)."""
+    CSV reader's, built row by row). ``as_arrow``: the texts as an Arrow array where they
+    need no renumbering (a list otherwise)."""
     pa, pc = _pa()
     col = _one_chunk(col)
     if not pa.types.is_dictionary(col.type):
@@ -140,6 +141,8 @@ def codes_and_texts(col, in_order: bool = False) -> tuple[np.ndarray, list[str]]
         col = pc.dictionary_encode(_as_text(col))
         in_order = True
     codes = pc.fill_null(col.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+    if in_order and as_arrow:
+        return codes, col.dictionary
     texts = col.dictionary.to_pylist()
     if not in_order and codes.size and not _in_order(codes, len(texts)):
         seen = codes[codes >= 0]
@@ -161,14 +164,16 @@ def _in_order(codes: np.ndarray, m: int) -> bool:
     return int(top[-1]) == m - 1 and bool((np.diff(top) <= 1).all())
 
 
-def _strip_merge(codes: np.ndarray, texts: list[str]) -> tuple[np.ndarray, list[str]]:
-    """' A' and 'A' are one label (spreadsheet exports pad cells; common practice)."""
+def _strip_merge(codes: np.ndarray, texts) -> tuple[np.ndarray, list[str]]:
+    """' A' and 'A' are one label (spreadsheet exports pad cells; common practice).
+    ``texts``: a list, or the Arrow array of the dictionary (checked without leaving
+    Arrow in the usual case of ids without outer blanks)."""
     pa, pc = _pa()
-    arr = pa.array(texts, type=pa.string())
+    arr = texts if isinstance(texts, pa.Array) else pa.array(texts, type=pa.string())
     if pc.all(pc.equal(pc.utf8_trim_whitespace(arr), arr)).as_py() in (True, None):
-        return codes, texts
+        return codes, arr.to_pylist() if isinstance(texts, pa.Array) else texts
     index: dict[str, int] = {}
-    new = np.array([index.setdefault(t.strip(), len(index)) for t in texts] + [-1],
+    new = np.array([index.setdefault(t.strip(), len(index)) for t in arr.to_pylist()] + [-1],
                    dtype=np.int64)
     return new[codes], list(index)
 
@@ -266,7 +271,7 @@ def readings_from_columns(
         kwargs["time"] = times(columns["time"], c.scale, where, c.header)
     n = where.lines.size
     if "dut" in roles:
-        codes, texts = _strip_merge(*codes_and_texts(columns["dut"], ids_in_order))
+        codes, texts = _strip_merge(*codes_and_texts(columns["dut"], ids_in_order, True))
         if (codes < 0).any():
             raise where.error("empty DUT id", _first(codes < 0), roles["dut"].header)
         kwargs["group"], kwargs["duts"] = codes, texts
