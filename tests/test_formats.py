@@ -186,3 +186,40 @@ class TestWorkbooks:
         assert "sheet Log, row 1" in str(e.value)
         r = sagfit.read_readings(p, columns="current=I_meas (A)")
         assert r.current.tolist() == pytest.approx([0.001, 0.998, 2.004])
+
+
+class TestParquetSet:
+    """A folder or glob of Parquet files read in one process (``read_readings``,
+    ``sagfit record``): one table in file-name order, errors naming file and row."""
+
+    @staticmethod
+    def write_set(folder, bad=None):
+        folder.mkdir()
+        pq.write_table(pa.table({"dut": ["A1"] * 3, "load": ["open", "10", "4.7"],
+                                 "voltage": [12.7, 12.6, 12.5]}), folder / "part-1.parquet")
+        pq.write_table(pa.table({"dut": ["B2", "B2", "A1"], "load": ["open", "10", bad or "2.2"],
+                                 "voltage": [12.66, 12.55, 12.31]}), folder / "part-2.parquet")
+        return folder
+
+    def test_folder_and_glob(self, tmp_path):
+        folder = self.write_set(tmp_path / "set")
+        for src in (folder, folder / "*.parquet"):
+            r = sagfit.read_readings(src)
+            assert r.duts == ("A1", "B2") and r.counts().tolist() == [4, 2]
+            assert len(r.meta["files"]) == 2
+
+    @pytest.mark.parametrize("bad,words", [("x", "cannot read 'x'"), ("-3", "negative load")])
+    def test_error_names_the_file_and_its_row(self, tmp_path, bad, words):
+        folder = self.write_set(tmp_path / "set", bad=bad)
+        with pytest.raises(ReadingsFileError, match=words) as e:
+            sagfit.read_readings(folder)
+        assert e.value.path.endswith("part-2.parquet") and e.value.line == 3
+        assert ", row 3, column load" in str(e.value)
+
+    def test_record_reads_a_folder(self, tmp_path, cli):
+        folder = self.write_set(tmp_path / "set")
+        run = cli("record", folder, "--db", tmp_path / "h.sqlite", "--date", "2026-11-03",
+                  "--json")
+        assert run.code == 3, run.err  # B2 has two readings: too few to fit without u
+        doc = json.loads(run.out)
+        assert doc["recorded"] == ["A1"] and doc["not_fitted"][0]["dut"] == "B2"

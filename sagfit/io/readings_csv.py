@@ -66,8 +66,9 @@ def read_readings(
     Parameters
     ----------
     source : path-like, file object, pandas DataFrame or pyarrow Table
-        A CSV file (see docs/input-format.md), a Parquet file (``.parquet``), an Excel or
-        OpenDocument workbook (``.xlsx``, ``.ods``); ``"-"`` for standard input; an open
+        A CSV file (see docs/input-format.md), a Parquet file (``.parquet``) or a folder
+        or glob of them (read as one table, in name order), an Excel or OpenDocument
+        workbook (``.xlsx``, ``.ods``); ``"-"`` for standard input; an open
         file or ``io.StringIO`` / ``io.BytesIO`` (CSV, Parquet or a workbook, told apart
         by their content); a DataFrame or Arrow table with the same columns.
     voltage_accuracy, current_accuracy : Accuracy, optional
@@ -108,6 +109,12 @@ def read_readings(
         return _from_bytes(data, "<stdin>", None, limit, sheet, opts)
     p = Path(name)
     suffix = p.suffix.lower()
+    from .dataset import is_dataset
+
+    if is_dataset(name):
+        from .readings_parquet import read_parquet_set
+
+        return read_parquet_set(name, limit=limit, **opts)
     if suffix in _PARQUET:
         from .readings_parquet import read_parquet
 

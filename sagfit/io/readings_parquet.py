@@ -19,7 +19,7 @@ from ..core.readings import Readings
 from .columns import assign_roles, units_row_names
 from .readings_table import Where, readings_from_columns
 
-__all__ = ["read_parquet", "table_readings", "arrow_readings"]
+__all__ = ["read_parquet", "read_parquet_set", "table_readings", "arrow_readings"]
 
 
 def read_parquet(name: str, *, data: bytes | None = None, limit: int | None = None,
@@ -43,6 +43,62 @@ def read_parquet(name: str, *, data: bytes | None = None, limit: int | None = No
     meta = {"sha256": hashlib.sha256(data).hexdigest(), "format": "parquet"}
     return arrow_readings(table, name, stem=Path(name).stem, meta=meta, columns=columns,
                           **accuracies)
+
+
+def read_parquet_set(path: str, *, limit: int | None = None,
+                     columns: Mapping[str, str] | None = None, **accuracies) -> Readings:
+    """A folder or glob of Parquet files, read as one table in name order (the order of
+    ``sagfit fit`` on a data set); errors name the file and its row."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from .dataset import dataset_files
+    from .readings_table import FilesWhere
+
+    files = dataset_files(path)
+    if Path(files[0]).suffix.lower() not in (".parquet", ".pq"):
+        raise ReadingsFileError(path, "a folder or glob of CSV files is a data set for "
+                                      "`sagfit fit` and `sagfit accept`; read one CSV file "
+                                      "at a time here, or store the set as Parquet")
+    tables, digest, total = [], hashlib.sha256(), 0
+    for f in files:
+        try:
+            size = Path(f).stat().st_size
+            total += size
+            if limit is not None and total > limit:
+                raise ReadingsFileError(path, f"the files add up to more than "
+                                              f"{limit / 1e6:.1f} MB (set SAGFIT_MAX_BYTES "
+                                              "to raise the limit)")
+            data = Path(f).read_bytes()
+            tables.append(pq.read_table(pa.BufferReader(data)))
+        except (pa.ArrowException, OSError, ValueError) as exc:
+            raise ReadingsFileError(f, f"not a readable Parquet file ({_short(exc)})") from None
+        digest.update(data)
+    names = [str(c) for c in tables[0].column_names]
+    roles, ignored = assign_roles(names, files[0], mapping=columns, place="row")
+    wanted = [c.header for c in roles.values()]
+    parts = []
+    for f, t in zip(files, tables):
+        missing = [h for h in wanted if h not in t.column_names]
+        if missing:
+            raise ReadingsFileError(f, f"no column {missing[0]!r} (the first file, "
+                                       f"{files[0]}, has it)", place="row")
+        parts.append(t.select(wanted))
+    try:
+        table = pa.concat_tables(parts, promote_options="permissive")
+    except TypeError:  # pyarrow < 14 spells it promote=True
+        table = pa.concat_tables(parts, promote=True)
+    except pa.ArrowException as exc:
+        raise ReadingsFileError(path, f"the files' columns do not agree ({_short(exc)})"
+                                ) from None
+    if table.num_rows == 0:
+        raise ReadingsFileError(path, "no readings in these files")
+    offsets = np.cumsum([0] + [t.num_rows for t in tables])
+    cols = {role: table.column(k) for k, role in enumerate(roles)}
+    meta = {"sha256": digest.hexdigest(), "format": "parquet", "files": files,
+            "ignored_columns": ignored}
+    return readings_from_columns(cols, roles, FilesWhere(files, offsets), meta=meta,
+                                 stem=Path(path).stem, **accuracies)
 
 
 def table_readings(table, name: str, *, columns: Mapping[str, str] | None = None,

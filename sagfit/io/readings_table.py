@@ -27,7 +27,7 @@ from ..core.readings import Readings
 from ..core.units import parse_resistance
 from .columns import ColumnRole
 
-__all__ = ["readings_from_columns", "Where"]
+__all__ = ["readings_from_columns", "Where", "FilesWhere"]
 
 #: a decimal number as written in a readings cell (after trimming), or a spelling of
 #: infinity or not-a-number (these reach the readings' own checks, which name them)
@@ -54,6 +54,38 @@ class Where:
         line = None if k is None else int(self.lines[k])
         return ReadingsFileError(self.source, message, line=line, column=column,
                                  sheet=self.sheet, place=self.place)
+
+    def relocate(self, exc: ReadingsFileError) -> ReadingsFileError:
+        """An error of the readings' own checks (which know the line) placed as here."""
+        return ReadingsFileError(exc.path, exc.detail, exc.line, exc.column, sheet=self.sheet,
+                                 place=self.place)
+
+
+class FilesWhere(Where):
+    """Where the readings of several files, read as one table, came from: reading ``k``
+    is row ``k − offsets[f] + 1`` of file ``f``."""
+
+    __slots__ = ("files", "offsets")
+
+    def __init__(self, files: list[str], offsets: np.ndarray):
+        total = int(offsets[-1])
+        super().__init__(files[0], np.arange(1, total + 1, dtype=np.int64), place="row")
+        self.files, self.offsets = files, offsets
+
+    def _place(self, k: int) -> tuple[str, int]:
+        f = int(np.searchsorted(self.offsets, k, side="right")) - 1
+        return self.files[f], k - int(self.offsets[f]) + 1
+
+    def error(self, message: str, k: int | None = None, column: str | None = None):
+        if k is None:
+            return ReadingsFileError(self.source, message, column=column, place="row")
+        path, row = self._place(k)
+        return ReadingsFileError(path, message, line=row, column=column, place="row")
+
+    def relocate(self, exc: ReadingsFileError) -> ReadingsFileError:
+        if exc.line is None:
+            return exc
+        return self.error(exc.detail, int(exc.line) - 1, exc.column)
 
 
 def _pa():
@@ -292,5 +324,4 @@ def readings_from_columns(
     except ReadingsFileError as exc:
         if where.sheet is None and where.place == "line":
             raise
-        raise ReadingsFileError(exc.path, exc.detail, exc.line, exc.column, sheet=where.sheet,
-                                place=where.place) from None
+        raise where.relocate(exc) from None
