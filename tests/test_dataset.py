@@ -70,7 +70,7 @@ def client():
     from distributed import Client, LocalCluster
 
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                      dashboard_address=None, silence_logs=logging.ERROR) as cluster, \
+                      dashboard_address=":0", silence_logs=logging.ERROR) as cluster, \
             Client(cluster) as c:
         yield c
 

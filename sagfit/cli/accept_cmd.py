@@ -12,8 +12,9 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt, WideOpt,
+from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
+                     DutOpt, IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, SheetOpt,
+                     VerboseOpt, VoltageAccOpt, WideOpt,
                      VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, settings_record, show_progress, write_document)
 
@@ -22,7 +23,9 @@ MAX_TABLE_ROWS = 40
 
 @app.command("accept")
 def accept_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV, one load sweep per DUT; or a "
+    file: Annotated[str, typer.Argument(help="Readings file (CSV, Parquet, Excel, "
+                                            "OpenDocument; '-' for standard input), one "
+                                            "load sweep per DUT; or a "
                                             "folder or glob of Parquet/CSV files (a data set, "
                                             "on Dask: docs/cluster.md).")],
     spec: Annotated[str, typer.Option("--spec", help="Acceptance spec (TOML, see "
@@ -39,9 +42,11 @@ def accept_command(
     current_noise: CurrentNoiseOpt = None,
     independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
+    columns: ColumnsOpt = None,
+    sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="Also write the decisions to this .csv or .json file.")] = None,
+        "--out", help="Also write the decisions to this .csv, .parquet or .json file.")] = None,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
                          "folder.")] = None,
@@ -71,13 +76,16 @@ def accept_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                columns=columns, sheet=sheet)
         from ..io.dataset import is_dataset
 
         if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
             from .dataset_run import refuse_single_file_options, run_dataset_fit
 
-            refuse_single_file_options({"--dut": dut, "--report": report, "--verbose": verbose})
+            refuse_single_file_options({"--dut": dut, "--report": report, "--verbose": verbose,
+                                        "--columns (or the bench profile's [columns])":
+                                            settings["columns"], "--sheet": sheet})
             raise typer.Exit(run_dataset_fit(file, settings, 0.01, out, json_out, scheduler,
                                              workers, spec=the_spec, rule=rule))
         check_out_option(out, inputs)
@@ -94,6 +102,10 @@ def accept_command(
 
             if out.lower().endswith(".json"):
                 atomic_write(out, document_pieces(doc, acc), inputs=inputs)
+            elif out.lower().endswith(".parquet"):
+                from ..report.accept_report import acceptance_parquet
+
+                atomic_write(out, acceptance_parquet(acc), inputs=inputs)
             else:
                 atomic_write(out, acceptance_csv(acc), inputs=inputs)
         if report:

@@ -37,6 +37,13 @@ IndependentOpt = Annotated[bool, typer.Option(
                                  "instead of one gain and one offset error per sweep.")]
 BenchOpt = Annotated[Optional[str], typer.Option(
     "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
+ColumnsOpt = Annotated[Optional[str], typer.Option(
+    "--columns", help="Which column is which, where the headers do not say: ROLE=COLUMN "
+                      "pairs, e.g. 'voltage=V (V),current=I_meas (A)'. Roles: dut, load, "
+                      "voltage, current, u_voltage, u_current, u_load, load_tolerance, time, "
+                      "group, temperature. A unit may follow the column: 'voltage=Ch1 [mV]'.")]
+SheetOpt = Annotated[Optional[str], typer.Option(
+    "--sheet", help="The sheet of an Excel or OpenDocument workbook [default: the first].")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document to stdout.")]
 QuietOpt = Annotated[bool, typer.Option(
     "--quiet", "-q", help="Routine run: leave out the safety cautions in the terminal "
@@ -79,13 +86,13 @@ def guarded(source: str = "") -> Iterator[None]:
 
 def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=None,
                  bench=None, confidence=None, *, voltage_noise=None, current_noise=None,
-                 independent_errors=False) -> dict:
+                 independent_errors=False, columns=None, sheet=None) -> dict:
     """Merge the command-line options over a bench profile into fit settings."""
     from ..core.units import parse_accuracy, parse_percent
 
     settings: dict = {"voltage_accuracy": None, "current_accuracy": None,
                       "load_tolerance": None, "confidence": 0.95, "instruments": (),
-                      "bench": None}
+                      "bench": None, "columns": {}, "sheet": sheet}
     if bench:
         from ..io.bench import read_bench
 
@@ -93,7 +100,7 @@ def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=No
         settings.update(voltage_accuracy=prof.voltage_accuracy,
                         current_accuracy=prof.current_accuracy,
                         load_tolerance=prof.load_tolerance, instruments=prof.instruments,
-                        bench=bench)
+                        bench=bench, columns=dict(prof.columns))
         if prof.confidence is not None:
             settings["confidence"] = prof.confidence
     try:
@@ -120,6 +127,13 @@ def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=No
         except InputError as exc:
             raise OptionError(opt, str(exc).split(": ", 1)[-1]) from None
         settings[key] = settings[key].with_noise(noise)
+    if columns is not None:
+        from ..io.columns import parse_column_mapping
+
+        try:  # the option's roles over the bench profile's
+            settings["columns"] = {**settings["columns"], **parse_column_mapping(columns)}
+        except InputError as exc:
+            raise OptionError("--columns", str(exc).split(": ", 1)[-1]) from None
     if independent_errors:
         for key in ("voltage_accuracy", "current_accuracy"):
             if settings[key] is not None:
@@ -146,11 +160,13 @@ def settings_record(settings: dict) -> dict:
             "current_accuracy": acc(settings["current_accuracy"]),
             "load_tolerance_pct": settings["load_tolerance"],
             "bench": settings.get("bench"),
+            "columns": dict(settings.get("columns") or {}),
             "instruments": [i.to_dict() for i in settings.get("instruments", ())]}
 
 
 def load_readings(file: str, settings: dict, dut: str | None = None):
-    """Read a readings file with the settings, optionally keeping some DUTs.
+    """Read a readings file (``-``: standard input) with the settings, optionally keeping
+    some DUTs.
 
     ``settings["instruments"]`` is narrowed to the instruments the readings used."""
     from ..core._parallel import gc_paused
@@ -160,7 +176,9 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
     with gc_paused():
         readings = read_readings(file, voltage_accuracy=settings["voltage_accuracy"],
                                  current_accuracy=settings["current_accuracy"],
-                                 load_tolerance=settings["load_tolerance"])
+                                 load_tolerance=settings["load_tolerance"],
+                                 columns=settings.get("columns") or None,
+                                 sheet=settings.get("sheet"))
         if dut:
             names = [d.strip() for d in dut.split(",") if d.strip()]
             readings = readings.only_duts(names)
@@ -177,14 +195,15 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
 
 
 def check_out_option(out: str | None, inputs) -> None:
-    """``--out``: a .csv or .json file name in an existing folder, never an input file."""
+    """``--out``: a .csv, .parquet or .json file name in an existing folder, never an
+    input file."""
     if not out:
         return
     from ..io.outputs import check_output_path
 
     check_output_path(out, inputs)
-    if not out.lower().endswith((".csv", ".json")):
-        raise OptionError("--out", f"{out}: use a .csv or .json file name")
+    if not out.lower().endswith((".csv", ".json", ".parquet")):
+        raise OptionError("--out", f"{out}: use a .csv, .parquet or .json file name")
 
 
 def require_some_fit(file: str, fits) -> None:

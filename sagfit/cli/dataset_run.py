@@ -38,8 +38,10 @@ def _cluster(scheduler: str | None, workers: int | None):
     n = workers or max(1, min(4, os.cpu_count() or 1))
     if n < 1:
         raise OptionError("--workers", "must be at least 1")
+    # a free port for the HTTP server: the default 8787 may belong to another cluster on
+    # the machine (and dashboard_address=None still binds it, for the /metrics route)
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=None, silence_logs=logging.CRITICAL)
+                           dashboard_address=":0", silence_logs=logging.CRITICAL)
     return cluster, Client(cluster)
 
 

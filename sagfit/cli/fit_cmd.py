@@ -7,8 +7,9 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt, WideOpt,
+from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
+                     DutOpt, IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, SheetOpt,
+                     VerboseOpt, VoltageAccOpt, WideOpt,
                      VoltageNoiseOpt, check_out_option, fit_settings, guarded,
                      load_readings, progress, require_some_fit, settings_record, show_progress,
                      write_document)
@@ -18,9 +19,11 @@ MAX_TABLE_ROWS = 40
 
 @app.command("fit")
 def fit_command(
-    file: Annotated[str, typer.Argument(help="Readings CSV (see docs/input-format.md), or a "
-                                            "folder or glob of Parquet/CSV files: a data set "
-                                            "fitted on Dask (docs/cluster.md).")],
+    file: Annotated[str, typer.Argument(help="Readings file: CSV, Parquet, Excel or "
+                                            "OpenDocument (see docs/input-format.md); '-' "
+                                            "for standard input; or a folder or glob of "
+                                            "Parquet/CSV files: a data set fitted on Dask "
+                                            "(docs/cluster.md).")],
     dut: DutOpt = None,
     confidence: ConfidenceOpt = None,
     voltage_accuracy: VoltageAccOpt = None,
@@ -30,9 +33,11 @@ def fit_command(
     current_noise: CurrentNoiseOpt = None,
     independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
+    columns: ColumnsOpt = None,
+    sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="Also write the results to this .csv or .json file.")] = None,
+        "--out", help="Also write the results to this .csv, .parquet or .json file.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
     wide: WideOpt = False,
@@ -71,7 +76,8 @@ def fit_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                columns=columns, sheet=sheet)
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
@@ -83,7 +89,9 @@ def fit_command(
             refuse_single_file_options({"--dut": dut, "--current-range": current_range,
                                         "--below-knee": below_knee, "--robust": robust,
                                         "--monte-carlo": monte_carlo,
-                                        "--report": report, "--verbose": verbose})
+                                        "--report": report, "--verbose": verbose,
+                                        "--columns (or the bench profile's [columns])":
+                                            settings["columns"], "--sheet": sheet})
             code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
             raise typer.Exit(code)
         if report:
@@ -229,11 +237,15 @@ def fit_document(fits, readings, settings) -> dict:
 
 
 def write_results(out: str, fits, doc, inputs) -> None:
-    """``--out``: CSV (one row per DUT) or JSON (the same document as --json)."""
+    """``--out``: CSV or Parquet (one row per DUT) or JSON (the same document as --json)."""
     from ..io.outputs import atomic_write, document_pieces
 
     if out.lower().endswith(".json"):
         atomic_write(out, document_pieces(doc, fits), inputs=inputs)
+    elif out.lower().endswith(".parquet"):
+        from ..io.results_csv import fits_parquet
+
+        atomic_write(out, fits_parquet(fits), inputs=inputs)
     else:
         from ..io.readings_csv import fits_csv
 

@@ -9,9 +9,10 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
-                     VoltageNoiseOpt, WideOpt, fit_settings, guarded, interactive, load_readings,
+from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
+                     DutOpt, IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, SheetOpt,
+                     VoltageAccOpt, VoltageNoiseOpt, WideOpt, fit_settings, guarded,
+                     interactive, load_readings,
                      progress,
                      require_some_fit, settings_record, show_progress, write_document, write_stdout)
 
@@ -25,7 +26,8 @@ DbOpt = Annotated[str, typer.Option(
 @app.command("record")
 def record_command(
     files: Annotated[list[str], typer.Argument(
-        help="Readings CSV of one test date; several files are recorded in one run.",
+        help="Readings files of one test date each (CSV, Parquet, Excel or OpenDocument; "
+             "'-' for standard input); several files are recorded in one run.",
         metavar="FILE...")],
     date: Annotated[Optional[str], typer.Option(
         "--date", help="Test date YYYY-MM-DD [default: the time column, else the file's "
@@ -42,6 +44,8 @@ def record_command(
     current_noise: CurrentNoiseOpt = None,
     independent_errors: IndependentOpt = False,
     bench: BenchOpt = None,
+    columns: ColumnsOpt = None,
+    sheet: SheetOpt = None,
     json_out: JsonOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -59,7 +63,8 @@ def record_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                columns=columns, sheet=sheet)
     fitted = []
     for file in files:
         with guarded(file):

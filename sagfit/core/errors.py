@@ -49,17 +49,26 @@ class ReadingsFileError(InputError):
         1-based line number in the file (comment lines counted).
     column : str, optional
         The column header as written in the file.
+    sheet : str, optional
+        The sheet of a workbook (Excel, OpenDocument).
+    place : str
+        What ``line`` counts: ``"line"`` in a text file, ``"row"`` in a sheet or a
+        Parquet table.
     """
 
     def __init__(self, path: str, message: str, line: int | None = None,
-                 column: str | None = None):
+                 column: str | None = None, *, sheet: str | None = None, place: str = "line"):
         self.path = str(path)
         self.line = line
         self.column = column
         self.detail = message
+        self.sheet = sheet
+        self.place = place
         where = self.path
+        if sheet is not None:
+            where += f", sheet {sheet}"
         if line is not None:
-            where += f", line {line}"
+            where += f", {place} {line}"
         if column is not None:
             where += f", column {column}"
         super().__init__(f"{where}: {message}")

@@ -26,7 +26,7 @@ import numpy as np
 from ._frozen import freeze_arrays
 from .errors import InputError, ReadingsFileError
 from .systematic import ErrorModel
-from .units import Accuracy
+from .units import Accuracy, parse_resistance
 
 __all__ = ["Readings", "Note"]
 
@@ -220,7 +220,8 @@ class Readings:
         voltage, current, load : array_like, optional
             Terminal voltage (V), load current (A), load resistance (Ω; ``inf`` = open
             circuit, ``0`` = short). Any two are enough; with all three, V and I are used
-            and R is a cross-check.
+            and R is a cross-check. Loads may be text, read as in a readings file
+            (``"open"``, ``"4k7"``, ``"470R"``, ``"4.7k"``).
         dut : array_like of str, optional
             DUT name of each reading. Alternatively ``group`` (int codes) with ``duts``
             (names). Neither: one DUT named ``"DUT"``.
@@ -261,9 +262,11 @@ class Readings:
             raise ReadingsFileError(source, msg, line=ln,
                                     column=cols.get(fld, fld) if fld else None)
 
+        line_arr = None if line is None else _as_array(line, np.int64, copy)
+        if load is not None:
+            load = _load_ohms(load, fail)
         given = {k: v for k, v in (("voltage", voltage), ("current", current), ("load", load))
                  if v is not None}
-        line_arr = None if line is None else _as_array(line, np.int64, copy)
         if len(given) < 2:
             have = ", ".join(given) or "none"
             raise ReadingsFileError(
@@ -507,6 +510,28 @@ class Readings:
                    cov_iv=cov, load=r, time=t, line=ln, source=source,
                    current_from=current_from, voltage_from=voltage_from,
                    notes=tuple(notes), meta=dict(meta or {}), errors=errors)
+
+
+def _load_ohms(values, fail):
+    """Load resistances given as text (``"open"``, ``"4k7"``, ``"470R"``, ``"10"``) →
+    ohms, read as the readings files read them (:func:`parse_resistance`: SI prefixes,
+    IEC 60062 RKM codes, open and short); each distinct text once. Numbers pass through;
+    ``None`` becomes ``nan`` (reported as an empty load by the caller's checks)."""
+    a = np.asarray(values)
+    if a.dtype.kind not in "OUS":
+        return values
+    flat = a.ravel()
+    missing = np.zeros(flat.size, bool)
+    if a.dtype.kind == "O":
+        missing = np.frompyfunc(lambda v: v is None, 1, 1)(flat).astype(bool)
+    texts, codes = np.unique(np.where(missing, "nan", flat.astype(str)), return_inverse=True)
+    ohms = np.empty(texts.size)
+    for j, text in enumerate(texts.tolist()):
+        try:
+            ohms[j] = parse_resistance(text)
+        except ValueError as exc:
+            fail(str(exc), int(np.flatnonzero(codes.ravel() == j)[0]), "load")
+    return ohms[codes.ravel()]
 
 
 def _repeats_a_load(g: np.ndarray, r: np.ndarray) -> bool:

@@ -15,6 +15,9 @@ Edge module (reads one file). Format, in docs/input-format.md::
     tolerance = "1%"
     [fit]
     confidence = 0.95
+    [columns]                    # optional: which column is which, role = "header"
+    voltage = "V (V)"
+    current = "I_meas (A)"       # the measured current, not the set value
 """
 
 from __future__ import annotations
@@ -23,6 +26,7 @@ import datetime as _dt
 from dataclasses import dataclass, field
 
 from ..core.errors import InputError, SpecFileError
+from .columns import ROLES, check_column_mapping
 from .tomlfile import check_layout, read_toml
 from ..core.units import Accuracy, parse_accuracy, parse_percent
 
@@ -36,6 +40,7 @@ _ALLOWED = {
     "load": {"tolerance", "instrument", "calibration_due"},
     "fit": {"confidence"},
     "bench": {"name", "operator", "location", "notes"},
+    "columns": set(ROLES),
 }
 
 
@@ -61,6 +66,7 @@ class BenchProfile:
     instruments: tuple[Instrument, ...] = ()
     info: dict = field(default_factory=dict)
     path: str = ""
+    columns: dict = field(default_factory=dict)  # role -> header, the [columns] table
 
 
 def read_bench(path: str) -> BenchProfile:
@@ -133,6 +139,11 @@ def read_bench(path: str) -> BenchProfile:
             raise SpecFileError(path, "must be a number between 0 and 1, e.g. 0.95",
                                 key="fit.confidence")
         out["confidence"] = float(conf)
+    for role, header in doc.get("columns", {}).items():
+        if not isinstance(header, str) or not header.strip():
+            raise SpecFileError(path, f"write the column's header as text, e.g. {role} = "
+                                      "\"V (V)\"", key=f"columns.{role}")
+    out["columns"] = check_column_mapping(doc.get("columns", {}), what="[columns]")
     return BenchProfile(instruments=tuple(instruments), info=dict(doc.get("bench", {})), **out)
 
 

@@ -130,6 +130,19 @@ def acceptance_csv(acc) -> str:
     return ",".join(header) + "\n" + body
 
 
+def acceptance_parquet(acc) -> bytes:
+    """The columns of :func:`acceptance_table` as a Parquet file (bytes)."""
+    from ..io.readings_csv import coded
+    from ..io.results_csv import table_parquet
+
+    cols = {}
+    for name, kind, data in _columns(acc):
+        cols[name] = (np.asarray(data, float) if kind == "num" else
+                      coded(data) if kind == "word" else
+                      [None if x is None else str(x) for x in data])
+    return table_parquet(cols)
+
+
 # ---------------------------------------------------------------------- figures
 def histogram(acc, j: int):
     """Histogram of check ``j`` across the fitted DUTs, stacked by decision, with the
