@@ -13,7 +13,7 @@ import numpy as np
 
 from .formatting import format_value
 
-__all__ = ["cautions", "fit_cautions", "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
+__all__ = ["cautions", "fit_cautions", "pulse_cautions", "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
            "HIGH_CURRENT_A", "HOT_RESISTOR_W"]
 
 HAZARDOUS_V = 60.0
@@ -82,3 +82,22 @@ def fit_cautions(fits, readings, *, always: bool = False) -> list[str]:
     power = np.where(in_resistor, v * np.asarray(readings.current), np.nan)
     return cautions(vth=fits.vth, isc=prospective_isc(fits),
                     reading_power=power, voltages=v, always=always)
+
+
+def pulse_cautions(*, peak_current=None, voltages=None) -> list[str]:
+    """The cautions for current pulses on cells and packs (always given when pulses were
+    found), with the voltage and high-current ones the numbers call for; deferral last."""
+    out = ["Pulse testing of cells: stay within the cell maker's data sheet for pulse "
+           "current, voltage limits and temperature; fuse the test leads close to the cell; "
+           "watch the cell's temperature and stop if it rises; never pulse a damaged, "
+           "swollen, leaking, hot or deeply discharged cell; test packs only with their "
+           "protection in place and on a non-flammable surface."]
+    i = np.nanmax(np.abs(np.asarray(peak_current, float))) if peak_current is not None and \
+        np.size(peak_current) else np.nan
+    if i > HIGH_CURRENT_A:
+        out.append(f"High pulse current: up to {format_value(i, 'A', 2)}. Use leads, "
+                   "connectors and a load rated for it, with a fuse or breaker sized for the "
+                   "cell's short-circuit current, not the test current.")
+    out.extend(c for c in cautions(voltages=voltages) if c != DEFERRAL)
+    out.append(DEFERRAL)
+    return out

@@ -48,7 +48,7 @@ from .errors import ReadingsFileError
 from .readings import Readings
 
 __all__ = ["Trace", "Steps", "find_steps", "current_noise", "settled_readings_arrays",
-           "steps_to_readings", "steps_columns", "step_warnings", "MAD_TO_SIGMA"]
+           "steps_to_readings", "steps_columns", "search_rows", "step_warnings", "MAD_TO_SIGMA"]
 
 #: σ of a normal distribution per unit of median absolute deviation (Hampel 1974).
 MAD_TO_SIGMA = 1.482602218505602
@@ -387,7 +387,7 @@ def _settle(trace, starts, stops, after_gap, thr, noise, min_samples, window,
     if window is None:
         wl = np.maximum(np.ceil(window_fraction * length).astype(np.int64), min_samples)
     else:
-        first = _search_within(t, starts, stops, t[stops - 1] - window)
+        first = search_rows(t, starts, stops, t[stops - 1] - window)
         wl = np.maximum(stops - first, min_samples)
     wl = np.minimum(wl, length)
     w0 = stops - wl
@@ -467,10 +467,10 @@ def _settle(trace, starts, stops, after_gap, thr, noise, min_samples, window,
                  noise=noise, channels=trace.channels)
 
 
-def _search_within(t, starts, stops, target):
-    """First row r in [start, stop) of each step with t[r] ≥ target: a binary search run
-    on all steps at once (about log2 of the longest step passes), valid because a step's
-    rows are in time order."""
+def search_rows(t, starts, stops, target):
+    """First row r in [start, stop) of each range with t[r] ≥ target (``stop`` where none):
+    a binary search run on all ranges at once (about log2 of the longest range passes),
+    valid because a channel's rows are in time order."""
     lo, hi = starts.astype(np.int64).copy(), stops.astype(np.int64).copy()
     while True:
         active = lo < hi
