@@ -13,26 +13,25 @@ import numpy as np
 
 
 def rc_voltage(t, edges, levels, ocv, r0, branches):
-    """Voltage at times ``t`` (any shape, last axis samples) for a current that is
-    ``levels[0]`` before ``edges[0]``, ``levels[j]`` from ``edges[j-1]`` on.
+    """Voltage and current at times ``t`` (any shape, last axis samples) for a current that
+    is ``levels[0]`` before ``edges[0]`` and ``levels[j]`` from ``edges[j-1]`` on.
 
-    ``branches``: list of (R_k, τ_k), each broadcastable against ``t[..., :1]``.
+    ``edges``: shape (E,) for all traces, or t.shape[:-1] + (E,) per trace. ``branches``:
+    list of (R_k, τ_k), scalars or arrays broadcastable against ``t[..., :1]``.
     """
     t = np.asarray(t, float)
-    edges = np.asarray(edges, float)
+    edges = np.broadcast_to(np.asarray(edges, float), t.shape[:-1] + (np.size(levels) - 1,))
     levels = np.asarray(levels, float)
-    idx = np.searchsorted(edges, t, side="right")
+    idx = (t[..., :, None] >= edges[..., None, :]).sum(-1)
     i_t = levels[idx]
     v = ocv - r0 * i_t
     d_i = np.diff(levels)
     for r_k, tau_k in branches:
-        r_k = np.asarray(r_k, float)[..., None] if np.ndim(r_k) else r_k
-        tau_k = np.asarray(tau_k, float)[..., None] if np.ndim(tau_k) else tau_k
         acc = levels[0] * r_k * np.ones_like(t)
-        for e, di in zip(edges, d_i):  # a few edges per trace
-            since = t - e
-            acc = acc + np.where(since > 0, di * r_k * -np.expm1(-np.maximum(since, 0) / tau_k),
-                                 0.0)
+        for e in range(d_i.size):  # a few edges per trace
+            since = t - edges[..., e:e + 1]
+            acc = acc + np.where(since > 0,
+                                 d_i[e] * r_k * -np.expm1(-np.maximum(since, 0) / tau_k), 0.0)
         v = v - acc
     return v, i_t
 

@@ -30,7 +30,7 @@ from ..core.errors import ReadingsFileError
 from ..core.trace import Trace
 from ..core.units import unit_dimension
 
-__all__ = ["read_trace", "ROLE_NAMES"]
+__all__ = ["read_trace", "read_profile", "columns_csv", "ROLE_NAMES"]
 
 #: Accepted header names (case-insensitive, unit removed) for each role.
 ROLE_NAMES = {
@@ -85,7 +85,8 @@ def _unit_scale(role: str, unit: str, header: str, path: str) -> float:
                                   f"({_DIM[role]})", line=None, column=header)
 
 
-def _roles(headers: list[str], path: str, header_line: int | None) -> dict:
+def _roles(headers: list[str], path: str, header_line: int | None,
+           required=("time", "current", "voltage")) -> dict:
     """Map each role to (column index, header text, scale)."""
     found: dict = {}
     for k, h in enumerate(headers):
@@ -94,12 +95,14 @@ def _roles(headers: list[str], path: str, header_line: int | None) -> dict:
             if base in names and role not in found:
                 found[role] = (k, h, _unit_scale(role, unit, h, path))
                 break
-    for role in ("time", "current", "voltage"):
+    for role in required:
         if role not in found:
             raise ReadingsFileError(
                 path, f"no {role} column (found: {', '.join(headers) or 'no header'}); name "
-                      "the columns e.g. time_s, current_A, voltage_V", line=header_line)
-    return found
+                      f"the columns e.g. {', '.join(r + '_' + _DIM[r] for r in required)}",
+                line=header_line)
+    return {r: x for r, x in found.items() if r in required or r in ("channel", "soc",
+                                                                     "capacity")}
 
 
 def _head_lines(path: str) -> tuple[list[str], bool]:
@@ -123,6 +126,27 @@ def _head_lines(path: str) -> tuple[list[str], bool]:
     if len(raw) == _HEAD_BYTES and lines:
         lines = lines[:-1]  # the last line may be cut
     return lines, False
+
+
+def read_profile(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
+    """A current profile (time, current; CSV or Parquet, as tolerant as a trace): times
+    in s from the first row, currents in A (positive = discharge). The current of a row
+    holds until the next row's time."""
+    name = str(path)
+    lines, parquet = _head_lines(name)
+    req = ("time", "current")
+    if parquet:
+        table, roles, first_line, comments = _read_parquet(name, req)
+    else:
+        table, roles, first_line, comments = _read_csv(name, lines, req)
+    roles.pop("channel", None)
+    roles.pop("soc", None)
+    roles.pop("capacity", None)
+    # a profile has no voltage: the current column stands in for it, so that the one
+    # converter (and its checks of time order, NaN and text) serves both
+    tr = _to_trace(name, table, {**roles, "voltage": roles["current"]}, first_line, comments,
+                   False)
+    return np.asarray(tr.time), np.asarray(tr.current)
 
 
 def read_trace(path: str | os.PathLike, *, discharge_negative: bool = False) -> Trace:
@@ -150,21 +174,21 @@ def read_trace(path: str | os.PathLike, *, discharge_negative: bool = False) -> 
     return _to_trace(name, table, roles, first_line, comments, discharge_negative)
 
 
-def _read_parquet(path: str):
+def _read_parquet(path: str, required=("time", "current", "voltage")):
     import pyarrow.parquet as pq
 
     try:
         schema = pq.read_schema(path)
     except Exception as exc:  # noqa: BLE001 - Arrow raises several kinds for a bad file
         raise ReadingsFileError(path, f"not a readable Parquet file ({exc})") from None
-    roles = _roles(list(schema.names), path, None)
+    roles = _roles(list(schema.names), path, None, required)
     names = [schema.names[k] for k, _, _ in roles.values()]
     table = pq.read_table(path, columns=names)
     roles = {r: (names.index(h), h, s) for r, (_, h, s) in roles.items()}
     return table, roles, None, 0
 
 
-def _read_csv(path: str, lines: list[str]):
+def _read_csv(path: str, lines: list[str], required=("time", "current", "voltage")):
     import pyarrow as pa
     import pyarrow.csv as pcsv
 
@@ -181,7 +205,7 @@ def _read_csv(path: str, lines: list[str]):
         raise ReadingsFileError(path, "one column only: the header needs time, current and "
                                       "voltage separated by ',', ';' or tabs", line=skip + 1)
     headers = [h.strip().strip('"') for h in header.split(delim)]
-    roles = _roles(headers, path, skip + 1)
+    roles = _roles(headers, path, skip + 1, required)
     sample = [ln for ln in lines[skip + 1: skip + 50] if ln.strip()
               and not ln.lstrip().startswith(_COMMENT)]
     decimal = "," if delim != "," and any(re.search(r"\d,\d", ln) for ln in sample) else "."
