@@ -71,6 +71,10 @@ def pulses_command(
     bench: BenchOpt = None,
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Write the pulse table to this .csv or .json file.")] = None,
+    report: Annotated[Optional[str], typer.Option(
+        "--report", help="Write an HTML report into this folder: the trace with its steps, "
+                         "each pulse's response with the fitted model and residuals.")]
+        = None,
     json_out: JsonOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -116,6 +120,11 @@ def pulses_command(
 
                 atomic_write(out, document_text(doc) if out.lower().endswith(".json")
                              else columns_csv(_columns(pulses, models)), inputs=inputs)
+            if report:
+                from ..report.trace_report import write_trace_report
+
+                write_trace_report(report, trace, steps, pulses=pulses, models=models,
+                                   doc=doc, cautions=cautions, inputs=inputs)
         if json_out:
             write_document(doc)
         else:

@@ -88,6 +88,10 @@ def steps_command(
     voltage_accuracy: VoltageAccOpt = None,
     current_accuracy: CurrentAccOpt = None,
     bench: BenchOpt = None,
+    report: Annotated[Optional[str], typer.Option(
+        "--report", help="Write an HTML report into this folder: the trace with its steps "
+                         "(trace.html) and, with --fit, the fit report (report.html).")]
+        = None,
     json_out: JsonOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
@@ -135,6 +139,15 @@ def steps_command(
                      "u_current_A": a["u_current"], "u_voltage_V": a["u_voltage"]}),
                     inputs=inputs, option="--readings-out")
             sdoc = _steps_document(file, trace, steps, cols, warnings)
+            if report:
+                step("writing the report")
+                from ..report.trace_report import write_trace_report
+
+                write_trace_report(report, trace, steps, doc=sdoc, inputs=inputs)
+                if fits is not None:
+                    from ..report.fit_report import write_report
+
+                    write_report(report, fits, readings, doc, settings, inputs=inputs)
             if out:
                 from ..io.outputs import document_text
 
