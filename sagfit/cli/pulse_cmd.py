@@ -158,7 +158,9 @@ def model_warnings(models) -> list[str]:
     for j, m in enumerate(models):
         for w in m.warnings + ((m.error,) if m.error else ()):
             key = w.split(":", 1)[-1].strip() if w.startswith(("sampling", "pulse of")) else w
-            by_text.setdefault(key if len(by_text) < 50 else w, []).append(j + 1)
+            seen = by_text.setdefault(key if len(by_text) < 50 else w, [])
+            if not seen or seen[-1] != j + 1:
+                seen.append(j + 1)
     return [f"RC fit, pulse(s) {_list(k)}: {w}" for w, k in by_text.items()]
 
 

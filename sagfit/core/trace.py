@@ -34,8 +34,11 @@ Methods
   Metrologia 43 (2006) S276 — both from memory).
 - **Settling check**: a straight line through the window's voltage; the step is flagged
   ``unsettled`` when the drift across the window (slope × window length) exceeds the
-  samples' scatter about the line and the slope is significant (|t| > 3). A still-sagging
-  voltage means the window is not at steady state: the step was too short.
+  samples' scatter about the line and the slope is significant (|t| > 3); or when the
+  window's mean differs from the mean of as many samples just before it by more than the
+  scatter of one sample and more than 3 u of the difference (a slow drift a short window
+  cannot show). A still-sagging voltage means the window is not at steady state: the step
+  was too short.
 """
 
 from __future__ import annotations
@@ -438,6 +441,18 @@ def _settle(trace, starts, stops, after_gap, thr, noise, min_samples, window,
         tstat = np.where(se_slope > 0, np.abs(slope) / se_slope, np.where(slope != 0, np.inf,
                                                                           0.0))
     settled = ~((np.abs(drift) > s_line) & (tstat > 3.0))
+    # A short window hides a slow drift: compare its mean with the mean of as many
+    # samples just before it (within the step); a shift beyond the noise of one sample
+    # and beyond 3 u of the difference means the step had not settled either.
+    prev_lo = np.maximum(starts, w0 - wl)
+    has_prev = (w0 - prev_lo) >= min_samples
+    if np.any(has_prev):
+        k_p = np.flatnonzero(has_prev)
+        m_prev = _range_means(volt, prev_lo[k_p], w0[k_p])
+        u_prev = uv[k_p] * np.sqrt(nw[k_p] / (w0[k_p] - prev_lo[k_p]))
+        shift = np.abs(mv[k_p] - m_prev)
+        moved = (shift > s_line[k_p]) & (shift > 3.0 * np.hypot(uv[k_p], u_prev))
+        settled[k_p[moved]] = False
     # Clipping: a window with no scatter at all at the channel's voltage extreme, in a
     # channel whose other windows do scatter, or whose neighbour at another current sits
     # at the same value: the voltage did not follow the source, the meter sat at the end
