@@ -13,8 +13,12 @@ from .core.analysis import fit
 from .core.errors import (FitError, HistoryError, InputError, OptionError, ReadingsFileError,
                      SagfitError, SpecFileError)
 from .core.fit import york_line
+from .core.pulse import find_pulses
+from .core.rc_model import fit_pulses, predict_voltage
+from .core.trace import Trace, find_steps, steps_to_readings
 from .io.readings_csv import read_readings
 from .io.spec import read_spec
+from .io.trace_file import read_trace
 from .core.readings import Readings
 from .core.results import Estimate, FitResult, Fits, Flag
 from .core.units import Accuracy, parse_accuracy
@@ -22,7 +26,8 @@ from .core.units import Accuracy, parse_accuracy
 __version__ = "0.1.0"
 
 for _obj in (fit, york_line, read_readings, read_spec, accept, Readings, Estimate, FitResult,
-             Fits, Flag, Accuracy, parse_accuracy):
+             Fits, Flag, Accuracy, parse_accuracy, read_trace, Trace, find_steps,
+             steps_to_readings, find_pulses, fit_pulses, predict_voltage):
     try:
         _obj.__module__ = "sagfit"
     except (AttributeError, TypeError):
@@ -33,4 +38,5 @@ __all__ = ["__version__", "fit", "york_line", "read_readings", "read_spec", "acc
            "Readings", "Estimate",
            "FitResult", "Fits", "Flag", "Accuracy", "parse_accuracy", "SagfitError",
            "InputError", "ReadingsFileError", "SpecFileError", "OptionError", "FitError",
-           "HistoryError"]
+           "HistoryError", "read_trace", "Trace", "find_steps", "steps_to_readings",
+           "find_pulses", "fit_pulses", "predict_voltage"]

@@ -4,7 +4,12 @@ Scenario (our own, invented): a field technician's monthly check of the 12 V lea
 packs on the depot's standby trolleys, and the 5 V output of our sensor-hub board.
 Not measurements of any real product.
 
-    python sample_runs/generate.py        # rewrites pack_a.csv, fleet_packs.csv, reg5v_board.csv
+    python sample_runs/generate.py        # rewrites pack_a.csv, fleet_packs.csv, reg5v_board.csv,
+                                          # cell_c07_trace.csv, drive_profile.csv
+
+Also invented: a logged trace of one lithium-ion cell of our own 3 Ah design (load steps,
+an HPPC-style pulse pair, a two-level DC-resistance step) and a current profile for
+`sagfit respond`.
 """
 
 from __future__ import annotations
@@ -62,6 +67,47 @@ def regulator() -> None:
         "Current [mA];Voltage [V]\n" + "\n".join(lines) + "\n", encoding="utf-8")
 
 
+def cell_trace() -> None:
+    """Invented trace: R0 25 mΩ + 12 mΩ‖(τ 2.5 s) + 8 mΩ‖(τ 25 s), OCV 3.65 V, sampled
+    every 0.2 s with 0.3 mV and 3 mA of noise (seeded)."""
+    import numpy as np
+
+    from sagfit.core.rc_model import RCFit, predict_voltage
+
+    model = RCFit.from_record({
+        "branches": 2, "i_base_A": 0.0, "u_base": {"value": 3.65, "u": 0},
+        "r0": {"value": 0.025, "u": 0}, "r1": {"value": 0.012, "u": 0},
+        "tau1": {"value": 2.5, "u": 0}, "r2": {"value": 0.008, "u": 0},
+        "tau2": {"value": 25.0, "u": 0}})
+    # (duration s, current A): load steps with rests, a 2C discharge pulse and a 75 %
+    # regeneration pulse, then 0.2 It for 10 s followed by 1 It for 1 s
+    plan = [(120, 0.0), (200, 0.5), (200, 0.0), (200, 1.0), (200, 0.0), (200, 2.0),
+            (200, 0.0), (200, 3.0), (300, 0.0), (10, 6.0), (40, 0.0), (10, -4.5),
+            (200, 0.0), (10, 0.6), (1, 3.0), (120, 0.0)]
+    dt = 0.2
+    t = np.arange(0.0, sum(d for d, _ in plan), dt)
+    ends = np.cumsum([d for d, _ in plan])
+    i = np.array([c for _, c in plan])[np.minimum(np.searchsorted(ends, t, side="right"),
+                                                   len(plan) - 1)]
+    rng = np.random.default_rng(17)
+    v = predict_voltage(model, t, i) + rng.normal(0, 3e-4, t.size)
+    i_meas = i + rng.normal(0, 3e-3, t.size)
+    head = ("# INVENTED DATA for sagfit demos: a logged trace of one lithium-ion cell of our\n"
+            "# own 3 Ah design on the bench cycler. Not measurements of any real product.\n"
+            "# Regenerate with sample_runs/generate.py (seeded).\n")
+    rows = "\n".join(f"C-07,{a:.1f},{b:.4f},{c:.5f}" for a, b, c in zip(t, i_meas, v))
+    (HERE / "cell_c07_trace.csv").write_text(
+        head + "cell,time_s,current_A,voltage_V\n" + rows + "\n", encoding="utf-8")
+    tp = np.arange(0.0, 300.0, 1.0)
+    ip = np.select([tp < 30, tp < 90, tp < 120, tp < 200, tp < 230], [0.0, 2.5, -1.5, 4.0,
+                                                                       0.0], 1.0)
+    (HERE / "drive_profile.csv").write_text(
+        "# INVENTED current profile for `sagfit respond` (each current holds to the next "
+        "row)\ntime_s,current_A\n" + "\n".join(f"{a:g},{b:g}" for a, b in zip(tp, ip))
+        + "\n", encoding="utf-8")
+
+
 if __name__ == "__main__":
     packs()
     regulator()
+    cell_trace()

@@ -53,7 +53,7 @@ def _root(version: bool = typer.Option(False, "--version", callback=_version,
 
 from . import fit_cmd  # noqa: E402,F401  (registers `fit`)
 
-for _mod in ("predict_cmd", "accept_cmd", "history_cmd", "plan_cmd", "design_cmd"):
+for _mod in ("predict_cmd", "accept_cmd", "history_cmd", "plan_cmd", "design_cmd", "trace_cmd", "pulse_cmd"):
     try:
         __import__(f"{__name__}.{_mod}")
     except ModuleNotFoundError as _exc:  # a command module not written yet

@@ -13,7 +13,8 @@ import numpy as np
 
 from .formatting import format_value
 
-__all__ = ["cautions", "fit_cautions", "caution_inputs", "merged_cautions", "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
+__all__ = ["cautions", "fit_cautions", "caution_inputs", "merged_cautions", "pulse_cautions",
+           "prospective_isc", "DEFERRAL", "HAZARDOUS_V",
            "HIGH_CURRENT_A", "HOT_RESISTOR_W"]
 
 HAZARDOUS_V = 60.0
@@ -128,3 +129,22 @@ def merged_cautions(inputs: list[dict], *, always: bool = False) -> list[str]:
     keys = inputs[0].keys()
     return cautions(**{k: np.concatenate([np.ravel(d[k]) for d in inputs]) for k in keys},
                     always=always)
+
+
+def pulse_cautions(*, peak_current=None, voltages=None) -> list[str]:
+    """The cautions for current pulses on cells and packs (always given when pulses were
+    found), with the voltage and high-current ones the numbers call for; deferral last."""
+    out = ["Pulse testing of cells: stay within the cell maker's data sheet for pulse "
+           "current, voltage limits and temperature; fuse the test leads close to the cell; "
+           "watch the cell's temperature and stop if it rises; never pulse a damaged, "
+           "swollen, leaking, hot or deeply discharged cell; test packs only with their "
+           "protection in place and on a non-flammable surface."]
+    i = np.nanmax(np.abs(np.asarray(peak_current, float))) if peak_current is not None and \
+        np.size(peak_current) else np.nan
+    if i > HIGH_CURRENT_A:
+        out.append(f"High pulse current: up to {format_value(i, 'A', 2)}. Use leads, "
+                   "connectors and a load rated for it, with a fuse or breaker sized for the "
+                   "cell's short-circuit current, not the test current.")
+    out.extend(c for c in cautions(voltages=voltages) if c != DEFERRAL)
+    out.append(DEFERRAL)
+    return out
