@@ -114,7 +114,7 @@ def test_sample_pack_design_against_the_fleet(capsys):
 
     root = Path(__file__).resolve().parents[1] / "sample_runs"
     code, out, err = _run(capsys, "design", str(root / "pack_design.cir"), "--measured",
-                          str(root / "fleet_packs.csv"), "--draws", "2000", "--json")
+                          str(root / "fleet_packs.csv"), "--draws", "500", "--json")
     assert code == 1, err
     units = {u["dut"]: u for u in json.loads(out)["measured"]["units"]}
     assert not units["PK-12"]["consistent"] and units["PK-07"]["consistent"]
