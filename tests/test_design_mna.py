@@ -152,3 +152,33 @@ def test_en_and_single_component_explanation():
     best = explain(t, [[v2 - t.vth, r2 - t.rth]], [[1e-3, 1.0]])[0]
     assert best[0].part == "R2" and best[0].relative_change == pytest.approx(0.1, rel=0.1)
     assert not best[0].within_tolerance  # 10 % against a 1 % part
+
+
+class TestToleranceTable:
+    """Tolerances from a side table (a netlist exported without tol=)."""
+
+    PLAIN = "V1 in 0 12\nR1 in tap 2k\nR2 tap 0 2k\nRL tap 0 1meg tol=2%\n.port tap 0\n"
+
+    def test_patterns_later_lines_win_and_table_over_netlist(self):
+        """'R* 1%' gives every resistor 1 %, a later 'R2 5%' wins for R2, and the table
+        wins over RL's own tol=2%."""
+        from sagfit.core.netlist import apply_tolerances
+
+        net = apply_tolerances(parse_netlist(self.PLAIN),
+                               "# parts list (invented)\nR*  1%\nR2 5%\nv1, 0.005\n", "t.txt")
+        assert {e.name: e.tol for e in net.elements} == pytest.approx(
+            {"V1": 0.005, "R1": 0.01, "R2": 0.05, "RL": 0.01})
+        assert "tolerances of 4 part(s) from t.txt" in net.notes
+
+    @pytest.mark.parametrize("text, where, what", [
+        ("R* 1%\nQ* 1%\n", "line 2, column 1", "matches no element"),
+        ("R1   1x%\n", "line 1, column 6", "cannot read tolerance"),
+        ("R1 150%\n", "line 1, column 4", "between 0 and 100"),
+        ("R1\n", "line 1, column 1", "one part"),
+    ])
+    def test_errors_name_line_and_column(self, text, where, what):
+        from sagfit.core.netlist import apply_tolerances
+
+        with pytest.raises(NetlistError) as exc:
+            apply_tolerances(parse_netlist(self.PLAIN), text, "t.txt")
+        assert str(exc.value).startswith("t.txt, " + where) and what in str(exc.value)

@@ -7,6 +7,7 @@ import csv
 import io
 import json
 import math
+import os
 from typing import Annotated, Optional
 
 import numpy as np
@@ -43,6 +44,9 @@ def design_command(
                                                 "tol=1% per element; .port node+ node-).")],
     port: Annotated[Optional[str], typer.Option(
         "--port", help="The two port nodes, 'out,0' (overrides the .port line).")] = None,
+    tolerances: Annotated[Optional[str], typer.Option(
+        "--tolerances", help="Side table of tolerances, one 'PART-OR-PATTERN TOL' a line "
+                             "(R* 1%, RC? 15%); overrides tol= in the netlist.")] = None,
     draws: Annotated[int, typer.Option("--draws", help="Monte Carlo draws (0: none).")] = 10_000,
     distribution: Annotated[str, typer.Option(
         "--distribution", help="Per-part spread: uniform (±tol) or normal (tol = 3σ).")
@@ -90,7 +94,7 @@ def design_command(
         if measured and (vth_meas or rth_meas):
             raise OptionError("--measured", "give a file or one unit's --measured-vth/-rth, "
                                             "not both")
-        inputs = [netlist] + [f for f in (measured, bench) if f]
+        inputs = [netlist] + [f for f in (measured, bench, tolerances) if f]
         from ..io.outputs import check_output_path
 
         for path, option in ((spec_out, "--spec-out"), (out, "--out")):
@@ -104,7 +108,7 @@ def design_command(
             p = (parts[0], parts[1])
         from ..io.netlist_file import read_netlist
 
-        net = read_netlist(netlist, p)
+        net = read_netlist(netlist, p, tolerances)
         units = _single_unit(vth_meas, u_vth, rth_meas, u_rth)
         if measured:
             units = _load_measured(measured, dut, voltage_accuracy, current_accuracy,
@@ -129,7 +133,7 @@ def design_command(
         if spec_out:
             from ..io.netlist_file import spec_text
 
-            atomic_write(spec_out, spec_text(f"design {net.path}", doc["limits"]["vth"],
+            atomic_write(spec_out, spec_text(f"design {os.path.basename(net.path)}", doc["limits"]["vth"],
                                              doc["limits"]["rth"], limits, net.path),
                          inputs=inputs, option="--spec-out")
         if out:

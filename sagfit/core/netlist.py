@@ -241,3 +241,49 @@ def _check(path, elements, port, port_at):
                 raise NetlistError(path, f"{e.name} closes a loop of voltage sources (or "
                                    "inductors, shorts at DC)", e.line, e.column)
             parent[a] = b
+
+
+def apply_tolerances(net: Netlist, text: str, path: str = "<tolerances>") -> Netlist:
+    """The netlist with tolerances from a side table (pure: text in).
+
+    One rule a line, ``PATTERN TOLERANCE`` (whitespace or a comma between): the pattern an
+    element name or a shell-style pattern (``R*``, ``RC?``, ``[RL]*``; case-insensitive),
+    the tolerance ``1%`` or ``0.01``. A later line wins over an earlier one, and the table
+    over a ``tol=`` in the netlist (``* 1%``: every valued part). ``#`` starts a
+    comment. A pattern that
+    matches no valued element, or a tolerance that cannot be read, is a
+    :class:`NetlistError` naming the table's line and column.
+    """
+    import fnmatch
+
+    tol = {e.name: e.tol for e in net.elements}
+    valued = [e.name for e in net.elements if e.kind not in "LC"]
+    given: set[str] = set()
+    for no, raw in enumerate(text.splitlines(), 1):
+        body = re.split(r"#", raw, maxsplit=1)[0]
+        if not body.strip():
+            continue
+        toks = [(m.start() + 1, m.group()) for m in re.finditer(r"[^\s,]+", body)]
+        if len(toks) != 2:
+            raise NetlistError(path, "write one part (or pattern) and its tolerance, e.g. "
+                               "'R* 1%'", no, toks[0][0] if toks else 1)
+        (pc, pat), (tc, tv) = toks
+        try:
+            value = float(tv[:-1]) / 100.0 if tv.endswith("%") else float(tv)
+        except ValueError:
+            raise NetlistError(path, f"cannot read tolerance {tv!r} (write e.g. 1%)", no,
+                               tc) from None
+        if not (math.isfinite(value) and 0 <= value < 1):
+            raise NetlistError(path, f"tolerance {tv!r} must be between 0 and 100 %", no, tc)
+        hits = [n for n in valued if fnmatch.fnmatchcase(n.lower(), pat.lower())]
+        if not hits:
+            raise NetlistError(path, f"{pat!r} matches no element of {net.path} with a "
+                               "value", no, pc)
+        for n in hits:
+            tol[n] = value
+        given.update(hits)
+    from dataclasses import replace
+
+    note = f"tolerances of {len(given)} part(s) from {path}"
+    return replace(net, elements=tuple(replace(e, tol=tol[e.name]) for e in net.elements),
+                   notes=net.notes + (note,))
