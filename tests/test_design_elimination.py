@@ -15,7 +15,7 @@ def _network(rng, kind):
     """A seeded random network (invented): ladder or bridge, with a current source and,
     for kinds 2–5, one controlled source of each type; returns the text without port and
     the output node."""
-    r = lambda: f"{rng.uniform(10, 100e3):.6g} tol={rng.uniform(0.1, 5):.3g}%"  # noqa: E731
+    r = lambda: f"{rng.uniform(10, 100e3):.6g} tol={rng.uniform(0.1, 5):.3g}%"
     lines = [f"V1 n0 0 {rng.uniform(1, 50):.6g} tol=1%"]
     if kind % 2 == 0:
         n = int(rng.integers(3, 12))
@@ -64,8 +64,8 @@ def test_two_hundred_node_ladder_agrees():
     """The benchmark's kind of network (a 200-node ladder with cross links), 40 draws."""
     lines = ["V1 n0 0 10 tol=1%"]
     for i in range(199):
-        lines += [f"RS{i} n{i} n{i + 1} {1000 + i} tol=1%", f"RP{i} n{i + 1} 0 {10000 + 7 * i} "
-                  "tol=1%"]
+        lines += [f"RS{i} n{i} n{i + 1} {1000 + i} tol=1%",
+                  f"RP{i} n{i + 1} 0 {10000 + 7 * i} tol=1%"]
         if i % 10 == 0 and i + 10 < 200:
             lines.append(f"RX{i} n{i} n{i + 10} 4.7k tol=1%")
     c = Circuit(parse_netlist("\n".join(lines) + "\n.port n199 0\n"))

@@ -49,7 +49,7 @@ class TestNormalisedError:
         tn = analyse(c, draws=0, distribution="normal")
         assert design_uncertainty(tn)[0] == pytest.approx(2 * t.rss_vth / 3, rel=1e-12)
         tm = analyse(c, draws=4000, seed=3)
-        uv, ur, source = design_uncertainty(tm)
+        uv, _, source = design_uncertainty(tm)
         assert source == "monte-carlo"
         assert uv == pytest.approx(2 * np.std(tm.mc_vth, ddof=1), rel=1e-12)
         # the linear divider: MC σ close to the RSS reading (within the sampling spread)

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import math
 import os
 from typing import Annotated, Optional
@@ -144,7 +143,9 @@ def design_command(
 
             write_design_report(report, doc, t, cmp, inputs=inputs)
         if json_out:
-            write_stdout(json.dumps(doc, indent=2, allow_nan=False, ensure_ascii=False) + "\n")
+            from ..io.outputs import document_text
+
+            write_stdout(document_text(doc, rows=_rows(doc)))
         else:
             write_stdout(_table(doc))
             if cmp is not None:
@@ -153,6 +154,11 @@ def design_command(
                 write_stdout(f"caution: {c}\n")
     if cmp is not None and not bool(np.all(cmp.consistent)):
         raise typer.Exit(1)
+
+
+def _rows(doc) -> int:
+    """Per-unit entries of the document (a large one is written compact)."""
+    return len(doc.get("measured", {}).get("units", ()))
 
 
 def _single_unit(vm, uv, rm, ur):
@@ -170,7 +176,7 @@ def _single_unit(vm, uv, rm, ur):
         vals[key] = (math.nan, math.nan) if mv is None else (mv, Uv)
     if all(math.isnan(v[0]) for v in vals.values()):
         return None
-    a = lambda x: np.array([x], dtype=float)  # noqa: E731
+    a = lambda x: np.array([x], dtype=float)
     return MeasuredUnits("options", ("measured",), a(vals["vth"][0]), a(vals["vth"][1]),
                          a(vals["rth"][0]), a(vals["rth"][1]), math.nan)
 
@@ -394,8 +400,8 @@ def _print_units(m) -> None:
                   f"{format_estimate(ex['rth_ohm'], ud['rth_ohm'], 'Ω')} (± U, k = 2, from "
                   f"{ud['from']})", markup=False)
     tab = Table(show_edge=False)
-    for col in ("DUT", "Vth ± U", "E_n", "Rth ± U", "E_n ", "verdict", "single part that "
-                "would explain it"):
+    for col in ("DUT", "Vth ± U", "E_n", "Rth ± U", "E_n ", "verdict",
+                "single part that would explain it"):
         tab.add_column(col, justify="left" if col in ("DUT", "verdict") or col.startswith(
             "single") else "right")
 

@@ -20,9 +20,8 @@ back for the dense reference (:meth:`sagfit.core.mna.Circuit.solve_dense`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import heapq
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp

@@ -164,8 +164,8 @@ def _parse(text, path, port):
                                f"name, found {len(rest)}", lno, c)
         nodes = (rest[0][1].lower(), rest[1][1].lower())
         nodes = tuple("0" if n in GROUND else n for n in nodes)
-        where = dict(line=lno, column=col,
-                     node_at=((rest[0][2], rest[0][0]), (rest[1][2], rest[1][0])))
+        where = {"line": lno, "column": col,
+                 "node_at": ((rest[0][2], rest[0][0]), (rest[1][2], rest[1][0]))}
         if letter in "LC":
             notes.append(f"{word}: {'inductor taken as a short' if letter == 'L' else 'capacitor taken as an open'} at DC")
             elements.append(Element(word, letter, nodes, 0.0, **where))
