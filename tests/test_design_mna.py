@@ -79,6 +79,7 @@ def test_continuation_comments_and_inductor_capacitor():
      "line 6, column 4", "'d' of C1 is floating"),
     ("V1 a 0 12\nV2 a 0 5\nR1 a 0 1k\n.port a 0\n", "line 2, column 1", "loop of voltage"),
     ("V1 a 0 12\nR1 a 0 1k\n.port  zz 0\n", "line 3, column 8", "port node 'zz'"),
+    ("V1 a 0 12\nR1 a 0 1k\n.port a gnd\n.port 0 gnd\n", "line 4, column 9", "the same"),
     ("V1 a 0 12\nR1 a 0 1k\nE1 b 0 q 0 2\nR2 b 0 1k\n.port b 0\n", "line 3, column 1",
      "control node 'q'"),
     ("V1 a 0 12\nR1 a 0 1k tol=x\n.port a 0\n", "line 2, column 11", "tolerance"),

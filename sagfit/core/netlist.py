@@ -188,10 +188,13 @@ def _parse(text, path, port):
         raise NetlistError(path, "no port: add a line '.port <node+> <node->' or give the "
                            "port nodes", None, None)
     p = tuple("0" if n.lower() in GROUND else n.lower() for n in p)
-    if not elements:
-        raise NetlistError(path, "no elements", None, None)
     if port is not None:  # given as an option: no place in the file
         port_at = ((None, None), (None, None))
+    if p[0] == p[1]:
+        raise NetlistError(path, f"the port's two nodes are the same ({p[0]!r}): give two "
+                           "different nodes", *port_at[1])
+    if not elements:
+        raise NetlistError(path, "no elements", None, None)
     _check(path, elements, p, port_at)
     return Netlist(path, tuple(elements), p, tuple(notes))
 
