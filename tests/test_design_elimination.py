@@ -61,7 +61,8 @@ def test_elimination_equals_dense_reference(kind):
 
 
 def test_two_hundred_node_ladder_agrees():
-    """The benchmark's kind of network (a 200-node ladder with cross links), 8 draws (the dense reference is slow here)."""
+    """The benchmark's kind of network (a 200-node ladder with cross links), on 8 draws
+    (the dense reference is slow here)."""
     lines = ["V1 n0 0 10 tol=1%"]
     for i in range(199):
         lines += [f"RS{i} n{i} n{i + 1} {1000 + i} tol=1%",
