@@ -132,9 +132,9 @@ def design_command(
         if spec_out:
             from ..io.netlist_file import spec_text
 
-            atomic_write(spec_out, spec_text(f"design {os.path.basename(net.path)}", doc["limits"]["vth"],
-                                             doc["limits"]["rth"], limits, net.path),
-                         inputs=inputs, option="--spec-out")
+            text = spec_text(f"design {os.path.basename(net.path)}", doc["limits"]["vth"],
+                             doc["limits"]["rth"], limits, net.path)
+            atomic_write(spec_out, text, inputs=inputs, option="--spec-out")
         if out:
             atomic_write(out, _measured_csv(doc) if cmp is not None else _sensitivity_csv(doc),
                          inputs=inputs)
@@ -369,8 +369,8 @@ def _table(doc):
     if "monte_carlo" in doc:
         m = doc["monte_carlo"]
         lines.append(f"  Monte Carlo  {m['draws']} {m['distribution']} draws, seed {m['seed']}: "
-                     f"Vth {format_value(m['vth_V'][0], 'V')} … {format_value(m['vth_V'][-1], 'V')}"
-                     f", Rth {format_value(m['rth_ohm'][0], 'Ω')} … "
+                     f"Vth {format_value(m['vth_V'][0], 'V')} … "
+                     f"{format_value(m['vth_V'][-1], 'V')}, Rth {format_value(m['rth_ohm'][0], 'Ω')} … "
                      f"{format_value(m['rth_ohm'][-1], 'Ω')} (0.135–99.865 %)")
     li = doc["limits"]
     lines.append(f"  limits ({li['method']}): Vth {format_value(li['vth'][0], 'V')} … "

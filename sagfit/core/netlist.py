@@ -167,7 +167,8 @@ def _parse(text, path, port):
         where = {"line": lno, "column": col,
                  "node_at": ((rest[0][2], rest[0][0]), (rest[1][2], rest[1][0]))}
         if letter in "LC":
-            notes.append(f"{word}: {'inductor taken as a short' if letter == 'L' else 'capacitor taken as an open'} at DC")
+            what = "inductor taken as a short" if letter == "L" else "capacitor taken as an open"
+            notes.append(f"{word}: {what} at DC")
             elements.append(Element(word, letter, nodes, 0.0, **where))
             continue
         vc, vt, vl = rest[-1]
