@@ -183,3 +183,23 @@ class TestToleranceTable:
         with pytest.raises(NetlistError) as exc:
             apply_tolerances(parse_netlist(self.PLAIN), text, "t.txt")
         assert str(exc.value).startswith("t.txt, " + where) and what in str(exc.value)
+
+
+@pytest.mark.slow
+def test_monte_carlo_tails_reach_rss_and_worst_case():
+    """Where theory says they must: (1) normal parts with tol = 3σ on a near-linear
+    network: the 0.135/99.865 % percentiles tend to nominal ∓ RSS (the RSS of 3σ changes
+    is the 3σ of the sum; GUM JCGM 100:2008, 5.1.2, linear model); (2) uniform parts, two
+    toleranced resistors: the extremes of many draws tend to the worst case (the corners
+    of the tolerance box, reached with probability ε² near each)."""
+    t = analyse(Circuit(parse_netlist(_ladder(15, "0.1%"))), draws=200_000,
+                distribution="normal", seed=5)
+    lo, hi = np.percentile(t.mc_vth, [0.135, 99.865])
+    assert t.vth - lo == pytest.approx(t.rss_vth, rel=0.03)
+    assert hi - t.vth == pytest.approx(t.rss_vth, rel=0.03)
+    two = DIVIDER.replace("V1 in 0 DC 12 tol=1%", "V1 in 0 DC 12")
+    t2 = analyse(Circuit(parse_netlist(two)), draws=200_000, seed=6)
+    half = (t2.wc_vth[1] - t2.wc_vth[0]) / 2
+    assert t2.mc_vth.min() - t2.wc_vth[0] == pytest.approx(0, abs=0.02 * half)
+    assert t2.wc_vth[1] - t2.mc_vth.max() == pytest.approx(0, abs=0.02 * half)
+    assert t2.wc_vth[0] <= t2.mc_vth.min() and t2.mc_vth.max() <= t2.wc_vth[1]
