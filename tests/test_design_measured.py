@@ -160,7 +160,8 @@ class TestMeasuredFiles:
                             str(tmp / "fit.csv"), "--out", str(out_csv))
         assert code == 1
         assert "B3" in out and "NOT consistent" in out and "R2 +" in out
-        rows = list(csv.DictReader(out_csv.open()))
+        with out_csv.open(newline="") as fh:
+            rows = list(csv.DictReader(fh))
         assert [r["dut"] for r in rows] == ["B1", "B2", "B3"]
         assert rows[2]["consistent"] == "no" and rows[2]["likely_part"] == "R2"
         assert float(rows[2]["likely_change_pct"]) == pytest.approx(10, rel=0.15)
