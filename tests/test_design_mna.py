@@ -74,6 +74,9 @@ def test_continuation_comments_and_inductor_capacitor():
 @pytest.mark.parametrize("text, where, what", [
     ("V1 a 0 12\nR1 a b 1k\nQ1 b 0 0 npn\n.port a 0\n", "line 3, column 1", "only R"),
     ("V1 a 0 12\nR1 a 0 1x!\n.port a 0\n", "line 2, column 8", "cannot read value"),
+    ("V1 a 0 1e400\nR1 a 0 1\n.port a 0\n", "line 1, column 8", "not a finite number"),
+    ("V1 a 0 1\nR1 a 0 1\nE1 b 0 a 0 nan\nR2 b 0 1\n.port b 0\n", "line 3, column 12",
+     "not a finite number"),
     ("V1 a 0 12\nR1 a 0 1k\nR2 b c 1k\n.port a 0\n", "line 3, column 4", "floating"),
     ("V1 a 0 12\nR1 a 0 1k\nR2 a\n+ b 1k\nC1 b\n+  d 1u\n.port a 0\n",
      "line 6, column 4", "'d' of C1 is floating"),

@@ -183,6 +183,8 @@ def _parse(text, path, port):
             raise NetlistError(path, f"cannot read value {vt!r} of {word}", vl, vc) from None
         if letter == "R" and not (value > 0 and math.isfinite(value)):
             raise NetlistError(path, f"resistor {word} must be above 0 Ω and finite", vl, vc)
+        if not math.isfinite(value):
+            raise NetlistError(path, f"value {vt!r} of {word} is not a finite number", vl, vc)
         elements.append(Element(word, letter, nodes, value, control, tol, **where))
     p = port or port_line
     if p is None:
