@@ -114,9 +114,23 @@ def test_sample_pack_design_against_the_fleet(capsys):
 
     root = Path(__file__).resolve().parents[1] / "sample_runs"
     code, out, err = _run(capsys, "design", str(root / "pack_design.cir"), "--measured",
-                          str(root / "fleet_packs.csv"), "--draws", "2000", "--json")
+                          str(root / "fleet_packs.csv"), "--draws", "500", "--json")
     assert code == 1, err
     units = {u["dut"]: u for u in json.loads(out)["measured"]["units"]}
     assert not units["PK-12"]["consistent"] and units["PK-07"]["consistent"]
     e = units["PK-12"]["explanation"][0]
     assert e["part"].startswith("RC") and len(e["alike"]) == 5 and not e["within_tolerance"]
+
+
+def test_tolerance_table_option(tmp_path, capsys):
+    """--tolerances gives a netlist without tol= its tolerances (the hand-calculated worst
+    case of the divider with 1 % parts, as with tol= in the netlist)."""
+    net = tmp_path / "plain.cir"
+    net.write_text("V1 in 0 DC 12\nR1 in tap 2k\nR2 tap 0 2k\n.port tap 0\n")
+    tab = tmp_path / "tol.txt"
+    tab.write_text("# from the parts list (invented)\n* 1%\n")
+    code, out, _ = _run(capsys, "design", str(net), "--tolerances", str(tab), "--json",
+                        "--draws", "0")
+    assert code == 0
+    assert json.loads(out)["worst_case"]["vth_V"][1] == pytest.approx(12.12 * 2.02 / 4.0,
+                                                                     rel=1e-9)

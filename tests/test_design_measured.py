@@ -49,7 +49,7 @@ class TestNormalisedError:
         tn = analyse(c, draws=0, distribution="normal")
         assert design_uncertainty(tn)[0] == pytest.approx(2 * t.rss_vth / 3, rel=1e-12)
         tm = analyse(c, draws=4000, seed=3)
-        uv, ur, source = design_uncertainty(tm)
+        uv, _, source = design_uncertainty(tm)
         assert source == "monte-carlo"
         assert uv == pytest.approx(2 * np.std(tm.mc_vth, ddof=1), rel=1e-12)
         # the linear divider: MC σ close to the RSS reading (within the sampling spread)
@@ -160,7 +160,8 @@ class TestMeasuredFiles:
                             str(tmp / "fit.csv"), "--out", str(out_csv))
         assert code == 1
         assert "B3" in out and "NOT consistent" in out and "R2 +" in out
-        rows = list(csv.DictReader(out_csv.open()))
+        with out_csv.open(newline="") as fh:
+            rows = list(csv.DictReader(fh))
         assert [r["dut"] for r in rows] == ["B1", "B2", "B3"]
         assert rows[2]["consistent"] == "no" and rows[2]["likely_part"] == "R2"
         assert float(rows[2]["likely_change_pct"]) == pytest.approx(10, rel=0.15)

@@ -74,11 +74,15 @@ def test_continuation_comments_and_inductor_capacitor():
 @pytest.mark.parametrize("text, where, what", [
     ("V1 a 0 12\nR1 a b 1k\nQ1 b 0 0 npn\n.port a 0\n", "line 3, column 1", "only R"),
     ("V1 a 0 12\nR1 a 0 1x!\n.port a 0\n", "line 2, column 8", "cannot read value"),
+    ("V1 a 0 1e400\nR1 a 0 1\n.port a 0\n", "line 1, column 8", "not a finite number"),
+    ("V1 a 0 1\nR1 a 0 1\nE1 b 0 a 0 nan\nR2 b 0 1\n.port b 0\n", "line 3, column 12",
+     "not a finite number"),
     ("V1 a 0 12\nR1 a 0 1k\nR2 b c 1k\n.port a 0\n", "line 3, column 4", "floating"),
     ("V1 a 0 12\nR1 a 0 1k\nR2 a\n+ b 1k\nC1 b\n+  d 1u\n.port a 0\n",
      "line 6, column 4", "'d' of C1 is floating"),
     ("V1 a 0 12\nV2 a 0 5\nR1 a 0 1k\n.port a 0\n", "line 2, column 1", "loop of voltage"),
     ("V1 a 0 12\nR1 a 0 1k\n.port  zz 0\n", "line 3, column 8", "port node 'zz'"),
+    ("V1 a 0 12\nR1 a 0 1k\n.port a gnd\n.port 0 gnd\n", "line 4, column 9", "the same"),
     ("V1 a 0 12\nR1 a 0 1k\nE1 b 0 q 0 2\nR2 b 0 1k\n.port b 0\n", "line 3, column 1",
      "control node 'q'"),
     ("V1 a 0 12\nR1 a 0 1k tol=x\n.port a 0\n", "line 2, column 11", "tolerance"),
@@ -152,3 +156,53 @@ def test_en_and_single_component_explanation():
     best = explain(t, [[v2 - t.vth, r2 - t.rth]], [[1e-3, 1.0]])[0]
     assert best[0].part == "R2" and best[0].relative_change == pytest.approx(0.1, rel=0.1)
     assert not best[0].within_tolerance  # 10 % against a 1 % part
+
+
+class TestToleranceTable:
+    """Tolerances from a side table (a netlist exported without tol=)."""
+
+    PLAIN = "V1 in 0 12\nR1 in tap 2k\nR2 tap 0 2k\nRL tap 0 1meg tol=2%\n.port tap 0\n"
+
+    def test_patterns_later_lines_win_and_table_over_netlist(self):
+        """'R* 1%' gives every resistor 1 %, a later 'R2 5%' wins for R2, and the table
+        wins over RL's own tol=2%."""
+        from sagfit.core.netlist import apply_tolerances
+
+        net = apply_tolerances(parse_netlist(self.PLAIN),
+                               "# parts list (invented)\nR*  1%\nR2 5%\nv1, 0.005\n", "t.txt")
+        assert {e.name: e.tol for e in net.elements} == pytest.approx(
+            {"V1": 0.005, "R1": 0.01, "R2": 0.05, "RL": 0.01})
+        assert "tolerances of 4 part(s) from t.txt" in net.notes
+
+    @pytest.mark.parametrize("text, where, what", [
+        ("R* 1%\nQ* 1%\n", "line 2, column 1", "matches no element"),
+        ("R1   1x%\n", "line 1, column 6", "cannot read tolerance"),
+        ("R1 150%\n", "line 1, column 4", "between 0 and 100"),
+        ("R1\n", "line 1, column 1", "one part"),
+    ])
+    def test_errors_name_line_and_column(self, text, where, what):
+        from sagfit.core.netlist import apply_tolerances
+
+        with pytest.raises(NetlistError) as exc:
+            apply_tolerances(parse_netlist(self.PLAIN), text, "t.txt")
+        assert str(exc.value).startswith("t.txt, " + where) and what in str(exc.value)
+
+
+@pytest.mark.slow
+def test_monte_carlo_tails_reach_rss_and_worst_case():
+    """Where theory says they must: (1) normal parts with tol = 3σ on a near-linear
+    network: the 0.135/99.865 % percentiles tend to nominal ∓ RSS (the RSS of 3σ changes
+    is the 3σ of the sum; GUM JCGM 100:2008, 5.1.2, linear model); (2) uniform parts, two
+    toleranced resistors: the extremes of many draws tend to the worst case (the corners
+    of the tolerance box, reached with probability ε² near each)."""
+    t = analyse(Circuit(parse_netlist(_ladder(15, "0.1%"))), draws=200_000,
+                distribution="normal", seed=5)
+    lo, hi = np.percentile(t.mc_vth, [0.135, 99.865])
+    assert t.vth - lo == pytest.approx(t.rss_vth, rel=0.03)
+    assert hi - t.vth == pytest.approx(t.rss_vth, rel=0.03)
+    two = DIVIDER.replace("V1 in 0 DC 12 tol=1%", "V1 in 0 DC 12")
+    t2 = analyse(Circuit(parse_netlist(two)), draws=200_000, seed=6)
+    half = (t2.wc_vth[1] - t2.wc_vth[0]) / 2
+    assert t2.mc_vth.min() - t2.wc_vth[0] == pytest.approx(0, abs=0.02 * half)
+    assert t2.wc_vth[1] - t2.mc_vth.max() == pytest.approx(0, abs=0.02 * half)
+    assert t2.wc_vth[0] <= t2.mc_vth.min() and t2.mc_vth.max() <= t2.wc_vth[1]

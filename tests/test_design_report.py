@@ -29,6 +29,7 @@ def _doc(capsys, tmp_path, *extra):
     net = tmp_path / "d.cir"
     net.write_text(DIVIDER)
     code, out, _ = _run(capsys, "design", str(net), "--json", *extra)
+    assert code == 0
     return json.loads(out)
 
 

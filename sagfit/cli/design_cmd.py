@@ -5,8 +5,8 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import math
+import os
 from typing import Annotated, Optional
 
 import numpy as np
@@ -43,6 +43,9 @@ def design_command(
                                                 "tol=1% per element; .port node+ node-).")],
     port: Annotated[Optional[str], typer.Option(
         "--port", help="The two port nodes, 'out,0' (overrides the .port line).")] = None,
+    tolerances: Annotated[Optional[str], typer.Option(
+        "--tolerances", help="Side table of tolerances, one 'PART-OR-PATTERN TOL' a line "
+                             "(R* 1%, RC? 15%); overrides tol= in the netlist.")] = None,
     draws: Annotated[int, typer.Option("--draws", help="Monte Carlo draws (0: none).")] = 10_000,
     distribution: Annotated[str, typer.Option(
         "--distribution", help="Per-part spread: uniform (±tol) or normal (tol = 3σ).")
@@ -90,7 +93,7 @@ def design_command(
         if measured and (vth_meas or rth_meas):
             raise OptionError("--measured", "give a file or one unit's --measured-vth/-rth, "
                                             "not both")
-        inputs = [netlist] + [f for f in (measured, bench) if f]
+        inputs = [netlist] + [f for f in (measured, bench, tolerances) if f]
         from ..io.outputs import check_output_path
 
         for path, option in ((spec_out, "--spec-out"), (out, "--out")):
@@ -104,7 +107,7 @@ def design_command(
             p = (parts[0], parts[1])
         from ..io.netlist_file import read_netlist
 
-        net = read_netlist(netlist, p)
+        net = read_netlist(netlist, p, tolerances)
         units = _single_unit(vth_meas, u_vth, rth_meas, u_rth)
         if measured:
             units = _load_measured(measured, dut, voltage_accuracy, current_accuracy,
@@ -129,9 +132,9 @@ def design_command(
         if spec_out:
             from ..io.netlist_file import spec_text
 
-            atomic_write(spec_out, spec_text(f"design {net.path}", doc["limits"]["vth"],
-                                             doc["limits"]["rth"], limits, net.path),
-                         inputs=inputs, option="--spec-out")
+            text = spec_text(f"design {os.path.basename(net.path)}", doc["limits"]["vth"],
+                             doc["limits"]["rth"], limits, net.path)
+            atomic_write(spec_out, text, inputs=inputs, option="--spec-out")
         if out:
             atomic_write(out, _measured_csv(doc) if cmp is not None else _sensitivity_csv(doc),
                          inputs=inputs)
@@ -140,7 +143,9 @@ def design_command(
 
             write_design_report(report, doc, t, cmp, inputs=inputs)
         if json_out:
-            write_stdout(json.dumps(doc, indent=2, allow_nan=False, ensure_ascii=False) + "\n")
+            from ..io.outputs import document_text
+
+            write_stdout(document_text(doc, rows=_rows(doc)))
         else:
             write_stdout(_table(doc))
             if cmp is not None:
@@ -149,6 +154,11 @@ def design_command(
                 write_stdout(f"caution: {c}\n")
     if cmp is not None and not bool(np.all(cmp.consistent)):
         raise typer.Exit(1)
+
+
+def _rows(doc) -> int:
+    """Per-unit entries of the document (a large one is written compact)."""
+    return len(doc.get("measured", {}).get("units", ()))
 
 
 def _single_unit(vm, uv, rm, ur):
@@ -166,7 +176,7 @@ def _single_unit(vm, uv, rm, ur):
         vals[key] = (math.nan, math.nan) if mv is None else (mv, Uv)
     if all(math.isnan(v[0]) for v in vals.values()):
         return None
-    a = lambda x: np.array([x], dtype=float)  # noqa: E731
+    a = lambda x: np.array([x], dtype=float)
     return MeasuredUnits("options", ("measured",), a(vals["vth"][0]), a(vals["vth"][1]),
                          a(vals["rth"][0]), a(vals["rth"][1]), math.nan)
 
@@ -359,8 +369,8 @@ def _table(doc):
     if "monte_carlo" in doc:
         m = doc["monte_carlo"]
         lines.append(f"  Monte Carlo  {m['draws']} {m['distribution']} draws, seed {m['seed']}: "
-                     f"Vth {format_value(m['vth_V'][0], 'V')} … {format_value(m['vth_V'][-1], 'V')}"
-                     f", Rth {format_value(m['rth_ohm'][0], 'Ω')} … "
+                     f"Vth {format_value(m['vth_V'][0], 'V')} … "
+                     f"{format_value(m['vth_V'][-1], 'V')}, Rth {format_value(m['rth_ohm'][0], 'Ω')} … "
                      f"{format_value(m['rth_ohm'][-1], 'Ω')} (0.135–99.865 %)")
     li = doc["limits"]
     lines.append(f"  limits ({li['method']}): Vth {format_value(li['vth'][0], 'V')} … "
@@ -390,8 +400,8 @@ def _print_units(m) -> None:
                   f"{format_estimate(ex['rth_ohm'], ud['rth_ohm'], 'Ω')} (± U, k = 2, from "
                   f"{ud['from']})", markup=False)
     tab = Table(show_edge=False)
-    for col in ("DUT", "Vth ± U", "E_n", "Rth ± U", "E_n ", "verdict", "single part that "
-                "would explain it"):
+    for col in ("DUT", "Vth ± U", "E_n", "Rth ± U", "E_n ", "verdict",
+                "single part that would explain it"):
         tab.add_column(col, justify="left" if col in ("DUT", "verdict") or col.startswith(
             "single") else "right")
 

@@ -20,9 +20,8 @@ back for the dense reference (:meth:`sagfit.core.mna.Circuit.solve_dense`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import heapq
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
@@ -128,15 +127,17 @@ def run(program: Program, quantities: np.ndarray) -> tuple[np.ndarray, np.ndarra
     """Vth and Rth for ``quantities`` of shape (quantities, draws), by the recorded
     program (not finite where a draw's pivot vanished)."""
     e = np.asarray(program.stamp @ quantities)
-    for piv, below, right, targets in program.steps:
-        if below.size == 0 or right.size == 0:
-            continue
-        f = e[below] / e[piv]
-        e[targets.ravel()] -= (f[:, None, :] * e[right][None, :, :]).reshape(-1, e.shape[1])
     port_sign = program.port_sign
-    a = e[program.final_a]  # (m, m, draws)
-    b = e[program.final_b]  # (m, 2, draws)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    # a draw whose pivot vanishes gives inf/NaN, handed back to the dense reference
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for piv, below, right, targets in program.steps:
+            if below.size == 0 or right.size == 0:
+                continue
+            f = e[below] / e[piv]
+            e[targets.ravel()] -= (f[:, None, :] * e[right][None, :, :]).reshape(
+                -1, e.shape[1])
+        a = e[program.final_a]  # (m, m, draws)
+        b = e[program.final_b]  # (m, 2, draws)
         if a.shape[0] == 1:
             x = b[0] / a[0, 0]
             out = port_sign[0] * x

@@ -98,7 +98,8 @@ class Circuit:
         q = np.empty((v.shape[1] + 1, v.shape[0]))
         q[0] = 1.0
         q[1:] = v.T
-        q[1:][self._is_r] = 1.0 / q[1:][self._is_r]
+        with np.errstate(divide="ignore"):  # a zero draw: not finite, then the reference
+            q[1:][self._is_r] = 1.0 / q[1:][self._is_r]
         return q
 
     def _stamps(self):

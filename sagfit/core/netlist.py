@@ -164,10 +164,11 @@ def _parse(text, path, port):
                                f"name, found {len(rest)}", lno, c)
         nodes = (rest[0][1].lower(), rest[1][1].lower())
         nodes = tuple("0" if n in GROUND else n for n in nodes)
-        where = dict(line=lno, column=col,
-                     node_at=((rest[0][2], rest[0][0]), (rest[1][2], rest[1][0])))
+        where = {"line": lno, "column": col,
+                 "node_at": ((rest[0][2], rest[0][0]), (rest[1][2], rest[1][0]))}
         if letter in "LC":
-            notes.append(f"{word}: {'inductor taken as a short' if letter == 'L' else 'capacitor taken as an open'} at DC")
+            what = "inductor taken as a short" if letter == "L" else "capacitor taken as an open"
+            notes.append(f"{word}: {what} at DC")
             elements.append(Element(word, letter, nodes, 0.0, **where))
             continue
         vc, vt, vl = rest[-1]
@@ -182,16 +183,21 @@ def _parse(text, path, port):
             raise NetlistError(path, f"cannot read value {vt!r} of {word}", vl, vc) from None
         if letter == "R" and not (value > 0 and math.isfinite(value)):
             raise NetlistError(path, f"resistor {word} must be above 0 Ω and finite", vl, vc)
+        if not math.isfinite(value):
+            raise NetlistError(path, f"value {vt!r} of {word} is not a finite number", vl, vc)
         elements.append(Element(word, letter, nodes, value, control, tol, **where))
     p = port or port_line
     if p is None:
         raise NetlistError(path, "no port: add a line '.port <node+> <node->' or give the "
                            "port nodes", None, None)
     p = tuple("0" if n.lower() in GROUND else n.lower() for n in p)
-    if not elements:
-        raise NetlistError(path, "no elements", None, None)
     if port is not None:  # given as an option: no place in the file
         port_at = ((None, None), (None, None))
+    if p[0] == p[1]:
+        raise NetlistError(path, f"the port's two nodes are the same ({p[0]!r}): give two "
+                           "different nodes", *port_at[1])
+    if not elements:
+        raise NetlistError(path, "no elements", None, None)
     _check(path, elements, p, port_at)
     return Netlist(path, tuple(elements), p, tuple(notes))
 
@@ -241,3 +247,49 @@ def _check(path, elements, port, port_at):
                 raise NetlistError(path, f"{e.name} closes a loop of voltage sources (or "
                                    "inductors, shorts at DC)", e.line, e.column)
             parent[a] = b
+
+
+def apply_tolerances(net: Netlist, text: str, path: str = "<tolerances>") -> Netlist:
+    """The netlist with tolerances from a side table (pure: text in).
+
+    One rule a line, ``PATTERN TOLERANCE`` (whitespace or a comma between): the pattern an
+    element name or a shell-style pattern (``R*``, ``RC?``, ``[RL]*``; case-insensitive),
+    the tolerance ``1%`` or ``0.01``. A later line wins over an earlier one, and the table
+    over a ``tol=`` in the netlist (``* 1%``: every valued part). ``#`` starts a
+    comment. A pattern that
+    matches no valued element, or a tolerance that cannot be read, is a
+    :class:`NetlistError` naming the table's line and column.
+    """
+    import fnmatch
+
+    tol = {e.name: e.tol for e in net.elements}
+    valued = [e.name for e in net.elements if e.kind not in "LC"]
+    given: set[str] = set()
+    for no, raw in enumerate(text.splitlines(), 1):
+        body = re.split(r"#", raw, maxsplit=1)[0]
+        if not body.strip():
+            continue
+        toks = [(m.start() + 1, m.group()) for m in re.finditer(r"[^\s,]+", body)]
+        if len(toks) != 2:
+            raise NetlistError(path, "write one part (or pattern) and its tolerance, e.g. "
+                               "'R* 1%'", no, toks[0][0] if toks else 1)
+        (pc, pat), (tc, tv) = toks
+        try:
+            value = float(tv[:-1]) / 100.0 if tv.endswith("%") else float(tv)
+        except ValueError:
+            raise NetlistError(path, f"cannot read tolerance {tv!r} (write e.g. 1%)", no,
+                               tc) from None
+        if not (math.isfinite(value) and 0 <= value < 1):
+            raise NetlistError(path, f"tolerance {tv!r} must be between 0 and 100 %", no, tc)
+        hits = [n for n in valued if fnmatch.fnmatchcase(n.lower(), pat.lower())]
+        if not hits:
+            raise NetlistError(path, f"{pat!r} matches no element of {net.path} with a "
+                               "value", no, pc)
+        for n in hits:
+            tol[n] = value
+        given.update(hits)
+    from dataclasses import replace
+
+    note = f"tolerances of {len(given)} part(s) from {path}"
+    return replace(net, elements=tuple(replace(e, tol=tol[e.name]) for e in net.elements),
+                   notes=net.notes + (note,))

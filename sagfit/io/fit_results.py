@@ -19,7 +19,7 @@ import numpy as np
 from ..core.errors import ReadingsFileError
 from .files import read_input
 
-__all__ = ["MeasuredUnits", "is_results_file", "read_fit_results", "measured_from_fits"]
+__all__ = ["MeasuredUnits", "is_results_file", "measured_from_fits", "read_fit_results"]
 
 #: the columns of a results CSV this reader needs
 NEEDED = ("dut", "vth", "vth_ci_low", "vth_ci_high", "rth", "rth_ci_low", "rth_ci_high")

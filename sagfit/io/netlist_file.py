@@ -7,23 +7,31 @@ from __future__ import annotations
 import json
 import os
 
-from ..core.netlist import Netlist, NetlistError, parse_netlist
+from ..core.netlist import Netlist, NetlistError, apply_tolerances, parse_netlist
 from .files import read_input
 
 #: a netlist larger than this is refused before it is read
 LIMIT = 64 << 20
 
 
-def read_netlist(path: str, port: tuple[str, str] | None = None) -> Netlist:
-    """Read a SPICE-subset netlist file (UTF-8 or Latin-1)."""
-    raw = read_input(path, NetlistError, what="netlist", limit=LIMIT,
-                     too_large=lambda n: f"{n / 1e6:.0f} MB is larger than a netlist "
+def _text(path: str, what: str) -> str:
+    raw = read_input(path, NetlistError, what=what, limit=LIMIT,
+                     too_large=lambda n: f"{n / 1e6:.0f} MB is larger than a {what} "
                                          f"sagfit reads ({LIMIT >> 20} MB)")
     try:
-        text = raw.decode("utf-8-sig")
+        return raw.decode("utf-8-sig")
     except UnicodeDecodeError:
-        text = raw.decode("latin-1")
-    return parse_netlist(text, path, port)
+        return raw.decode("latin-1")
+
+
+def read_netlist(path: str, port: tuple[str, str] | None = None,
+                 tolerances: str | None = None) -> Netlist:
+    """Read a SPICE-subset netlist file (UTF-8 or Latin-1), with the tolerances of a side
+    table file (``core.netlist.apply_tolerances``) when given."""
+    net = parse_netlist(_text(path, "netlist"), path, port)
+    if tolerances is not None:
+        net = apply_tolerances(net, _text(tolerances, "tolerance table"), tolerances)
+    return net
 
 
 def spec_text(name: str, vth: tuple[float, float], rth: tuple[float, float], method: str,

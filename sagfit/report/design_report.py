@@ -12,8 +12,6 @@ inside the folder.
 from __future__ import annotations
 
 import html
-import json
-import math
 
 import numpy as np
 
@@ -121,14 +119,14 @@ def write_design_report(folder, doc: dict, t, cmp=None, *, inputs=()) -> None:
     """
     from pathlib import Path
 
-    from ..io.outputs import atomic_write, prepare_folder
+    from ..io.outputs import atomic_write, document_text, prepare_folder
     from .plots import figure_svg, save_png
     from .style import REPORT_HTML, RESULTS_JSON, STYLESHEET, batch_figure_name
 
     root = prepare_folder(folder, inputs)
-    atomic_write(root / RESULTS_JSON, json.dumps(doc, indent=2, ensure_ascii=False,
-                                                  allow_nan=False) + "\n",
-                 inputs=inputs, within=root, option="--report")
+    rows = len(doc.get("measured", {}).get("units", ()))
+    atomic_write(root / RESULTS_JSON, document_text(doc, rows=rows), inputs=inputs,
+                 within=root, option="--report")
     figures = []
     for q, draws in (("vth", t.mc_vth), ("rth", t.mc_rth)):
         fig = expected_histogram(draws, q, doc)
@@ -198,8 +196,8 @@ def _methods_table(doc) -> str:
 
 
 def _sensitivity_table(doc) -> str:
-    rows = ["<h2>Which parts matter</h2><table><tr><th>part</th><th>value</th><th>tol</th>"
-            "<th>ΔVth at tol</th><th>rank</th><th>ΔRth at tol</th><th>rank</th></tr>"]
+    rows = [("<h2>Which parts matter</h2><table><tr><th>part</th><th>value</th><th>tol</th>"
+             "<th>ΔVth at tol</th><th>rank</th><th>ΔRth at tol</th><th>rank</th></tr>")]
     for s in doc["sensitivities"][:MAX_REPORT_ROWS]:
         rows.append(f"<tr><td>{_e(s['part'])}</td><td>{_e(format_value(s['value']))}</td>"
                     f"<td>{s['tol_pct']:.3g} %</td>"
@@ -213,13 +211,13 @@ def _sensitivity_table(doc) -> str:
 
 def _units_table(m) -> str:
     ex, ud = m["expected"], m["U_design"]
-    rows = [f"<h2>Measured units against the design</h2><p>Source {_e(m['source'])}. "
+    rows = [(f"<h2>Measured units against the design</h2><p>Source {_e(m['source'])}. "
             f"Expected Vth {_e(format_estimate(ex['vth_V'], ud['vth_V'], 'V'))}, Rth "
             f"{_e(format_estimate(ex['rth_ohm'], ud['rth_ohm'], 'Ω'))} (± U, k = 2, from "
             f"{_e(ud['from'])}). {m['summary']['consistent']} of {m['summary']['units']} "
             "unit(s) consistent.</p><table><tr><th>DUT</th><th>Vth ± U</th><th>E_n</th>"
             "<th>Rth ± U</th><th>E_n</th><th>verdict</th><th class='why'>single part that "
-            "would explain it</th></tr>"]
+            "would explain it</th></tr>")]
 
     def worst(u):
         return max(abs(u["En_vth"] or 0.0), abs(u["En_rth"] or 0.0))
