@@ -18,6 +18,7 @@ from .io.spec import read_spec
 from .core.readings import Readings
 from .core.results import Estimate, FitResult, Fits, Flag
 from .core.units import Accuracy, parse_accuracy
+from .io import tables as _tables  # noqa: F401  (gives Fits.to_dataframe its pandas view)
 
 __version__ = "0.1.0"
 
@@ -33,4 +34,14 @@ __all__ = ["__version__", "fit", "york_line", "read_readings", "read_spec", "acc
            "Readings", "Estimate",
            "FitResult", "Fits", "Flag", "Accuracy", "parse_accuracy", "SagfitError",
            "InputError", "ReadingsFileError", "SpecFileError", "OptionError", "FitError",
-           "HistoryError"]
+           "HistoryError", "plots"]
+
+
+def __getattr__(name):
+    # ``sagfit.plots``: the figure functions, loaded on first use (matplotlib itself only
+    # when a figure is drawn), so ``import sagfit`` stays lean
+    if name == "plots":
+        from .report import plots
+
+        return plots
+    raise AttributeError(f"module 'sagfit' has no attribute {name!r}")

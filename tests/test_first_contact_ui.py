@@ -300,3 +300,57 @@ class TestBatchFigure:
         assert pts == m
         labels = [t.get_text() for t in ax.get_legend().get_texts()]
         assert any("(1990)" in lb for lb in labels) and any("(10)" in lb for lb in labels)
+
+
+class TestPythonApi:
+    def test_to_dataframe_has_the_csv_columns(self, tmp_path):
+        """One row per DUT, the same columns and values as results.csv."""
+        import pandas as pd
+
+        import sagfit
+        from sagfit.io.readings_csv import fits_csv
+        r = sagfit.read_readings(SAMPLES / "fleet_packs.csv")
+        fits = sagfit.fit(r)
+        df = fits.to_dataframe()
+        (tmp_path / "r.csv").write_bytes(b"".join(fits_csv(fits)))
+        csv = pd.read_csv(tmp_path / "r.csv", keep_default_na=False)
+        assert list(df.columns) == list(csv.columns) and len(df) == len(fits) == 6
+        assert df["dut"].tolist() == list(fits.duts)
+        assert df["rth"].to_numpy() == pytest.approx(csv["rth"].to_numpy(), rel=1e-15)
+        assert df["flags"].tolist() == csv["flags"].tolist()
+
+    def test_repr_html_lists_duts_and_escapes(self):
+        import numpy as np
+
+        import sagfit
+        from sagfit.core.readings import Readings
+        i = np.array([0.0, 1.0, 2.0])
+        rd = Readings.from_arrays(voltage=np.r_[5.0 - 0.05 * i, 5.1 - 0.06 * i],
+                                  current=np.r_[i, i], u_voltage=np.full(6, 1e-3),
+                                  dut=["<b>x</b>"] * 3 + ["B2"] * 3)
+        page = sagfit.fit(rd)._repr_html_()
+        assert "&lt;b&gt;x&lt;/b&gt;" in page and "<b>x</b>" not in page
+        assert page.count("<tr>") == 3 and "± " in page and "mΩ" in page
+
+    def test_import_stays_lean_and_plots_are_public(self):
+        """`import sagfit` loads neither pandas nor matplotlib; sagfit.plots is public."""
+        import subprocess
+        import sys
+        code = ("import sys, sagfit; assert 'pandas' not in sys.modules; "
+                "assert 'matplotlib' not in sys.modules; "
+                "assert 'plots' in sagfit.__all__; "
+                "from sagfit import plots; print(plots.batch_figure.__name__)")
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+        assert out.returncode == 0, out.stderr
+        assert out.stdout.strip() == "batch_figure"
+
+    def test_figures_take_a_dut_name(self):
+        import sagfit
+        from sagfit import plots
+        r = sagfit.read_readings(SAMPLES / "fleet_packs.csv")
+        fits = sagfit.fit(r)
+        for fn in (plots.fit_figure, plots.residual_figure, plots.power_figure):
+            by_name, by_index = fn(r, fits, "PK-12"), fn(r, fits, 5)
+            a = by_name.axes[0].lines[0].get_ydata()
+            b = by_index.axes[0].lines[0].get_ydata()
+            assert type(by_name).__name__ == "Figure" and list(a) == list(b)

@@ -386,8 +386,9 @@ def fit_figure(readings, fits, i: int, *, used=None):
 
     ``used`` (boolean mask over all rows of ``readings``) marks the rows the fit used;
     the others are drawn hollow as "left out of the fit". Returns a matplotlib Figure
-    (not saved).
+    (not saved). ``i`` is the DUT's index or its name.
     """
+    i = fits.index(i)
     rows = _rows(readings, i)
     left_out = (np.zeros(rows.stop - rows.start, bool) if used is None
                 else ~np.asarray(used, bool)[rows])
@@ -489,7 +490,8 @@ def residual_figure(readings, fits, i: int, *, used=None):
     """Normalised residuals e/u(e) of DUT ``i`` against current, and against time when
     the readings have times, with the ±2 lines. u(e) is the stated uncertainty of each
     reading's deviation from the line (the scatter s for an OLS fit); rows outside
-    ``used`` are drawn hollow grey."""
+    ``used`` are drawn hollow grey. ``i`` is the DUT's index or its name."""
+    i = fits.index(i)
     rows, cur, z = _residuals(readings, fits, i)
     left_out = (np.zeros(cur.size, bool) if used is None
                 else ~np.asarray(used, bool)[rows])
@@ -533,9 +535,11 @@ def power_figure(readings, fits, i: int):
     tested draw more current than the sweep reached: there the curve is dashed, the
     region shaded and labelled "extrapolated", and so is the maximum-power point when the
     sweep did not come near it (``sagfit.core.extrapolation``).
-    Returns None when Rth ≤ 0 or the DUT was not fitted (no maximum-power point)."""
+    Returns None when Rth ≤ 0 or the DUT was not fitted (no maximum-power point).
+    ``i`` is the DUT's index or its name."""
     from ..core.extrapolation import REACHED
 
+    i = fits.index(i)
     vth, rth = float(fits.vth[i]), float(fits.rth[i])
     if fits.error[i] is not None or not (math.isfinite(vth) and math.isfinite(rth)) or rth <= 0:
         return None
