@@ -354,3 +354,80 @@ class TestPythonApi:
             a = by_name.axes[0].lines[0].get_ydata()
             b = by_index.axes[0].lines[0].get_ydata()
             assert type(by_name).__name__ == "Figure" and list(a) == list(b)
+
+
+class TestDefaultBenchProfile:
+    @pytest.mark.parametrize("platform, env, expect", [
+        ("linux", {"HOME": "/h/ann", "XDG_CONFIG_HOME": "/cfg"}, "/cfg/sagfit/bench.toml"),
+        ("linux", {"HOME": "/h/ann"}, "/h/ann/.config/sagfit/bench.toml"),
+        ("linux", {"HOME": "/h/ann", "XDG_CONFIG_HOME": "rel"},
+         "/h/ann/.config/sagfit/bench.toml"),
+        ("darwin", {"HOME": "/Users/ann"},
+         "/Users/ann/Library/Application Support/sagfit/bench.toml"),
+        ("win32", {"APPDATA": r"C:\\Users\\ann\\AppData\\Roaming"},
+         r"C:\\Users\\ann\\AppData\\Roaming/sagfit/bench.toml"),
+    ])
+    def test_platform_places(self, platform, env, expect):
+        from pathlib import Path
+
+        from sagfit.io.bench import user_bench_path
+        assert user_bench_path(env, platform) == Path(expect)
+
+    @staticmethod
+    def _user_profile(tmp_path, monkeypatch, text):
+        cfg = tmp_path / "cfg"
+        (cfg / "sagfit").mkdir(parents=True)
+        (cfg / "sagfit" / "bench.toml").write_text(text)
+        monkeypatch.setenv("XDG_CONFIG_HOME", str(cfg))
+        return cfg / "sagfit" / "bench.toml"
+
+    def test_user_profile_applies_and_is_named(self, cli, tmp_path, monkeypatch):
+        prof = self._user_profile(tmp_path, monkeypatch, BENCH_UNUSED_AMMETER)
+        run = cli("fit", SAMPLES / "pack_a.csv", "--quiet")
+        assert run.out.startswith(f"bench profile: {prof} (the user's default")
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json").out)
+        assert doc["settings"]["bench"] == str(prof)
+        assert doc["settings"]["bench_source"] == "user configuration"
+        assert doc["settings"]["voltage_accuracy"]["text"] == "0.015%+2mV"
+
+    def test_environment_variable_wins_and_option_wins_over_both(self, cli, tmp_path,
+                                                               monkeypatch):
+        self._user_profile(tmp_path, monkeypatch, BENCH_UNUSED_AMMETER)
+        env_prof = tmp_path / "env.toml"
+        env_prof.write_text('[voltage]\naccuracy = "0.05%+5mV"\n')
+        monkeypatch.setenv("SAGFIT_BENCH", str(env_prof))
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json").out)
+        assert doc["settings"]["bench_source"] == "SAGFIT_BENCH"
+        assert doc["settings"]["voltage_accuracy"]["text"] == "0.05%+5mV"
+        run = cli("fit", SAMPLES / "pack_a.csv", "--quiet")
+        assert "($SAGFIT_BENCH;" in run.out.splitlines()[0]
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json", "--bench",
+                             SAMPLES / "bench.toml").out)
+        assert doc["settings"]["bench_source"] == "--bench"
+        named = cli("fit", SAMPLES / "pack_a.csv", "--bench", SAMPLES / "bench.toml", "-q")
+        assert not named.out.startswith("bench profile:")
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json", "--bench", "none").out)
+        assert doc["settings"]["bench"] is None and doc["settings"]["voltage_accuracy"] is None
+
+    def test_missing_environment_profile_is_a_one_line_error(self, cli, tmp_path,
+                                                             monkeypatch):
+        monkeypatch.setenv("SAGFIT_BENCH", str(tmp_path / "nope.toml"))
+        run = cli("fit", SAMPLES / "pack_a.csv")
+        assert run.code == 2 and run.err.startswith("error: SAGFIT_BENCH=")
+        assert len(run.err.splitlines()) == 1
+
+    @pytest.mark.parametrize("cmd", ["accept", "record", "plan"])
+    def test_other_commands_use_it(self, cli, tmp_path, monkeypatch, cmd):
+        prof = self._user_profile(tmp_path, monkeypatch, BENCH_UNUSED_AMMETER)
+        args = {"accept": ["accept", SAMPLES / "pack_a.csv", "--spec",
+                           SAMPLES / "accept_spec.toml"],
+                "record": ["record", SAMPLES / "pack_a.csv", "--db", tmp_path / "h.sqlite"],
+                "plan": ["plan", "--vth", "12.6V", "--rth", "50mohm", "--max-current", "10A",
+                         "--max-power", "25W"]}[cmd]
+        run = cli(*args, "--quiet") if cmd != "plan" else cli(*args)
+        assert run.out.startswith(f"bench profile: {prof}"), run.err
+
+    def test_the_developers_own_profile_never_leaks(self):
+        """The suite's autouse fixture: no SAGFIT_BENCH, no user profile found."""
+        from sagfit.io.bench import default_bench
+        assert default_bench() == (None, "")

@@ -13,9 +13,10 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt, WideOpt,
-                     VoltageNoiseOpt, check_out_option, fit_settings, guarded,
-                     load_readings, progress, settings_record, show_progress, write_document)
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+                     WideOpt, VoltageNoiseOpt, announce_bench, check_out_option, resolve_bench,
+                     fit_settings, guarded, load_readings, progress, settings_record,
+                     show_progress, write_document)
 
 MAX_TABLE_ROWS = 40
 
@@ -64,6 +65,7 @@ def accept_command(
 
         if rule is not None and rule not in RULES:
             raise OptionError("--rule", f"{rule!r}: use one of {', '.join(RULES)}")
+        bench, bench_source = resolve_bench(bench)
         inputs = [file, spec] + ([bench] if bench else [])
         the_spec = read_spec(spec)
         if confidence is None:
@@ -71,7 +73,9 @@ def accept_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
         from ..io.dataset import is_dataset
 
         if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask

@@ -33,7 +33,9 @@ IndependentOpt = Annotated[bool, typer.Option(
                                  "meters, a range change mid-sweep, readings days apart) "
                                  "instead of one gain and one offset error per sweep.")]
 BenchOpt = Annotated[Optional[str], typer.Option(
-    "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
+    "--bench", help="Bench profile (TOML) with the instruments' accuracies [default: "
+                    "$SAGFIT_BENCH, else bench.toml in the user's sagfit configuration "
+                    "folder; 'none' for no profile].")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON document to stdout.")]
 QuietOpt = Annotated[bool, typer.Option(
     "--quiet", "-q", help="Routine run: leave out the safety cautions in the terminal "
@@ -74,10 +76,36 @@ def guarded(source: str = "") -> Iterator[None]:
         raise typer.Exit(2) from None
 
 
+def resolve_bench(bench: str | None) -> tuple[str | None, str]:
+    """The bench profile a command uses and where it came from: ``--bench`` (``none``
+    for no profile), else the default of :func:`sagfit.io.bench.default_bench`."""
+    if bench is not None:
+        if bench.strip().lower() == "none":
+            return None, ""
+        return bench, "--bench"
+    from ..io.bench import default_bench
+
+    return default_bench()
+
+
+def announce_bench(settings: dict, json_out: bool = False) -> None:
+    """Say which profile applied when the user did not name it (terminal only; the JSON
+    has ``settings.bench`` and ``settings.bench_source``)."""
+    src = settings.get("bench_source")
+    if json_out or not settings.get("bench") or src == "--bench":
+        return
+    where = "$SAGFIT_BENCH" if src == "SAGFIT_BENCH" else "the user's default"
+    write_stdout(f"bench profile: {settings['bench']} ({where}; --bench names another, "
+                 "--bench none uses none)\n")
+
+
 def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=None,
                  bench=None, confidence=None, *, voltage_noise=None, current_noise=None,
-                 independent_errors=False) -> dict:
-    """Merge the command-line options over a bench profile into fit settings."""
+                 independent_errors=False, bench_source: str = "--bench") -> dict:
+    """Merge the command-line options over a bench profile into fit settings.
+
+    ``bench`` is the profile's path (resolved by :func:`resolve_bench`), ``bench_source``
+    where it came from."""
     from ..core.units import parse_accuracy, parse_percent
 
     settings: dict = {"voltage_accuracy": None, "current_accuracy": None,
@@ -90,7 +118,7 @@ def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=No
         settings.update(voltage_accuracy=prof.voltage_accuracy,
                         current_accuracy=prof.current_accuracy,
                         load_tolerance=prof.load_tolerance, instruments=prof.instruments,
-                        bench=bench)
+                        bench=bench, bench_source=bench_source)
         if prof.confidence is not None:
             settings["confidence"] = prof.confidence
     try:
@@ -143,6 +171,7 @@ def settings_record(settings: dict) -> dict:
             "current_accuracy": acc(settings["current_accuracy"]),
             "load_tolerance_pct": settings["load_tolerance"],
             "bench": settings.get("bench"),
+            "bench_source": settings.get("bench_source") if settings.get("bench") else None,
             "instruments": [i.to_dict() for i in settings.get("instruments", ())]}
 
 

@@ -8,10 +8,10 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
-                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt, WideOpt,
-                     VoltageNoiseOpt, check_out_option, fit_settings, guarded,
-                     load_readings, progress, require_some_fit, settings_record, show_progress,
-                     write_document)
+                     IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VerboseOpt, VoltageAccOpt,
+                     WideOpt, VoltageNoiseOpt, announce_bench, check_out_option, resolve_bench,
+                     fit_settings, guarded, load_readings, progress, require_some_fit,
+                     settings_record, show_progress, write_document)
 
 MAX_TABLE_ROWS = 40
 
@@ -63,10 +63,13 @@ def fit_command(
         from ..core.analysis import fit
         from ..core.errors import OptionError
 
+        bench, bench_source = resolve_bench(bench)
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")

@@ -11,9 +11,9 @@ import typer
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt, DutOpt,
                      IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, VoltageAccOpt,
-                     VoltageNoiseOpt, WideOpt, fit_settings, guarded, interactive, load_readings,
-                     progress,
-                     require_some_fit, settings_record, show_progress, write_document, write_stdout)
+                     VoltageNoiseOpt, WideOpt, announce_bench, fit_settings, resolve_bench,
+                     guarded, interactive, load_readings, progress, require_some_fit,
+                     settings_record, show_progress, write_document, write_stdout)
 
 MAX_TABLE_ROWS = 40
 DEFAULT_DB = "sagfit-history.sqlite"  # the same name as sagfit.history.DEFAULT_DB
@@ -52,6 +52,7 @@ def record_command(
     from ..core.safety import caution_inputs, merged_cautions
 
     with guarded(files[0]):
+        bench, bench_source = resolve_bench(bench)
         inputs = list(files) + ([bench] if bench else [])
         from ..io.history import check_db_path
 
@@ -59,7 +60,9 @@ def record_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
     fitted = []
     for file in files:
         with guarded(file):

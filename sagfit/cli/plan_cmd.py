@@ -10,8 +10,10 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, WideOpt, fit_settings,
-                     guarded, interactive, progress, write_document, write_stdout)
+from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, CurrentAccOpt,
+                     JsonOpt, LoadTolOpt, VoltageAccOpt, WideOpt, announce_bench, fit_settings,
+                     resolve_bench, guarded, interactive, progress, write_document,
+                     write_stdout)
 
 INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
 
@@ -358,9 +360,12 @@ def plan_command(
             if value is None:
                 raise OptionError(name, f"is required (the expected value, e.g. {example})")
 
+        bench, bench_source = resolve_bench(bench)
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 voltage_noise=voltage_noise, current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
         from ..core.errors import InputError
 
         try:

@@ -187,10 +187,13 @@ def _settings_rows(srec: Mapping) -> list[tuple[str, str]]:
     tol = srec.get("load_tolerance_pct")
     rows.append(("Load tolerance", _e(f"{tol:g} %") if isinstance(tol, (int, float))
                  else '<span class="muted">not stated</span>'))
-    rows.append(("Bench profile", _e(srec.get("bench")) if srec.get("bench")
+    src = {"SAGFIT_BENCH": " (from $SAGFIT_BENCH)",
+           "user configuration": " (the user's default profile)"}.get(
+        srec.get("bench_source") or "", "")
+    rows.append(("Bench profile", _e(str(srec.get("bench")) + src) if srec.get("bench")
                  else '<span class="muted">none</span>'))
     known = {"confidence", "voltage_accuracy", "current_accuracy", "load_tolerance_pct",
-             "bench", "instruments"}
+             "bench", "bench_source", "instruments"}
     for key in sorted(k for k in srec if k not in known):
         val = srec[key]
         if val is None or val is False or val == [] or val == {}:
