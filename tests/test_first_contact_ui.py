@@ -431,3 +431,46 @@ class TestDefaultBenchProfile:
         """The suite's autouse fixture: no SAGFIT_BENCH, no user profile found."""
         from sagfit.io.bench import default_bench
         assert default_bench() == (None, "")
+
+
+def _axis_unit(fig, which="y"):
+    import re
+    fig.canvas.draw()
+    ax = fig.axes[0]
+    label = (ax.yaxis if which == "y" else ax.xaxis).label.get_text()
+    return re.search(r"\(([^)]*)\)$", label).group(1)
+
+
+class TestOneUnitPerAxisAndLegend:
+    def test_axis_near_a_decade_takes_the_legends_prefix(self):
+        """Values 538…990 µΩ: ticks up to 1000 would choose mΩ; locked to the legend's
+        µΩ, axis and legend read alike."""
+        import numpy as np
+
+        from sagfit.report.plots import format_like, house_style, new_figure, si_axis
+        y = np.array([538e-6, 700e-6, 890e-6, 990e-6])
+        with house_style():
+            fig, ax = new_figure()
+            ax.plot(np.arange(4), y)
+            like = float(y.max())
+            ax.axhline(807.6e-6, label=f"threshold {format_like(807.6e-6, 'Ω', like)}")
+            si_axis(ax, "y", "Ω", "Internal resistance", like=like)
+        assert _axis_unit(fig) == "µΩ"
+        assert ax.get_legend_handles_labels()[1][0] == "threshold 807.6 µΩ"
+
+    def test_knee_and_power_legends_use_the_axis_units(self):
+        import re
+
+        import sagfit
+        from sagfit import plots
+        r = sagfit.read_readings(SAMPLES / "bench_supply_limit.csv")
+        fits = sagfit.fit(r)
+        fig = plots.fit_figure(r, fits, 0)
+        knee = next(lb for lb in fig.axes[0].get_legend_handles_labels()[1]
+                    if lb.startswith("knee at"))
+        x_unit, y_unit = _axis_unit(fig, "x"), _axis_unit(fig, "y")
+        assert re.fullmatch(rf"knee at [\d.]+ {x_unit}, [\d.]+ {y_unit}", knee), knee
+        fig = plots.power_figure(r, fits, 0)
+        star = next(lb for lb in fig.axes[0].get_legend_handles_labels()[1]
+                    if lb.startswith("maximum power"))
+        assert f" {_axis_unit(fig)} at " in star
