@@ -474,3 +474,55 @@ class TestOneUnitPerAxisAndLegend:
         star = next(lb for lb in fig.axes[0].get_legend_handles_labels()[1]
                     if lb.startswith("maximum power"))
         assert f" {_axis_unit(fig)} at " in star
+
+
+class TestOutOnEveryCommand:
+    """`--out x.csv|x.json` on every command that produces results."""
+
+    def test_predict_plan_trend_design_write_csv_and_json(self, cli, tmp_path):
+        import csv as csvmod
+        fit_json = tmp_path / "fit.json"
+        assert cli("fit", SAMPLES / "fleet_packs.csv", "--out", fit_json, "-q").code == 0
+        db = tmp_path / "h.sqlite"
+        files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))[:3]
+        assert cli("record", *files, "--db", db, "-q").code == 0
+        net = tmp_path / "d.cir"  # invented divider
+        net.write_text("* divider\nV1 in 0 DC 12 tol=1%\nR1 in tap 2k tol=1%\n"
+                       "R2 tap 0 2k tol=1%\n.port tap 0\n")
+        runs = {
+            "predict": ["predict", fit_json, "--load", "1,open"],
+            "plan": ["plan", "--vth", "12.6V", "--rth", "50mohm", "--max-current", "10A",
+                     "--max-power", "25W"],
+            "trend": ["trend", "--db", db],
+            "design": ["design", net, "--draws", "200"],
+        }
+        rows = {"predict": 12, "plan": 6, "trend": 16}
+        for name, args in runs.items():
+            for ext in ("csv", "json"):
+                out = tmp_path / f"{name}.{ext}"
+                run = cli(*args, "--out", out)
+                assert run.code in (0, 1), (name, run.err)
+                text = out.read_text(encoding="utf-8")
+                if ext == "json":
+                    doc = json.loads(text)
+                    assert doc == json.loads(cli(*args, "--json").out), name
+                elif name in rows:
+                    table = list(csvmod.DictReader(text.splitlines()))
+                    assert len(table) == rows[name], name
+            bad = cli(*args, "--out", tmp_path / f"{name}.txt")
+            assert bad.code == 2 and "--out" in bad.err, name
+
+    def test_predict_csv_marks_open_circuit_by_an_empty_load(self, cli, tmp_path):
+        import csv as csvmod
+        fit_json = tmp_path / "fit.json"
+        cli("fit", SAMPLES / "pack_a.csv", "--out", fit_json, "-q")
+        cli("predict", fit_json, "--load", "open,2.2", "--out", tmp_path / "p.csv")
+        table = list(csvmod.DictReader((tmp_path / "p.csv").read_text().splitlines()))
+        assert [r["load_ohm"] for r in table] == ["", "2.2"]
+        assert float(table[0]["current_A"]) == 0.0
+
+    def test_dut_option_reads_alike_everywhere(self, cli):
+        """The same --dut help on every command that has it."""
+        for cmd in ("fit", "predict", "accept", "record", "trend"):
+            text = " ".join(cli(cmd, "--help").out.split())
+            assert "Only these DUTs, e.g. 'A1' or 'A1,A7'." in text, cmd

@@ -213,6 +213,20 @@ def check_out_option(out: str | None, inputs) -> None:
         raise OptionError("--out", f"{out}: use a .csv or .json file name")
 
 
+def write_out(out: str, doc: dict, csv_columns, inputs=()) -> None:
+    """``--out``: ``.json`` → the document ``--json`` prints; ``.csv`` → one row per item
+    (``csv_columns``: name → array or list; SI units, full precision, non-finite numbers
+    as empty cells). Written atomically, never over an input."""
+    from ..io.outputs import atomic_write, document_text
+
+    if out.lower().endswith(".json"):
+        atomic_write(out, document_text(doc), inputs=inputs)
+    else:
+        from ..io.readings_csv import table_csv_chunks
+
+        atomic_write(out, table_csv_chunks(csv_columns), inputs=inputs)
+
+
 def require_some_fit(file: str, fits) -> None:
     """A file in which no DUT could be fitted is bad input (exit 2), with the reason."""
     if len(fits) and not fits.ok.any():

@@ -13,7 +13,7 @@ import numpy as np
 import typer
 
 from . import app
-from .common import JsonOpt, guarded, write_stdout
+from .common import JsonOpt, check_out_option, guarded, write_stdout
 from ..core.errors import OptionError
 from ..core.formatting import format_value
 from ..core.mna import Circuit
@@ -58,7 +58,8 @@ def design_command(
     u_rth: Annotated[Optional[str], typer.Option(
         "--u-rth", help="Its expanded uncertainty U (k=2), e.g. 5ohm.")] = None,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="CSV of the per-part sensitivities.")] = None,
+        "--out", help="Also write the results: a .csv file gets the per-part "
+                      "sensitivities, a .json file the document of --json.")] = None,
     json_out: JsonOpt = False,
 ) -> None:
     """Expected equivalent of a circuit from its netlist and tolerances."""
@@ -69,6 +70,7 @@ def design_command(
             raise OptionError(f"--distribution: uniform or normal, not {distribution!r}")
         if draws < 0 or (limits == "monte-carlo" and draws < 100):
             raise OptionError("--draws: at least 100 for monte-carlo limits, never negative")
+        check_out_option(out, [netlist])
         p = None
         if port is not None:
             parts = [s.strip() for s in port.split(",")]
@@ -86,7 +88,10 @@ def design_command(
         if spec_out:
             write_spec(spec_out, spec_text(f"design {net.path}", doc["limits"]["vth"],
                                            doc["limits"]["rth"], limits, net.path), (netlist,))
-        if out:
+        if out and out.lower().endswith(".json"):
+            write_spec(out, json.dumps(doc, indent=2, allow_nan=False, default=float) + "\n",
+                       (netlist,))
+        elif out:
             buf = io.StringIO()
             w = csv.writer(buf)
             w.writerow(["part", "value", "tol_pct", "dVth_V", "dRth_ohm"])

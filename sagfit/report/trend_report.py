@@ -26,7 +26,7 @@ from ..core.trend import DAY, iso_date
 from .style import REPORT_HTML, RESULTS_CSV, RESULTS_JSON, STYLESHEET, batch_figure_name
 from .style import dut_figure_name
 
-__all__ = ["write_trend_report", "ALL_FIGURES_UP_TO", "MAX_FIGURES"]
+__all__ = ["write_trend_report", "trends_csv", "ALL_FIGURES_UP_TO", "MAX_FIGURES"]
 
 ALL_FIGURES_UP_TO = 60
 MAX_FIGURES = 200
@@ -116,7 +116,7 @@ def _fleet_figure(trends, members, key, excess_pct):
     return fig
 
 
-def _csv(trends) -> str:
+def trends_csv(trends) -> str:
     """``results.csv``: one row per DUT, through the project's CSV writer (numbers as
     ``%.10g``, non-finite values as empty cells, text neutralised and quoted as needed)."""
     from ..io.readings_csv import table_csv
@@ -254,7 +254,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     parts.append("</body></html>\n")
     atomic_write(root / RESULTS_JSON, document_text(doc), inputs=inputs, within=root,
                  option="--report")
-    atomic_write(root / RESULTS_CSV, _csv(trends), inputs=inputs, within=root,
+    atomic_write(root / RESULTS_CSV, trends_csv(trends), inputs=inputs, within=root,
                  option="--report")
     atomic_write(root / REPORT_HTML, "\n".join(parts), inputs=inputs, within=root,
                  option="--report")
