@@ -249,13 +249,13 @@ class TestOneReportScheme:
         """fit, accept and trend reports: report.html, results.json/csv, fig-*.png, and the
         same style sheet inline."""
         from sagfit.report.style import STYLESHEET
-        cli("fit", SAMPLES / "fleet_packs.csv", "--report", tmp_path / "f", "--quiet")
-        cli("accept", SAMPLES / "accept_reel.csv", "--spec", SAMPLES / "accept_spec.toml",
+        cli("fit", SAMPLES / "pack_a.csv", "--report", tmp_path / "f", "--quiet")
+        cli("accept", SAMPLES / "pack_a.csv", "--spec", SAMPLES / "accept_spec.toml",
             "--report", tmp_path / "a", "--quiet")
         db = tmp_path / "h.sqlite"
         files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))[:3]
         cli("record", *files, "--db", db, "--quiet")
-        cli("trend", "--db", db, "--report", tmp_path / "t")
+        cli("trend", "--db", db, "--dut", "C05", "--report", tmp_path / "t")
         for sub in "fat":
             names = {p.name for p in (tmp_path / sub).iterdir()}
             assert {"report.html", "results.json", "results.csv"} <= names, sub
@@ -520,6 +520,12 @@ class TestOutOnEveryCommand:
         table = list(csvmod.DictReader((tmp_path / "p.csv").read_text().splitlines()))
         assert [r["load_ohm"] for r in table] == ["", "2.2"]
         assert float(table[0]["current_A"]) == 0.0
+
+    def test_report_option_reads_alike_everywhere(self, cli):
+        for cmd in ("fit", "accept", "trend"):
+            text = " ".join(cli(cmd, "--help").out.split())
+            assert ("Write a report into this folder: report.html with figures, "
+                    "results.json, results.csv, PNGs.") in text, cmd
 
     def test_dut_option_reads_alike_everywhere(self, cli):
         """The same --dut help on every command that has it."""

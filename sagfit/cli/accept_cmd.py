@@ -44,8 +44,8 @@ def accept_command(
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the decisions to this .csv or .json file.")] = None,
     report: Annotated[Optional[str], typer.Option(
-        "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
-                         "folder.")] = None,
+        "--report", help="Write a report into this folder: report.html with figures, "
+                         "results.json, results.csv, PNGs.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
     wide: WideOpt = False,

@@ -47,8 +47,8 @@ def fit_command(
         "--robust", help="Refit with Huber's loss (c = 1.345): readings beyond c standard "
                                 "residuals lose weight.")] = False,
     report: Annotated[Optional[str], typer.Option(
-        "--report", help="Write a self-contained report (HTML, PNG, JSON, CSV) into this "
-                         "folder.")] = None,
+        "--report", help="Write a report into this folder: report.html with figures, "
+                         "results.json, results.csv, PNGs.")] = None,
     figures: Annotated[str, typer.Option(
         "--figures", help="Per-DUT figures in the report: flagged, all or none.")] = "flagged",
     scheduler: Annotated[Optional[str], typer.Option(

@@ -271,8 +271,8 @@ def trend_command(
     confidence: ConfidenceOpt = None,
     json_out: JsonOpt = False,
     report: Annotated[Optional[str], typer.Option(
-        "--report", help="Write a trend report (HTML with figures, JSON, CSV) into this "
-                         "folder.")] = None,
+        "--report", help="Write a report into this folder: report.html with figures, "
+                         "results.json, results.csv, PNGs.")] = None,
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the trends to this .csv or .json file.")] = None,
     wide: WideOpt = False,
