@@ -532,3 +532,20 @@ class TestOutOnEveryCommand:
         for cmd in ("fit", "predict", "accept", "record", "trend"):
             text = " ".join(cli(cmd, "--help").out.split())
             assert "Only these DUTs, e.g. 'A1' or 'A1,A7'." in text, cmd
+
+
+class TestReportCautionsFollowTheData:
+    def test_electronic_load_report_has_no_resistor_or_battery_reminder(self, cli, tmp_path):
+        """A regulator swept with an electronic load (I, V): the report's standing
+        reminders speak of neither load resistors nor battery packs."""
+        p = tmp_path / "iv.csv"  # invented: 5 V regulator, electronic-load sweep
+        p.write_text("current_A,voltage_V\n0,5.021\n0.5,5.002\n1.0,4.983\n1.5,4.964\n")
+        assert cli("fit", p, "--report", tmp_path / "r", "-q").code == 0
+        page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
+        assert "never measure it by shorting the terminals" in page
+        assert "Load resistors get hot" not in page and "Battery packs" not in page
+
+    def test_resistor_report_keeps_the_resistor_reminder(self, cli, tmp_path):
+        assert cli("fit", SAMPLES / "pack_a.csv", "--report", tmp_path / "r", "-q").code == 0
+        page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
+        assert "Load resistors get hot" in page
