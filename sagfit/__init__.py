@@ -22,6 +22,7 @@ from .io.trace_file import read_trace
 from .core.readings import Readings
 from .core.results import Estimate, FitResult, Fits, Flag
 from .core.units import Accuracy, parse_accuracy
+from .io import tables as _tables  # noqa: F401  (gives Fits.to_dataframe its pandas view)
 
 __version__ = "0.1.0"
 
@@ -39,4 +40,14 @@ __all__ = ["__version__", "fit", "york_line", "read_readings", "read_spec", "acc
            "FitResult", "Fits", "Flag", "Accuracy", "parse_accuracy", "SagfitError",
            "InputError", "ReadingsFileError", "SpecFileError", "OptionError", "FitError",
            "HistoryError", "read_trace", "Trace", "find_steps", "steps_to_readings",
-           "find_pulses", "fit_pulses", "predict_voltage"]
+           "find_pulses", "fit_pulses", "predict_voltage", "plots"]
+
+
+def __getattr__(name):
+    # ``sagfit.plots``: the figure functions, loaded on first use (matplotlib itself only
+    # when a figure is drawn), so ``import sagfit`` stays lean
+    if name == "plots":
+        from .report import plots
+
+        return plots
+    raise AttributeError(f"module 'sagfit' has no attribute {name!r}")

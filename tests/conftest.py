@@ -21,6 +21,22 @@ ROOT = pathlib.Path(__file__).resolve().parents[1]
 SAMPLES = ROOT / "sample_runs"
 
 
+@pytest.fixture(autouse=True)
+def _no_user_bench_profile(monkeypatch, tmp_path_factory):
+    """The developer's own default bench profile ($SAGFIT_BENCH, ~/.config/sagfit/...)
+    never reaches a test: the variable is removed and the configuration places point to
+    an empty folder (HOME is left alone: matplotlib keeps its font cache there)."""
+    import sys
+
+    empty = tmp_path_factory.getbasetemp() / "no-user-config"
+    empty.mkdir(exist_ok=True)
+    monkeypatch.delenv("SAGFIT_BENCH", raising=False)
+    monkeypatch.setenv("XDG_CONFIG_HOME", str(empty))
+    monkeypatch.setenv("APPDATA", str(empty))
+    if sys.platform == "darwin":
+        monkeypatch.setenv("HOME", str(empty))
+
+
 @dataclass
 class Run:
     code: int

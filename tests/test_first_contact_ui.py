@@ -249,13 +249,13 @@ class TestOneReportScheme:
         """fit, accept and trend reports: report.html, results.json/csv, fig-*.png, and the
         same style sheet inline."""
         from sagfit.report.style import STYLESHEET
-        cli("fit", SAMPLES / "fleet_packs.csv", "--report", tmp_path / "f", "--quiet")
-        cli("accept", SAMPLES / "accept_reel.csv", "--spec", SAMPLES / "accept_spec.toml",
+        cli("fit", SAMPLES / "pack_a.csv", "--report", tmp_path / "f", "--quiet")
+        cli("accept", SAMPLES / "pack_a.csv", "--spec", SAMPLES / "accept_spec.toml",
             "--report", tmp_path / "a", "--quiet")
         db = tmp_path / "h.sqlite"
         files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))[:3]
         cli("record", *files, "--db", db, "--quiet")
-        cli("trend", "--db", db, "--report", tmp_path / "t")
+        cli("trend", "--db", db, "--dut", "C05", "--report", tmp_path / "t")
         for sub in "fat":
             names = {p.name for p in (tmp_path / sub).iterdir()}
             assert {"report.html", "results.json", "results.csv"} <= names, sub
@@ -300,3 +300,252 @@ class TestBatchFigure:
         assert pts == m
         labels = [t.get_text() for t in ax.get_legend().get_texts()]
         assert any("(1990)" in lb for lb in labels) and any("(10)" in lb for lb in labels)
+
+
+class TestPythonApi:
+    def test_to_dataframe_has_the_csv_columns(self, tmp_path):
+        """One row per DUT, the same columns and values as results.csv."""
+        import pandas as pd
+
+        import sagfit
+        from sagfit.io.readings_csv import fits_csv
+        r = sagfit.read_readings(SAMPLES / "fleet_packs.csv")
+        fits = sagfit.fit(r)
+        df = fits.to_dataframe()
+        (tmp_path / "r.csv").write_bytes(b"".join(fits_csv(fits)))
+        csv = pd.read_csv(tmp_path / "r.csv", keep_default_na=False)
+        assert list(df.columns) == list(csv.columns) and len(df) == len(fits) == 6
+        assert df["dut"].tolist() == list(fits.duts)
+        assert df["rth"].to_numpy() == pytest.approx(csv["rth"].to_numpy(), rel=1e-15)
+        assert df["flags"].tolist() == csv["flags"].tolist()
+
+    def test_repr_html_lists_duts_and_escapes(self):
+        import numpy as np
+
+        import sagfit
+        from sagfit.core.readings import Readings
+        i = np.array([0.0, 1.0, 2.0])
+        rd = Readings.from_arrays(voltage=np.r_[5.0 - 0.05 * i, 5.1 - 0.06 * i],
+                                  current=np.r_[i, i], u_voltage=np.full(6, 1e-3),
+                                  dut=["<b>x</b>"] * 3 + ["B2"] * 3)
+        page = sagfit.fit(rd)._repr_html_()
+        assert "&lt;b&gt;x&lt;/b&gt;" in page and "<b>x</b>" not in page
+        assert page.count("<tr>") == 3 and "± " in page and "mΩ" in page
+
+    def test_import_stays_lean_and_plots_are_public(self):
+        """`import sagfit` loads neither pandas nor matplotlib; sagfit.plots is public."""
+        import subprocess
+        import sys
+        code = ("import sys, sagfit; assert 'pandas' not in sys.modules; "
+                "assert 'matplotlib' not in sys.modules; "
+                "assert 'plots' in sagfit.__all__; "
+                "from sagfit import plots; print(plots.batch_figure.__name__)")
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+        assert out.returncode == 0, out.stderr
+        assert out.stdout.strip() == "batch_figure"
+
+    def test_figures_take_a_dut_name(self):
+        import sagfit
+        from sagfit import plots
+        r = sagfit.read_readings(SAMPLES / "fleet_packs.csv")
+        fits = sagfit.fit(r)
+        for fn in (plots.fit_figure, plots.residual_figure, plots.power_figure):
+            by_name, by_index = fn(r, fits, "PK-12"), fn(r, fits, 5)
+            a = by_name.axes[0].lines[0].get_ydata()
+            b = by_index.axes[0].lines[0].get_ydata()
+            assert type(by_name).__name__ == "Figure" and list(a) == list(b)
+
+
+class TestDefaultBenchProfile:
+    @pytest.mark.parametrize("platform, env, expect", [
+        ("linux", {"HOME": "/h/ann", "XDG_CONFIG_HOME": "/cfg"}, "/cfg/sagfit/bench.toml"),
+        ("linux", {"HOME": "/h/ann"}, "/h/ann/.config/sagfit/bench.toml"),
+        ("linux", {"HOME": "/h/ann", "XDG_CONFIG_HOME": "rel"},
+         "/h/ann/.config/sagfit/bench.toml"),
+        ("darwin", {"HOME": "/Users/ann"},
+         "/Users/ann/Library/Application Support/sagfit/bench.toml"),
+        ("win32", {"APPDATA": r"C:\\Users\\ann\\AppData\\Roaming"},
+         r"C:\\Users\\ann\\AppData\\Roaming/sagfit/bench.toml"),
+    ])
+    def test_platform_places(self, platform, env, expect):
+        from pathlib import Path
+
+        from sagfit.io.bench import user_bench_path
+        assert user_bench_path(env, platform) == Path(expect)
+
+    @staticmethod
+    def _user_profile(tmp_path, monkeypatch, text):
+        cfg = tmp_path / "cfg"
+        (cfg / "sagfit").mkdir(parents=True)
+        (cfg / "sagfit" / "bench.toml").write_text(text)
+        monkeypatch.setenv("XDG_CONFIG_HOME", str(cfg))
+        return cfg / "sagfit" / "bench.toml"
+
+    def test_user_profile_applies_and_is_named(self, cli, tmp_path, monkeypatch):
+        prof = self._user_profile(tmp_path, monkeypatch, BENCH_UNUSED_AMMETER)
+        run = cli("fit", SAMPLES / "pack_a.csv", "--quiet")
+        assert run.out.startswith(f"bench profile: {prof} (the user's default")
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json").out)
+        assert doc["settings"]["bench"] == str(prof)
+        assert doc["settings"]["bench_source"] == "user configuration"
+        assert doc["settings"]["voltage_accuracy"]["text"] == "0.015%+2mV"
+
+    def test_environment_variable_wins_and_option_wins_over_both(self, cli, tmp_path,
+                                                               monkeypatch):
+        self._user_profile(tmp_path, monkeypatch, BENCH_UNUSED_AMMETER)
+        env_prof = tmp_path / "env.toml"
+        env_prof.write_text('[voltage]\naccuracy = "0.05%+5mV"\n')
+        monkeypatch.setenv("SAGFIT_BENCH", str(env_prof))
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json").out)
+        assert doc["settings"]["bench_source"] == "SAGFIT_BENCH"
+        assert doc["settings"]["voltage_accuracy"]["text"] == "0.05%+5mV"
+        run = cli("fit", SAMPLES / "pack_a.csv", "--quiet")
+        assert "($SAGFIT_BENCH;" in run.out.splitlines()[0]
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json", "--bench",
+                             SAMPLES / "bench.toml").out)
+        assert doc["settings"]["bench_source"] == "--bench"
+        named = cli("fit", SAMPLES / "pack_a.csv", "--bench", SAMPLES / "bench.toml", "-q")
+        assert not named.out.startswith("bench profile:")
+        doc = json.loads(cli("fit", SAMPLES / "pack_a.csv", "--json", "--bench", "none").out)
+        assert doc["settings"]["bench"] is None and doc["settings"]["voltage_accuracy"] is None
+
+    def test_missing_environment_profile_is_a_one_line_error(self, cli, tmp_path,
+                                                             monkeypatch):
+        monkeypatch.setenv("SAGFIT_BENCH", str(tmp_path / "nope.toml"))
+        run = cli("fit", SAMPLES / "pack_a.csv")
+        assert run.code == 2 and run.err.startswith("error: SAGFIT_BENCH=")
+        assert len(run.err.splitlines()) == 1
+
+    @pytest.mark.parametrize("cmd", ["accept", "record", "plan"])
+    def test_other_commands_use_it(self, cli, tmp_path, monkeypatch, cmd):
+        prof = self._user_profile(tmp_path, monkeypatch, BENCH_UNUSED_AMMETER)
+        args = {"accept": ["accept", SAMPLES / "pack_a.csv", "--spec",
+                           SAMPLES / "accept_spec.toml"],
+                "record": ["record", SAMPLES / "pack_a.csv", "--db", tmp_path / "h.sqlite"],
+                "plan": ["plan", "--vth", "12.6V", "--rth", "50mohm", "--max-current", "10A",
+                         "--max-power", "25W"]}[cmd]
+        run = cli(*args, "--quiet") if cmd != "plan" else cli(*args)
+        assert run.out.startswith(f"bench profile: {prof}"), run.err
+
+    def test_the_developers_own_profile_never_leaks(self):
+        """The suite's autouse fixture: no SAGFIT_BENCH, no user profile found."""
+        from sagfit.io.bench import default_bench
+        assert default_bench() == (None, "")
+
+
+def _axis_unit(fig, which="y"):
+    import re
+    fig.canvas.draw()
+    ax = fig.axes[0]
+    label = (ax.yaxis if which == "y" else ax.xaxis).label.get_text()
+    return re.search(r"\(([^)]*)\)$", label).group(1)
+
+
+class TestOneUnitPerAxisAndLegend:
+    def test_axis_near_a_decade_takes_the_legends_prefix(self):
+        """Values 538…990 µΩ: ticks up to 1000 would choose mΩ; locked to the legend's
+        µΩ, axis and legend read alike."""
+        import numpy as np
+
+        from sagfit.report.plots import format_like, house_style, new_figure, si_axis
+        y = np.array([538e-6, 700e-6, 890e-6, 990e-6])
+        with house_style():
+            fig, ax = new_figure()
+            ax.plot(np.arange(4), y)
+            like = float(y.max())
+            ax.axhline(807.6e-6, label=f"threshold {format_like(807.6e-6, 'Ω', like)}")
+            si_axis(ax, "y", "Ω", "Internal resistance", like=like)
+        assert _axis_unit(fig) == "µΩ"
+        assert ax.get_legend_handles_labels()[1][0] == "threshold 807.6 µΩ"
+
+    def test_knee_and_power_legends_use_the_axis_units(self):
+        import re
+
+        import sagfit
+        from sagfit import plots
+        r = sagfit.read_readings(SAMPLES / "bench_supply_limit.csv")
+        fits = sagfit.fit(r)
+        fig = plots.fit_figure(r, fits, 0)
+        knee = next(lb for lb in fig.axes[0].get_legend_handles_labels()[1]
+                    if lb.startswith("knee at"))
+        x_unit, y_unit = _axis_unit(fig, "x"), _axis_unit(fig, "y")
+        assert re.fullmatch(rf"knee at [\d.]+ {x_unit}, [\d.]+ {y_unit}", knee), knee
+        fig = plots.power_figure(r, fits, 0)
+        star = next(lb for lb in fig.axes[0].get_legend_handles_labels()[1]
+                    if lb.startswith("maximum power"))
+        assert f" {_axis_unit(fig)} at " in star
+
+
+class TestOutOnEveryCommand:
+    """`--out x.csv|x.json` on every command that produces results."""
+
+    def test_predict_plan_trend_design_write_csv_and_json(self, cli, tmp_path):
+        import csv as csvmod
+        fit_json = tmp_path / "fit.json"
+        assert cli("fit", SAMPLES / "fleet_packs.csv", "--out", fit_json, "-q").code == 0
+        db = tmp_path / "h.sqlite"
+        files = sorted((SAMPLES / "fleet_history").glob("string_A_*.csv"))[:3]
+        assert cli("record", *files, "--db", db, "-q").code == 0
+        net = tmp_path / "d.cir"  # invented divider
+        net.write_text("* divider\nV1 in 0 DC 12 tol=1%\nR1 in tap 2k tol=1%\n"
+                       "R2 tap 0 2k tol=1%\n.port tap 0\n")
+        runs = {
+            "predict": ["predict", fit_json, "--load", "1,open"],
+            "plan": ["plan", "--vth", "12.6V", "--rth", "50mohm", "--max-current", "10A",
+                     "--max-power", "25W"],
+            "trend": ["trend", "--db", db],
+            "design": ["design", net, "--draws", "200"],
+        }
+        rows = {"predict": 12, "plan": 6, "trend": 16}
+        for name, args in runs.items():
+            for ext in ("csv", "json"):
+                out = tmp_path / f"{name}.{ext}"
+                run = cli(*args, "--out", out)
+                assert run.code in (0, 1), (name, run.err)
+                text = out.read_text(encoding="utf-8")
+                if ext == "json":
+                    doc = json.loads(text)
+                    assert doc == json.loads(cli(*args, "--json").out), name
+                elif name in rows:
+                    table = list(csvmod.DictReader(text.splitlines()))
+                    assert len(table) == rows[name], name
+            bad = cli(*args, "--out", tmp_path / f"{name}.txt")
+            assert bad.code == 2 and "--out" in bad.err, name
+
+    def test_predict_csv_marks_open_circuit_by_an_empty_load(self, cli, tmp_path):
+        import csv as csvmod
+        fit_json = tmp_path / "fit.json"
+        cli("fit", SAMPLES / "pack_a.csv", "--out", fit_json, "-q")
+        cli("predict", fit_json, "--load", "open,2.2", "--out", tmp_path / "p.csv")
+        table = list(csvmod.DictReader((tmp_path / "p.csv").read_text().splitlines()))
+        assert [r["load_ohm"] for r in table] == ["", "2.2"]
+        assert float(table[0]["current_A"]) == 0.0
+
+    def test_report_option_reads_alike_everywhere(self, cli):
+        for cmd in ("fit", "accept", "trend"):
+            text = " ".join(cli(cmd, "--help").out.split())
+            assert ("Write a report into this folder: report.html with figures, "
+                    "results.json, results.csv, PNGs.") in text, cmd
+
+    def test_dut_option_reads_alike_everywhere(self, cli):
+        """The same --dut help on every command that has it."""
+        for cmd in ("fit", "predict", "accept", "record", "trend"):
+            text = " ".join(cli(cmd, "--help").out.split())
+            assert "Only these DUTs, e.g. 'A1' or 'A1,A7'." in text, cmd
+
+
+class TestReportCautionsFollowTheData:
+    def test_electronic_load_report_has_no_resistor_or_battery_reminder(self, cli, tmp_path):
+        """A regulator swept with an electronic load (I, V): the report's standing
+        reminders speak of neither load resistors nor battery packs."""
+        p = tmp_path / "iv.csv"  # invented: 5 V regulator, electronic-load sweep
+        p.write_text("current_A,voltage_V\n0,5.021\n0.5,5.002\n1.0,4.983\n1.5,4.964\n")
+        assert cli("fit", p, "--report", tmp_path / "r", "-q").code == 0
+        page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
+        assert "never measure it by shorting the terminals" in page
+        assert "Load resistors get hot" not in page and "Battery packs" not in page
+
+    def test_resistor_report_keeps_the_resistor_reminder(self, cli, tmp_path):
+        assert cli("fit", SAMPLES / "pack_a.csv", "--report", tmp_path / "r", "-q").code == 0
+        page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
+        assert "Load resistors get hot" in page

@@ -119,7 +119,7 @@ class TestSampleRuns:
         assert cli("fit", SAMPLES / "fleet_packs.csv", "--bench", BENCH, "--report",
                    out).code == 0
         page = parse(out / "report.html")
-        assert page.svg == 18
+        assert page.svg == 18 + 1  # three per DUT, and the batch figure of every DUT
         assert len(list(out.glob("fig-PK-07-*.png"))) == 3
         text = page.visible
         assert text.count("combined standard uncertainty u(Vth)") == 6
@@ -196,7 +196,7 @@ class TestSafety:
                 assert p.parent == out, p
                 assert ".." not in p.name and not p.name.startswith("fig-CON-")
         assert not (tmp_path.parent / "x").exists()
-        assert len(list(out.glob("*.png"))) == page.svg == 12
+        assert len(list(out.glob("*.png"))) == page.svg == 12 + 1  # and the batch figure
         csv_text = (out / "results.csv").read_text(encoding="utf-8")
         assert "<script>" in csv_text  # kept as data, neutralised only if formula-like
 
@@ -243,7 +243,7 @@ class TestManyDuts:
         assert len(rows) == 2
         assert "Showing 50 of 400 DUTs" in page.visible
         assert "the first 2 of" in page.visible
-        assert page.svg == 2 + 2 * 3
+        assert page.svg == 1 + 2 + 2 * 3  # batch figure, histograms, two flagged DUTs
         assert (tmp_path / "r" / "fig-histogram-vth.png").exists()
         assert json.loads((tmp_path / "r" / "results.json").read_text()) == \
             json.loads(json.dumps({**doc, "results": fits.to_dicts()}))

@@ -14,9 +14,9 @@ import typer
 from . import app
 from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
                      DutOpt, IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, SheetOpt,
-                     VerboseOpt, VoltageAccOpt, WideOpt,
-                     VoltageNoiseOpt, check_out_option, fit_settings, guarded,
-                     load_readings, progress, settings_record, show_progress, write_document)
+                     VerboseOpt, VoltageAccOpt, WideOpt, VoltageNoiseOpt, announce_bench,
+                     check_out_option, resolve_bench, fit_settings, guarded, load_readings,
+                     progress, settings_record, show_progress, write_document)
 
 MAX_TABLE_ROWS = 40
 
@@ -48,8 +48,8 @@ def accept_command(
     out: Annotated[Optional[str], typer.Option(
         "--out", help="Also write the decisions to this .csv, .parquet or .json file.")] = None,
     report: Annotated[Optional[str], typer.Option(
-        "--report", help="Write an acceptance report (HTML, PNG, CSV, JSON) into this "
-                         "folder.")] = None,
+        "--report", help="Write a report into this folder: report.html with figures, "
+                         "results.json, results.csv, PNGs.")] = None,
     verbose: VerboseOpt = False,
     quiet: QuietOpt = False,
     wide: WideOpt = False,
@@ -69,6 +69,7 @@ def accept_command(
 
         if rule is not None and rule not in RULES:
             raise OptionError("--rule", f"{rule!r}: use one of {', '.join(RULES)}")
+        bench, bench_source = resolve_bench(bench)
         inputs = [file, spec] + ([bench] if bench else [])
         the_spec = read_spec(spec)
         if confidence is None:
@@ -77,7 +78,8 @@ def accept_command(
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
                                 independent_errors=independent_errors,
-                                columns=columns, sheet=sheet)
+                                columns=columns, sheet=sheet, bench_source=bench_source)
+        announce_bench(settings, json_out)
         from ..io.dataset import is_dataset
 
         if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask

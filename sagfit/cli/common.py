@@ -36,7 +36,9 @@ IndependentOpt = Annotated[bool, typer.Option(
                                  "meters, a range change mid-sweep, readings days apart) "
                                  "instead of one gain and one offset error per sweep.")]
 BenchOpt = Annotated[Optional[str], typer.Option(
-    "--bench", help="Bench profile (TOML) with the instruments' accuracies.")]
+    "--bench", help="Bench profile (TOML) with the instruments' accuracies [default: "
+                    "$SAGFIT_BENCH, else bench.toml in the user's sagfit configuration "
+                    "folder; 'none' for no profile].")]
 ColumnsOpt = Annotated[Optional[str], typer.Option(
     "--columns", help="Which column is which, where the headers do not say: ROLE=COLUMN "
                       "pairs, e.g. 'voltage=V (V),current=I_meas (A)'. Roles: dut, load, "
@@ -84,10 +86,37 @@ def guarded(source: str = "") -> Iterator[None]:
         raise typer.Exit(2) from None
 
 
+def resolve_bench(bench: str | None) -> tuple[str | None, str]:
+    """The bench profile a command uses and where it came from: ``--bench`` (``none``
+    for no profile), else the default of :func:`sagfit.io.bench.default_bench`."""
+    if bench is not None:
+        if bench.strip().lower() == "none":
+            return None, ""
+        return bench, "--bench"
+    from ..io.bench import default_bench
+
+    return default_bench()
+
+
+def announce_bench(settings: dict, json_out: bool = False) -> None:
+    """Say which profile applied when the user did not name it (terminal only; the JSON
+    has ``settings.bench`` and ``settings.bench_source``)."""
+    src = settings.get("bench_source")
+    if json_out or not settings.get("bench") or src == "--bench":
+        return
+    where = "$SAGFIT_BENCH" if src == "SAGFIT_BENCH" else "the user's default"
+    write_stdout(f"bench profile: {settings['bench']} ({where}; --bench names another, "
+                 "--bench none uses none)\n")
+
+
 def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=None,
                  bench=None, confidence=None, *, voltage_noise=None, current_noise=None,
-                 independent_errors=False, columns=None, sheet=None) -> dict:
-    """Merge the command-line options over a bench profile into fit settings."""
+                 independent_errors=False, columns=None, sheet=None,
+                 bench_source: str = "--bench") -> dict:
+    """Merge the command-line options over a bench profile into fit settings.
+
+    ``bench`` is the profile's path (resolved by :func:`resolve_bench`), ``bench_source``
+    where it came from; ``columns`` a column mapping text, ``sheet`` a workbook's sheet."""
     from ..core.units import parse_accuracy, parse_percent
 
     settings: dict = {"voltage_accuracy": None, "current_accuracy": None,
@@ -100,7 +129,7 @@ def fit_settings(voltage_accuracy=None, current_accuracy=None, load_tolerance=No
         settings.update(voltage_accuracy=prof.voltage_accuracy,
                         current_accuracy=prof.current_accuracy,
                         load_tolerance=prof.load_tolerance, instruments=prof.instruments,
-                        bench=bench, columns=dict(prof.columns))
+                        bench=bench, columns=dict(prof.columns), bench_source=bench_source)
         if prof.confidence is not None:
             settings["confidence"] = prof.confidence
     try:
@@ -161,6 +190,7 @@ def settings_record(settings: dict) -> dict:
             "load_tolerance_pct": settings["load_tolerance"],
             "bench": settings.get("bench"),
             "columns": dict(settings.get("columns") or {}),
+            "bench_source": settings.get("bench_source") if settings.get("bench") else None,
             "instruments": [i.to_dict() for i in settings.get("instruments", ())]}
 
 
@@ -204,6 +234,20 @@ def check_out_option(out: str | None, inputs) -> None:
     check_output_path(out, inputs)
     if not out.lower().endswith((".csv", ".json", ".parquet")):
         raise OptionError("--out", f"{out}: use a .csv, .parquet or .json file name")
+
+
+def write_out(out: str, doc: dict, csv_columns, inputs=()) -> None:
+    """``--out``: ``.json`` → the document ``--json`` prints; ``.csv`` → one row per item
+    (``csv_columns``: name → array or list; SI units, full precision, non-finite numbers
+    as empty cells). Written atomically, never over an input."""
+    from ..io.outputs import atomic_write, document_text
+
+    if out.lower().endswith(".json"):
+        atomic_write(out, document_text(doc), inputs=inputs)
+    else:
+        from ..io.results_csv import table_csv_chunks
+
+        atomic_write(out, table_csv_chunks(csv_columns), inputs=inputs)
 
 
 def require_some_fit(file: str, fits) -> None:

@@ -74,8 +74,9 @@ def design_command(
     u_rth: Annotated[Optional[str], typer.Option(
         "--u-rth", help="Its expanded uncertainty U (k=2), e.g. 5ohm.")] = None,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="CSV: the measured units against the design (with --measured or "
-                      "--measured-vth/-rth), else the per-part sensitivities.")] = None,
+        "--out", help="Also write the results: a .csv file gets the measured units against "
+                      "the design (with --measured or --measured-vth/-rth), else the per-part "
+                      "sensitivities; a .json file the document of --json.")] = None,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write an HTML report (histograms of the expected Vth and Rth, "
                          "measured units marked) into this folder.")] = None,
@@ -99,6 +100,8 @@ def design_command(
         for path, option in ((spec_out, "--spec-out"), (out, "--out")):
             if path:
                 check_output_path(path, inputs, option=option)
+        if out and not out.lower().endswith((".csv", ".json")):
+            raise OptionError("--out", f"{out}: use a .csv or .json file name")
         p = None
         if port is not None:
             parts = [s.strip() for s in port.split(",")]
@@ -135,7 +138,11 @@ def design_command(
             text = spec_text(f"design {os.path.basename(net.path)}", doc["limits"]["vth"],
                              doc["limits"]["rth"], limits, net.path)
             atomic_write(spec_out, text, inputs=inputs, option="--spec-out")
-        if out:
+        if out and out.lower().endswith(".json"):
+            from ..io.outputs import document_text
+
+            atomic_write(out, document_text(doc, rows=_rows(doc)), inputs=inputs)
+        elif out:
             atomic_write(out, _measured_csv(doc) if cmp is not None else _sensitivity_csv(doc),
                          inputs=inputs)
         if report:

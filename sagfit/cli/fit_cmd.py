@@ -9,9 +9,9 @@ import typer
 from . import app
 from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
                      DutOpt, IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, SheetOpt,
-                     VerboseOpt, VoltageAccOpt, WideOpt,
-                     VoltageNoiseOpt, check_out_option, fit_settings, guarded,
-                     load_readings, progress, require_some_fit, settings_record, show_progress,
+                     VerboseOpt, VoltageAccOpt, WideOpt, VoltageNoiseOpt, announce_bench,
+                     check_out_option, resolve_bench, fit_settings, guarded, load_readings,
+                     progress, require_some_fit, settings_record, show_progress,
                      write_document)
 
 MAX_TABLE_ROWS = 40
@@ -57,8 +57,8 @@ def fit_command(
              "DRAWS draws per DUT of the meters' errors and the readings' noise (seeded, "
              "repeatable), and say whether the GUM interval agrees; e.g. 100000.")] = None,
     report: Annotated[Optional[str], typer.Option(
-        "--report", help="Write a self-contained report (HTML, PNG, JSON, CSV) into this "
-                         "folder.")] = None,
+        "--report", help="Write a report into this folder: report.html with figures, "
+                         "results.json, results.csv, PNGs.")] = None,
     figures: Annotated[str, typer.Option(
         "--figures", help="Per-DUT figures in the report: flagged, all or none.")] = "flagged",
     scheduler: Annotated[Optional[str], typer.Option(
@@ -73,11 +73,13 @@ def fit_command(
         from ..core.analysis import fit
         from ..core.errors import OptionError
 
+        bench, bench_source = resolve_bench(bench)
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
                                 independent_errors=independent_errors,
-                                columns=columns, sheet=sheet)
+                                columns=columns, sheet=sheet, bench_source=bench_source)
+        announce_bench(settings, json_out)
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")

@@ -11,10 +11,10 @@ import typer
 from . import app
 from .common import (BenchOpt, ColumnsOpt, ConfidenceOpt, CurrentAccOpt, CurrentNoiseOpt,
                      DutOpt, IndependentOpt, JsonOpt, LoadTolOpt, QuietOpt, SheetOpt,
-                     VoltageAccOpt, VoltageNoiseOpt, WideOpt, fit_settings, guarded,
-                     interactive, load_readings,
-                     progress,
-                     require_some_fit, settings_record, show_progress, write_document, write_stdout)
+                     VoltageAccOpt, VoltageNoiseOpt, WideOpt, announce_bench, check_out_option,
+                     fit_settings, guarded, interactive, load_readings, progress,
+                     require_some_fit, resolve_bench, settings_record, show_progress,
+                     write_document, write_stdout)
 
 MAX_TABLE_ROWS = 40
 DEFAULT_DB = "sagfit-history.sqlite"  # the same name as sagfit.history.DEFAULT_DB
@@ -56,6 +56,7 @@ def record_command(
     from ..core.safety import caution_inputs, merged_cautions
 
     with guarded(files[0]):
+        bench, bench_source = resolve_bench(bench)
         inputs = list(files) + ([bench] if bench else [])
         from ..io.history import check_db_path
 
@@ -64,7 +65,8 @@ def record_command(
                                 confidence, voltage_noise=voltage_noise,
                                 current_noise=current_noise,
                                 independent_errors=independent_errors,
-                                columns=columns, sheet=sheet)
+                                columns=columns, sheet=sheet, bench_source=bench_source)
+        announce_bench(settings, json_out)
     fitted = []
     for file in files:
         with guarded(file):
@@ -272,8 +274,10 @@ def trend_command(
     confidence: ConfidenceOpt = None,
     json_out: JsonOpt = False,
     report: Annotated[Optional[str], typer.Option(
-        "--report", help="Write a trend report (HTML with figures, JSON, CSV) into this "
-                         "folder.")] = None,
+        "--report", help="Write a report into this folder: report.html with figures, "
+                         "results.json, results.csv, PNGs.")] = None,
+    out: Annotated[Optional[str], typer.Option(
+        "--out", help="Also write the trends to this .csv or .json file.")] = None,
     wide: WideOpt = False,
 ) -> None:
     """Aging trends of internal resistance: change from baseline, rate, projected
@@ -299,6 +303,7 @@ def trend_command(
                 raise OptionError("--as-of", str(exc)) from None
         names = list(dict.fromkeys(d.strip() for d in dut.split(",") if d.strip())) \
             if dut else None
+        check_out_option(out, [db])
         show = interactive() and not json_out
         with progress("reading " + db, show), History(db, create=False) as hist:
             recs = hist.records()  # all DUTs: --dut narrows the output, not the fleet view
@@ -318,6 +323,12 @@ def trend_command(
             trends = trends.take(names)
             recs = _records_of(recs, names)
         doc = trend_document(trends, db, __version__, len(recs))
+        if out:
+            from ..io.outputs import atomic_write, document_text
+            from ..report.trend_report import trends_csv
+
+            atomic_write(out, document_text(doc) if out.lower().endswith(".json")
+                         else trends_csv(trends), inputs=[db])
         if report:
             from ..report.trend_report import write_trend_report
 

@@ -10,8 +10,10 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import (CurrentNoiseOpt, IndependentOpt, VoltageNoiseOpt, BenchOpt, CurrentAccOpt, JsonOpt, LoadTolOpt, VoltageAccOpt, WideOpt, fit_settings,
-                     guarded, interactive, progress, write_document, write_stdout)
+from .common import (BenchOpt, CurrentAccOpt, CurrentNoiseOpt, IndependentOpt, JsonOpt,
+                     LoadTolOpt, VoltageAccOpt, VoltageNoiseOpt, WideOpt, announce_bench,
+                     check_out_option, fit_settings, guarded, interactive, progress,
+                     resolve_bench, write_document, write_out, write_stdout)
 
 INVENTED_TAG = "# INVENTED DATA (sagfit simulate"
 
@@ -341,6 +343,9 @@ def plan_command(
         "--battery/--no-battery", help="The source is a battery (no short-circuit step); "
                                        "--no-battery for a current-limited supply.")] = True,
     json_out: JsonOpt = False,
+    out: Annotated[Optional[str], typer.Option(
+        "--out", help="Also write the plan to this .csv (one row per step) or .json "
+                      "file.")] = None,
     wide: WideOpt = False,
 ) -> None:
     """Propose loads for a load test: expected readings, dissipation, and the predicted
@@ -358,9 +363,13 @@ def plan_command(
             if value is None:
                 raise OptionError(name, f"is required (the expected value, e.g. {example})")
 
+        bench, bench_source = resolve_bench(bench)
+        check_out_option(out, [bench] if bench else [])
         settings = fit_settings(voltage_accuracy, current_accuracy, load_tolerance, bench,
                                 voltage_noise=voltage_noise, current_noise=current_noise,
-                                independent_errors=independent_errors)
+                                independent_errors=independent_errors,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
         from ..core.errors import InputError
 
         try:
@@ -381,10 +390,21 @@ def plan_command(
             if isinstance(exc, OptionError):
                 raise
             raise _plan_option_error(exc, v_name, r_name) from None
-        if json_out:
-            from .. import __version__
+        from .. import __version__
 
-            doc = {"tool": "sagfit", "version": __version__, **result.to_dict()}
+        doc = {"tool": "sagfit", "version": __version__, **result.to_dict()}
+        if out:
+            import numpy as np
+
+            write_out(out, doc, {
+                "step": np.arange(1, len(result.labels) + 1), "load": list(result.labels),
+                "load_ohm": np.asarray(result.load, float),
+                "current_A": np.asarray(result.current, float),
+                "voltage_V": np.asarray(result.voltage, float),
+                "power_W": np.asarray(result.power, float),
+                "source_power_W": np.asarray(result.source_power, float)},
+                [bench] if bench else [])
+        if json_out:
             write_document(doc)
         else:
             _print_plan(result, wide)

@@ -7,7 +7,8 @@ from typing import Annotated, Optional
 import typer
 
 from . import app
-from .common import ConfidenceOpt, DutOpt, JsonOpt, WideOpt, guarded, write_document
+from .common import (ConfidenceOpt, DutOpt, JsonOpt, WideOpt, check_out_option, guarded,
+                     write_document, write_out)
 
 
 @app.command("predict")
@@ -21,6 +22,8 @@ def predict_command(
     dut: DutOpt = None,
     confidence: ConfidenceOpt = None,
     json_out: JsonOpt = False,
+    out: Annotated[Optional[str], typer.Option(
+        "--out", help="Also write the predictions to this .csv or .json file.")] = None,
     wide: WideOpt = False,
 ) -> None:
     """Terminal voltage, current and power of each fitted source at other loads, each
@@ -35,15 +38,19 @@ def predict_command(
         if not loads and not currents:
             raise OptionError("--load", "give at least one load (e.g. --load 3.3,4.7,10) or "
                                         "a current (--current 0.5,1)")
+        check_out_option(out, [results])
         doc = _read_document(results)
         names = [d.strip() for d in dut.split(",") if d.strip()] if dut else None
         models = models_from_document(doc, results, names)
         preds = predict(models, loads=loads, currents=currents, confidence=confidence)
         warnings, cautions = _warnings_and_cautions(preds, models)
+        document = {"tool": "sagfit", "source": results,
+                    "predictions": [p.to_dict() for p in preds],
+                    "warnings": warnings, "cautions": cautions}
+        if out:
+            write_out(out, document, _prediction_columns(preds), [results])
         if json_out:
-            write_document({"tool": "sagfit", "source": results,
-                            "predictions": [p.to_dict() for p in preds],
-                            "warnings": warnings, "cautions": cautions})
+            write_document(document)
         else:
             _print(preds, models, wide)
             from .render import _console
@@ -53,6 +60,29 @@ def predict_command(
                 console.print(f"warning: {w}", markup=False)
             for c in cautions:
                 console.print(f"caution: {c}", markup=False)
+
+
+def _prediction_columns(preds) -> dict:
+    """One CSV row per prediction (SI units; an open circuit has an empty load_ohm)."""
+    import numpy as np
+
+    def arr(get):
+        return np.array([get(p) for p in preds], dtype=float)
+
+    nan2 = (np.nan, np.nan)
+    return {
+        "dut": [p.dut for p in preds], "given": [p.given for p in preds],
+        "load_ohm": arr(lambda p: p.load_ohm),
+        "current_A": arr(lambda p: p.current.value), "current_u": arr(lambda p: p.current.u),
+        "voltage_V": arr(lambda p: p.voltage.value), "voltage_u": arr(lambda p: p.voltage.u),
+        "voltage_ci_low": arr(lambda p: p.voltage.ci[0]),
+        "voltage_ci_high": arr(lambda p: p.voltage.ci[1]),
+        "voltage_pi_low": arr(lambda p: (p.voltage.pi or nan2)[0]),
+        "voltage_pi_high": arr(lambda p: (p.voltage.pi or nan2)[1]),
+        "power_W": arr(lambda p: p.power.value), "power_u": arr(lambda p: p.power.u),
+        "confidence": arr(lambda p: p.level),
+        "extrapolated": ["yes" if p.extrapolated else "no" for p in preds],
+    }
 
 
 def _warnings_and_cautions(preds, models) -> tuple[list[str], list[str]]:

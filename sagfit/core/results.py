@@ -20,7 +20,18 @@ import numpy as np
 from ._frozen import freeze_arrays
 from .formatting import format_estimate
 
-__all__ = ["Flag", "Estimate", "FitResult", "Fits"]
+__all__ = ["Flag", "Estimate", "FitResult", "Fits", "register_dataframe_builder"]
+
+# The table view of results (pandas) belongs to the edges: ``sagfit.io.tables`` registers
+# its builder here when imported, which ``import sagfit`` does. The core imports neither
+# pandas nor the io layer, and pandas is loaded only when a table is asked for.
+_dataframe_builder = None
+
+
+def register_dataframe_builder(builder) -> None:
+    """Set the function behind :meth:`Fits.to_dataframe` (``builder(fits) → DataFrame``)."""
+    global _dataframe_builder
+    _dataframe_builder = builder
 
 
 def _f(x) -> float | None:
@@ -309,6 +320,44 @@ class Fits:
     def __repr__(self) -> str:
         bad = len(self.error) - self.error.count(None)
         return f"<Fits {len(self)} DUT(s), {len(self) - bad} fitted, {bad} error(s)>"
+
+    def to_dataframe(self):
+        """The results as a pandas ``DataFrame``: one row per DUT, the columns of
+        ``sagfit fit --out results.csv`` (SI units, full precision; ``flags`` as
+        ``code;code``, ``error`` empty for a fitted DUT)."""
+        if _dataframe_builder is None:  # only if sagfit.core was loaded on its own
+            raise RuntimeError("import sagfit first: the table view lives in sagfit.io")
+        return _dataframe_builder(self)
+
+    #: DUTs shown by the notebook view; the rest are counted.
+    HTML_ROWS = 20
+
+    def _repr_html_(self) -> str:
+        """A small HTML table for notebooks: the first ``HTML_ROWS`` DUTs with Vth, Rth,
+        Isc and Pmax ± standard uncertainty, method and warning codes."""
+        import html
+
+        e = html.escape
+        head = ("<tr><th>DUT</th><th>n</th><th>Vth</th><th>Rth</th><th>Isc</th><th>Pmax</th>"
+                "<th>method</th><th>warnings</th></tr>")
+        rows = []
+        for i in range(min(len(self), self.HTML_ROWS)):
+            if self.error[i] is not None:
+                rows.append(f"<tr><td>{e(self.duts[i])}</td><td>{int(self.n[i])}</td>"
+                            f"<td colspan='6'>error: {e(str(self.error[i]))}</td></tr>")
+                continue
+            cells = [format_estimate(v[i], u[i], unit) for v, u, unit in (
+                (self.vth, self.u_vth, "V"), (self.rth, self.u_rth, "Ω"),
+                (self.isc, self.u_isc, "A"), (self.pmax, self.u_pmax, "W"))]
+            warn = ", ".join(f.code for f in self.flags[i] if f.severity == "warning")
+            rows.append(f"<tr><td>{e(self.duts[i])}</td><td>{int(self.n[i])}</td>"
+                        + "".join(f"<td style='text-align:right'>{e(c)}</td>" for c in cells)
+                        + f"<td>{e(str(self.method[i]))}</td><td>{e(warn)}</td></tr>")
+        more = len(self) - self.HTML_ROWS
+        tail = (f"<p>… {more} more DUTs (<code>fits.to_dataframe()</code> has them all)</p>"
+                if more > 0 else "")
+        return (f"<p>{e(repr(self))}; values ± standard uncertainty</p>"
+                f"<table>{head}{''.join(rows)}</table>{tail}")
 
     @property
     def ok(self) -> np.ndarray:

@@ -18,19 +18,75 @@ Edge module (reads one file). Format, in docs/input-format.md::
     [columns]                    # optional: which column is which, role = "header"
     voltage = "V (V)"
     current = "I_meas (A)"       # the measured current, not the set value
+
+Where no ``--bench`` is given, :func:`default_bench` finds the profile a bench states
+once: the file named by the environment variable ``SAGFIT_BENCH``, else ``bench.toml``
+in the user's configuration folder of the platform (:func:`user_bench_path`).
 """
 
 from __future__ import annotations
 
 import datetime as _dt
+import os
+import sys
 from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Mapping
 
 from ..core.errors import InputError, SpecFileError
 from .columns import ROLES, check_column_mapping
 from .tomlfile import check_layout, read_toml
 from ..core.units import Accuracy, parse_accuracy, parse_percent
 
-__all__ = ["BenchProfile", "Instrument", "read_bench"]
+__all__ = ["BenchProfile", "Instrument", "read_bench", "default_bench", "user_bench_path",
+           "BENCH_ENV"]
+
+#: Environment variable naming the default bench profile (a TOML file).
+BENCH_ENV = "SAGFIT_BENCH"
+
+
+def user_bench_path(environ: Mapping[str, str] | None = None,
+                    platform: str | None = None) -> Path | None:
+    """Where the user's default profile lives (whether or not it exists): ``bench.toml``
+    in a ``sagfit`` folder of the platform's usual configuration place —
+    ``$XDG_CONFIG_HOME`` or ``~/.config`` on Linux and other Unix systems (the XDG Base
+    Directory Specification), ``%APPDATA%`` on Windows, ``~/Library/Application Support``
+    on macOS. None when the place cannot be told (no home folder)."""
+    env = os.environ if environ is None else environ
+    plat = sys.platform if platform is None else platform
+    home = env.get("HOME") or env.get("USERPROFILE")
+    if plat.startswith("win"):
+        base = env.get("APPDATA") or (str(Path(home) / "AppData" / "Roaming") if home else "")
+    elif plat == "darwin":
+        base = str(Path(home) / "Library" / "Application Support") if home else ""
+    else:
+        base = env.get("XDG_CONFIG_HOME", "").strip()
+        if not base or not os.path.isabs(base):  # the spec: a relative value is ignored
+            base = str(Path(home) / ".config") if home else ""
+    return Path(base) / "sagfit" / "bench.toml" if base else None
+
+
+def default_bench(environ: Mapping[str, str] | None = None,
+                  platform: str | None = None) -> tuple[str | None, str]:
+    """The bench profile to use when no ``--bench`` is given, and where it came from:
+    ``(path, "SAGFIT_BENCH")``, ``(path, "user configuration")`` or ``(None, "")``.
+
+    A ``SAGFIT_BENCH`` naming a missing file is an error (a typing slip should not
+    silently leave a bench without its meters); an empty one means none.
+    """
+    env = os.environ if environ is None else environ
+    named = env.get(BENCH_ENV, "").strip()
+    if named:
+        if not os.path.isfile(named):
+            raise InputError(f"{BENCH_ENV}={named}: no such bench profile (fix the path, or "
+                             f"unset {BENCH_ENV})")
+        return named, BENCH_ENV
+    if BENCH_ENV in env:  # set but empty: no default profile
+        return None, ""
+    user = user_bench_path(env, platform)
+    if user is not None and user.is_file():
+        return str(user), "user configuration"
+    return None, ""
 
 _ALLOWED = {
     "voltage": {"accuracy", "instrument", "calibration_due", "distribution", "k", "noise",

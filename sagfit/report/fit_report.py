@@ -187,10 +187,13 @@ def _settings_rows(srec: Mapping) -> list[tuple[str, str]]:
     tol = srec.get("load_tolerance_pct")
     rows.append(("Load tolerance", _e(f"{tol:g} %") if isinstance(tol, (int, float))
                  else '<span class="muted">not stated</span>'))
-    rows.append(("Bench profile", _e(srec.get("bench")) if srec.get("bench")
+    src = {"SAGFIT_BENCH": " (from $SAGFIT_BENCH)",
+           "user configuration": " (the user's default profile)"}.get(
+        srec.get("bench_source") or "", "")
+    rows.append(("Bench profile", _e(str(srec.get("bench")) + src) if srec.get("bench")
                  else '<span class="muted">none</span>'))
     known = {"confidence", "voltage_accuracy", "current_accuracy", "load_tolerance_pct",
-             "bench", "instruments"}
+             "bench", "bench_source", "instruments"}
     for key in sorted(k for k in srec if k not in known):
         val = srec[key]
         if val is None or val is False or val == [] or val == {}:
@@ -225,14 +228,19 @@ def _temperature(meta: Mapping) -> str | None:
 def _cautions_box(fits, readings) -> str:
     raised = fit_cautions(fits, readings)
     raised = [c for c in raised if c != DEFERRAL]
+    # the usual reminders, as far as they apply to this set-up: no resistor reminder for
+    # electronic-load (I, V) readings, no assumption about what kind of source this is
+    load = np.asarray(readings.load, dtype=float)
     standing = [
-        "Battery packs and stiff supplies can deliver hundreds of amperes into a short: "
-        "compute Isc from the fit, never measure it by shorting the terminals "
-        f"(this report calls anything above {HIGH_CURRENT_A:g} A high current).",
-        "Load resistors get hot: rate and derate them for the power, keep readings short "
-        f"(this report flags more than {HOT_RESISTOR_W:g} W in one load).",
-        f"Voltages above {HAZARDOUS_V:g} V DC are treated as hazardous (common practice).",
-    ]
+        "A source may deliver far more current into a short than any load tested: compute "
+        "Isc from the fit, never measure it by shorting the terminals "
+        f"(this report calls anything above {HIGH_CURRENT_A:g} A high current)."]
+    if (np.isfinite(load) & (load > 0)).any():
+        standing.append(
+            "Load resistors get hot: rate and derate them for the power, keep readings short "
+            f"(this report flags more than {HOT_RESISTOR_W:g} W in one load).")
+    standing.append(
+        f"Voltages above {HAZARDOUS_V:g} V DC are treated as hazardous (common practice).")
     items = "".join(f'<li class="warn">{_e(c)}</li>' for c in raised)
     items += "".join(f"<li>{_e(c)}</li>" for c in standing)
     head = ("Cautions raised by these results, and the usual ones" if raised

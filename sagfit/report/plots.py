@@ -32,7 +32,7 @@ import numpy as np
 
 from ..core.formatting import format_estimate, format_interval, format_value, si_prefix
 
-__all__ = ["house_style", "si_axis", "figure_svg", "save_png", "new_figure", "COLORS",
+__all__ = ["house_style", "si_axis", "format_like", "figure_svg", "save_png", "new_figure", "COLORS",
            "fit_figure", "residual_figure", "power_figure", "histogram_figure", "batch_figure",
            "flagged_lines", "knee_point", "dut_curves"]
 
@@ -141,9 +141,10 @@ def _tick_decimals(values: np.ndarray) -> int:
     return min(d, 6)
 
 
-def _shared_prefix_formatter(quantity: str, unit: str):
-    """Tick labels that share one SI prefix, chosen at draw time from the ticks shown;
-    the axis label becomes ``"<quantity> (<prefix><unit>)"`` to match."""
+def _shared_prefix_formatter(quantity: str, unit: str, like: float | None = None):
+    """Tick labels that share one SI prefix, chosen at draw time from the ticks shown
+    (or fixed as the prefix of ``like``); the axis label becomes
+    ``"<quantity> (<prefix><unit>)"`` to match."""
     from matplotlib import ticker
 
     class Fmt(ticker.Formatter):
@@ -160,6 +161,8 @@ def _shared_prefix_formatter(quantity: str, unit: str):
                 if inside.any():
                     vals = vals[inside]
             big = float(np.max(np.abs(vals))) if vals.size else 0.0
+            if like is not None and math.isfinite(like) and like != 0:
+                big = abs(like)
             self._scale, self._prefix = si_prefix(big) if big > 0 else (1.0, "")
             self._dec = _tick_decimals(vals / self._scale) if vals.size else 2
             if self.axis is not None:
@@ -186,7 +189,8 @@ def _shared_prefix_formatter(quantity: str, unit: str):
     return Fmt()
 
 
-def si_axis(ax, which: str, unit: str, label: str | None = None) -> None:
+def si_axis(ax, which: str, unit: str, label: str | None = None, *,
+            like: float | None = None) -> None:
     """SI-prefixed tick labels on one axis of ``ax`` and the unit in its label.
 
     Parameters
@@ -201,6 +205,10 @@ def si_axis(ax, which: str, unit: str, label: str | None = None) -> None:
         one prefix and the label reads ``"Terminal voltage (mV)"``; on a log axis each
         tick carries its own prefix and unit (``100 mΩ``, ``1 Ω``, ``10 Ω``) and the label
         reads just the quantity.
+    like : float, optional
+        Fix the linear axis's prefix to the one of this value, so that a legend or note
+        giving values with :func:`format_like` uses the same unit as the axis (one unit
+        per axis and legend); by default the prefix follows the ticks shown.
     """
     from matplotlib import ticker
 
@@ -212,8 +220,19 @@ def si_axis(ax, which: str, unit: str, label: str | None = None) -> None:
         axis.set_minor_formatter(ticker.NullFormatter())
         axis.set_label_text(quantity)
     else:
-        axis.set_major_formatter(_shared_prefix_formatter(quantity, unit))
+        axis.set_major_formatter(_shared_prefix_formatter(quantity, unit, like))
         axis.set_label_text(f"{quantity} ({unit})" if unit else quantity)
+
+
+def format_like(value: float, unit: str, like: float, digits: int = 4) -> str:
+    """``value`` in the SI prefix of ``like`` (the prefix of an axis drawn with
+    ``si_axis(..., like=like)``), with ``digits`` significant digits."""
+    if value is None or not math.isfinite(value):
+        return format_value(value, unit, digits)
+    scale, prefix = si_prefix(like) if like and math.isfinite(like) else si_prefix(value)
+    v = value / scale
+    decimals = 0 if v == 0 else max(0, digits - 1 - int(math.floor(math.log10(abs(v)))))
+    return f"{v:.{decimals}f} {prefix}{unit}".rstrip()
 
 
 _XML_HEAD = re.compile(r"^.*?(?=<svg\b)", re.S)
@@ -386,8 +405,9 @@ def fit_figure(readings, fits, i: int, *, used=None):
 
     ``used`` (boolean mask over all rows of ``readings``) marks the rows the fit used;
     the others are drawn hollow as "left out of the fit". Returns a matplotlib Figure
-    (not saved).
+    (not saved). ``i`` is the DUT's index or its name.
     """
+    i = fits.index(i)
     rows = _rows(readings, i)
     left_out = (np.zeros(rows.stop - rows.start, bool) if used is None
                 else ~np.asarray(used, bool)[rows])
@@ -454,13 +474,18 @@ def fit_figure(readings, fits, i: int, *, used=None):
                                     "tested range", transform=ax.transAxes, ha="right",
                         va="bottom", fontsize=7.5, color=COLORS["muted"])
         knee = knee_point(fits, i) if ok else None
+        # one unit per axis and legend: the axes take fixed prefixes (current: the
+        # largest on the axis; voltage: Vth's, as in the legend) and the knee is given in them
+        x_like = float(np.max(np.abs(grid))) if grid.size else None
+        y_like = vth if ok and math.isfinite(vth) and vth != 0 else (
+            float(np.nanmax(np.abs(vol))) if vol.size else None)
         if knee is not None:
             ax.plot([knee[0]], [knee[1]], marker="X", ms=9, color=COLORS["knee"], ls="none",
-                    label=f"knee at {format_value(knee[0], 'A', 3)}, "
-                          f"{format_value(knee[1], 'V', 4)}", zorder=6)
+                    label=f"knee at {format_like(knee[0], 'A', x_like, 3)}, "
+                          f"{format_like(knee[1], 'V', y_like, 4)}", zorder=6)
         ax.set_xlim(grid[0], grid[-1])
-        si_axis(ax, "x", "A", "Load current")
-        si_axis(ax, "y", "V", "Terminal voltage")
+        si_axis(ax, "x", "A", "Load current", like=x_like)
+        si_axis(ax, "y", "V", "Terminal voltage", like=y_like)
         # below the axes, so it never hides a reading
         fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
                    fontsize=7.5, handlelength=1.6)
@@ -489,7 +514,8 @@ def residual_figure(readings, fits, i: int, *, used=None):
     """Normalised residuals e/u(e) of DUT ``i`` against current, and against time when
     the readings have times, with the ±2 lines. u(e) is the stated uncertainty of each
     reading's deviation from the line (the scatter s for an OLS fit); rows outside
-    ``used`` are drawn hollow grey."""
+    ``used`` are drawn hollow grey. ``i`` is the DUT's index or its name."""
+    i = fits.index(i)
     rows, cur, z = _residuals(readings, fits, i)
     left_out = (np.zeros(cur.size, bool) if used is None
                 else ~np.asarray(used, bool)[rows])
@@ -533,9 +559,11 @@ def power_figure(readings, fits, i: int):
     tested draw more current than the sweep reached: there the curve is dashed, the
     region shaded and labelled "extrapolated", and so is the maximum-power point when the
     sweep did not come near it (``sagfit.core.extrapolation``).
-    Returns None when Rth ≤ 0 or the DUT was not fitted (no maximum-power point)."""
+    Returns None when Rth ≤ 0 or the DUT was not fitted (no maximum-power point).
+    ``i`` is the DUT's index or its name."""
     from ..core.extrapolation import REACHED
 
+    i = fits.index(i)
     vth, rth = float(fits.vth[i]), float(fits.rth[i])
     if fits.error[i] is not None or not (math.isfinite(vth) and math.isfinite(rth)) or rth <= 0:
         return None
@@ -585,7 +613,7 @@ def power_figure(readings, fits, i: int):
         ax.set_xlim(lo, hi)
         ax.set_ylim(bottom=0.0)
         si_axis(ax, "x", "Ω", "Load resistance")
-        si_axis(ax, "y", "W", "Delivered power")
+        si_axis(ax, "y", "W", "Delivered power", like=fi.pmax.value)  # the legend's unit
         fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
                    fontsize=7.5)
     return fig

@@ -26,7 +26,7 @@ from ..core.trend import DAY, iso_date
 from .style import REPORT_HTML, RESULTS_CSV, RESULTS_JSON, STYLESHEET, batch_figure_name
 from .style import dut_figure_name
 
-__all__ = ["write_trend_report", "ALL_FIGURES_UP_TO", "MAX_FIGURES"]
+__all__ = ["write_trend_report", "trends_csv", "ALL_FIGURES_UP_TO", "MAX_FIGURES"]
 
 ALL_FIGURES_UP_TO = 60
 MAX_FIGURES = 200
@@ -41,19 +41,21 @@ def _dates(t):
 
 
 def _dut_figure(trends, recs, i, rows, k_show):
-    from .plots import COLORS, house_style, new_figure, si_axis
+    from .plots import COLORS, format_like, house_style, new_figure, si_axis
 
     t = recs.time[rows]
     r = recs.rth[rows]
     u = np.nan_to_num(recs.u_rth[rows]) * k_show
+    # one unit on the axis and in the legend
+    like = float(np.nanmax(np.abs(np.r_[r, trends.baseline_rth[i], trends.threshold_rth[i]])))
     with house_style():
         fig, ax = new_figure(6.4, 3.6)
         ax.errorbar(_dates(t), r, yerr=u, fmt="o", color=COLORS["point"], ecolor=COLORS["muted"],
                     elinewidth=0.8, label="recorded Rth (±U)", zorder=3)
         ax.axhline(trends.baseline_rth[i], color=COLORS["muted"], lw=0.9, ls=":",
-                   label=f"baseline {format_value(trends.baseline_rth[i], 'Ω')}")
+                   label=f"baseline {format_like(trends.baseline_rth[i], 'Ω', like)}")
         ax.axhline(trends.threshold_rth[i], color=COLORS["flag"], lw=1.0, ls="--",
-                   label=f"threshold {format_value(trends.threshold_rth[i], 'Ω')}")
+                   label=f"threshold {format_like(trends.threshold_rth[i], 'Ω', like)}")
         if math.isfinite(trends.rate[i]):
             tl = trends.latest_time[i]
             end = tl + 30 * DAY
@@ -77,7 +79,7 @@ def _dut_figure(trends, recs, i, rows, k_show):
                 ax.plot(_dates([trends.crossing_time[i]]), [trends.threshold_rth[i]], "D",
                         color=COLORS["flag"], ms=5, label=f"crossing {when}")
         ax.set_xlabel("Test date")
-        si_axis(ax, "y", "Ω", "Internal resistance")
+        si_axis(ax, "y", "Ω", "Internal resistance", like=like)
         # rotated date labels; fig.autofmt_xdate() would call subplots_adjust, which a
         # constrained-layout figure refuses with a warning on some matplotlib releases
         ax.tick_params(axis="x", labelrotation=30)
@@ -86,7 +88,7 @@ def _dut_figure(trends, recs, i, rows, k_show):
 
 
 def _fleet_figure(trends, members, key, excess_pct):
-    from .plots import COLORS, house_style, new_figure, si_axis
+    from .plots import COLORS, format_like, house_style, new_figure, si_axis
 
     members = members[np.argsort(np.asarray(trends.duts, dtype=object)[members].astype(str))]
     members = members[:MAX_FLEET_POINTS]
@@ -95,6 +97,7 @@ def _fleet_figure(trends, members, key, excess_pct):
     flagged = trends.flagged[members]
     med = float(trends.group_median[members[0]])
     x = np.arange(members.size)
+    like = float(np.nanmax(np.abs(np.r_[y, med * (1 + excess_pct / 100.0)])))
     with house_style():
         fig, ax = new_figure(max(6.4, min(16.0, 0.3 * members.size + 2)), 3.6)
         ax.errorbar(x[~flagged], y[~flagged], yerr=U[~flagged], fmt="o", color=COLORS["point"],
@@ -103,17 +106,17 @@ def _fleet_figure(trends, members, key, excess_pct):
             ax.errorbar(x[flagged], y[flagged], yerr=U[flagged], fmt="o", color=COLORS["flag"],
                         ecolor=COLORS["flag"], elinewidth=0.8, label="flagged")
         ax.axhline(med, color=COLORS["model"], lw=1.0,
-                   label=f"group median {format_value(med, 'Ω')}")
+                   label=f"group median {format_like(med, 'Ω', like)}")
         ax.axhline(med * (1 + excess_pct / 100.0), color=COLORS["flag"], lw=1.0, ls="--",
                    label=f"median + {excess_pct:g} %")
         ax.set_xticks(x, [trends.duts[j] for j in members], rotation=90 if members.size > 12 else 0)
         ax.set_xlabel(f"DUT ({key})")
-        si_axis(ax, "y", "Ω", "Latest internal resistance")
+        si_axis(ax, "y", "Ω", "Latest internal resistance", like=like)
         ax.legend(loc="best", ncols=2)
     return fig
 
 
-def _csv(trends) -> str:
+def trends_csv(trends) -> str:
     """``results.csv``: one row per DUT, through the project's CSV writer (numbers as
     ``%.10g``, non-finite values as empty cells, text neutralised and quoted as needed)."""
     from ..io.readings_csv import table_csv
@@ -251,7 +254,7 @@ def write_trend_report(folder, trends, recs, doc, *, inputs=()) -> Path:
     parts.append("</body></html>\n")
     atomic_write(root / RESULTS_JSON, document_text(doc), inputs=inputs, within=root,
                  option="--report")
-    atomic_write(root / RESULTS_CSV, _csv(trends), inputs=inputs, within=root,
+    atomic_write(root / RESULTS_CSV, trends_csv(trends), inputs=inputs, within=root,
                  option="--report")
     atomic_write(root / REPORT_HTML, "\n".join(parts), inputs=inputs, within=root,
                  option="--report")
