@@ -82,8 +82,7 @@ def fit_command(
             refuse_single_file_options({"--dut": dut, "--current-range": current_range,
                                         "--below-knee": below_knee, "--robust": robust,
                                         "--report": report, "--verbose": verbose,
-                                        "--columns (or the bench profile's [columns])":
-                                            settings["columns"], "--sheet": sheet})
+                                        "--sheet": sheet})
             code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
             raise typer.Exit(code)
         if report:
