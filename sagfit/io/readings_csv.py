@@ -110,7 +110,7 @@ def read_readings(
     suffix = p.suffix.lower()
     from .dataset import is_dataset
 
-    if is_dataset(name):
+    if is_dataset(name) and not p.is_file():  # 'run[1].csv' may be a file's own name
         from .readings_parquet import read_parquet_set
 
         return read_parquet_set(name, limit=limit, **opts)
