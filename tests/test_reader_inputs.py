@@ -185,3 +185,10 @@ def test_inputs_left_unchanged(tmp_path, cli):
     before = digest(p)
     cli("fit", p, "--out", tmp_path / "out.parquet")
     assert digest(p) == before
+
+
+def test_a_file_name_with_glob_characters_is_that_file(tmp_path):
+    """'run[1].csv' is a file's own name, not a pattern of files."""
+    p = write(tmp_path, TEXT, "run[1].csv")
+    write(tmp_path, TEXT.replace("P1", "P2"), "run1.csv")
+    assert sagfit.read_readings(p).duts == ("P1",)
