@@ -192,3 +192,13 @@ def test_a_file_name_with_glob_characters_is_that_file(tmp_path):
     p = write(tmp_path, TEXT, "run[1].csv")
     write(tmp_path, TEXT.replace("P1", "P2"), "run1.csv")
     assert sagfit.read_readings(p).duts == ("P1",)
+
+
+def test_data_set_files_skip_separator_rows(tmp_path):
+    """The data-set reader (Dask path) skips rows of bare separators as the file reader does."""
+    pytest.importorskip("dask")
+    from sagfit.io.dataset import _read_file
+
+    p = write(tmp_path, TEXT + ",,\n,,\n", "part-1.csv")
+    frame = _read_file((0, str(p)))
+    assert len(frame) == 4 and frame["_row"].tolist() == [2, 3, 4, 5]

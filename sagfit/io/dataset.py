@@ -160,15 +160,18 @@ def _read_file(item: tuple[int, str], mapping: Mapping[str, str] | None = None):
 
 
 def _read_csv_text(path: str):
-    """A CSV file without its ``#`` comment and blank lines → (text frame, the file line
-    number of each row), so that errors name the line as an editor shows it."""
+    """A CSV file without its ``#`` comment lines, blank lines and rows of bare separators
+    → (text frame, the file line number of each row), so that errors name the line as an
+    editor shows it."""
     import io
 
     import pandas as pd
 
     with open(path, encoding="utf-8-sig", newline="") as fh:
         all_lines = fh.read().splitlines()
-    keep = [i for i, ln in enumerate(all_lines) if ln.strip() and not ln.lstrip().startswith("#")]
+    # blank lines, comments and rows of bare separators (a spreadsheet's empty rows) go
+    keep = [i for i, ln in enumerate(all_lines) if ln.strip(" \t,;|")
+            and not ln.lstrip().startswith("#")]
     if not keep:
         return pd.DataFrame(), np.zeros(0, dtype=np.int64)
     text = "\n".join(all_lines[i] for i in keep)
