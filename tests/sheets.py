@@ -72,7 +72,8 @@ def write_xlsx(path, sheets: dict[str, list[list]]) -> None:
 
 
 def write_ods(path, sheets: dict[str, list[list]]) -> None:
-    """The same as :func:`write_xlsx`, as an OpenDocument spreadsheet."""
+    """The same as :func:`write_xlsx`, as an OpenDocument spreadsheet; ``datetime`` cells
+    are written as date cells."""
     body = []
     for name, rows in sheets.items():
         body.append(f'<table:table table:name="{escape(name)}">')
@@ -81,6 +82,10 @@ def write_ods(path, sheets: dict[str, list[list]]) -> None:
             for v in row:
                 if v is None:
                     cells.append("<table:table-cell/>")
+                elif hasattr(v, "isoformat"):  # a date-time cell
+                    cells.append(f'<table:table-cell office:value-type="date" '
+                                 f'office:date-value="{v.isoformat()}"><text:p>{v}</text:p>'
+                                 "</table:table-cell>")
                 elif isinstance(v, (int, float)):
                     cells.append(f'<table:table-cell office:value-type="float" '
                                  f'office:value="{v!r}"><text:p>{v!r}</text:p>'

@@ -137,3 +137,34 @@ class TestBenchTable:
                   "--columns", "current=I_meas (A)", "--json")
         assert run.code in (0, 1, 3), run.err
         assert json.loads(run.out)["results"][0]["decision"] in ("pass", "fail", "inconclusive")
+
+
+class TestDataSet:
+    """The mapping reaches every file of a data set (the Dask path of fit and accept)."""
+
+    def test_each_file_read_with_the_mapping(self, tmp_path):
+        pytest.importorskip("dask")
+        from sagfit.io.dataset import DatasetError, _read_file
+
+        p = write(tmp_path, "Cell;" + ELOAD.replace("\n", "\nK1;", 4).rstrip("K1;"),
+                  "part-1.csv")
+        with pytest.raises(DatasetError, match="needs two of"):
+            _read_file((0, str(p)))
+        frame = _read_file((0, str(p)), {"dut": "Cell", "current": "I_meas (A)"})
+        assert frame["current"].tolist() == pytest.approx([0.001, 0.998, 2.004, 3.001])
+        assert set(frame["dut"]) == {"K1"}
+
+    def test_cli_data_set_with_columns(self, tmp_path, cli):
+        pytest.importorskip("distributed")
+        folder = tmp_path / "set"
+        folder.mkdir()
+        for k in (1, 2):
+            body = ELOAD.replace("\n", f"\nK{k};", 4).rstrip(f"K{k};")
+            write(folder, "Cell;" + body, f"part-{k}.csv")
+        run = cli("fit", folder, "--workers", "1", "--columns", "current=I_meas (A)",
+                  "--out", tmp_path / "res")
+        assert run.code == 0, run.err
+        import pyarrow.parquet as pq
+
+        t = pq.read_table(tmp_path / "res")
+        assert sorted(t.column("dut").to_pylist()) == ["K1", "K2"]

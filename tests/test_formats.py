@@ -223,3 +223,18 @@ class TestParquetSet:
         assert run.code == 3, run.err  # B2 has two readings: too few to fit without u
         doc = json.loads(run.out)
         assert doc["recorded"] == ["A1"] and doc["not_fitted"][0]["dut"] == "B2"
+
+
+def test_date_cells_of_a_sheet_are_times(tmp_path):
+    """Date-time cells (an OpenDocument date column) become times, 30 s apart here."""
+    import datetime as dt
+
+    t0 = dt.datetime(2026, 11, 3, 10, 0, 0)
+    rows = [["Time", "Load [ohm]", "Voltage [V]"]] + [
+        [t0 + dt.timedelta(seconds=30 * k), load, v]
+        for k, (load, v) in enumerate([("open", 12.7), (10, 12.6), (4.7, 12.5)])]
+    p = tmp_path / "timed.ods"
+    write_ods(p, {"Log": rows})
+    r = sagfit.read_readings(p)
+    assert np.diff(r.time).tolist() == [30.0, 30.0]
+    assert r.time[0] == pytest.approx(t0.replace(tzinfo=dt.timezone.utc).timestamp())

@@ -185,3 +185,20 @@ def test_inputs_left_unchanged(tmp_path, cli):
     before = digest(p)
     cli("fit", p, "--out", tmp_path / "out.parquet")
     assert digest(p) == before
+
+
+def test_a_file_name_with_glob_characters_is_that_file(tmp_path):
+    """'run[1].csv' is a file's own name, not a pattern of files."""
+    p = write(tmp_path, TEXT, "run[1].csv")
+    write(tmp_path, TEXT.replace("P1", "P2"), "run1.csv")
+    assert sagfit.read_readings(p).duts == ("P1",)
+
+
+def test_data_set_files_skip_separator_rows(tmp_path):
+    """The data-set reader (Dask path) skips rows of bare separators as the file reader does."""
+    pytest.importorskip("dask")
+    from sagfit.io.dataset import _read_file
+
+    p = write(tmp_path, TEXT + ",,\n,,\n", "part-1.csv")
+    frame = _read_file((0, str(p)))
+    assert len(frame) == 4 and frame["_row"].tolist() == [2, 3, 4, 5]

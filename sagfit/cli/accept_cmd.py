@@ -86,8 +86,7 @@ def accept_command(
             from .dataset_run import refuse_single_file_options, run_dataset_fit
 
             refuse_single_file_options({"--dut": dut, "--report": report, "--verbose": verbose,
-                                        "--columns (or the bench profile's [columns])":
-                                            settings["columns"], "--sheet": sheet})
+                                        "--sheet": sheet})
             raise typer.Exit(run_dataset_fit(file, settings, 0.01, out, json_out, scheduler,
                                              workers, spec=the_spec, rule=rule))
         check_out_option(out, inputs)

@@ -74,8 +74,9 @@ def run_dataset_fit(path: str, settings: dict, level: float, out: str | None, js
         raise OptionError("--out", "the results folder must not lie inside the data set")
     cluster, client = _cluster(scheduler, workers)
     with cluster, client:
-        results = fit_dataset(read_dataset(path), {**settings, "level": level,
-                                                    "spec": spec, "rule": rule})
+        readings = read_dataset(path, settings.get("columns"))
+        results = fit_dataset(readings, {**settings, "level": level, "spec": spec,
+                                         "rule": rule})
         # written beside the target, renamed when complete: a failed run leaves no part files
         partial = f"{out.rstrip(os.sep)}.partial-{os.getpid()}"
         job = results.to_parquet(partial, write_index=False, compute=False)

@@ -92,8 +92,7 @@ def fit_command(
                                         "--below-knee": below_knee, "--robust": robust,
                                         "--monte-carlo": monte_carlo,
                                         "--report": report, "--verbose": verbose,
-                                        "--columns (or the bench profile's [columns])":
-                                            settings["columns"], "--sheet": sheet})
+                                        "--sheet": sheet})
             code = run_dataset_fit(file, settings, level, out, json_out, scheduler, workers)
             raise typer.Exit(code)
         if report:

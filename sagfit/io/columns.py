@@ -16,7 +16,7 @@ from typing import Mapping
 from ..core.errors import InputError, ReadingsFileError
 from ..core.units import parse_header_unit
 
-__all__ = ["ColumnRole", "ROLES", "classify_header", "assign_roles", "parse_column_mapping",
+__all__ = ["ColumnRole", "ROLES", "classify_header", "normalise_name", "assign_roles", "parse_column_mapping",
            "check_column_mapping", "units_row_names", "is_unit"]
 
 # role -> accepted base names (lower case, separators normalised to '_')
@@ -61,7 +61,8 @@ class ColumnRole:
     index: int
 
 
-def _norm(name: str) -> str:
+def normalise_name(name: str) -> str:
+    """A header or key as compared: lower case, blanks, dashes, dots and slashes as '_'."""
     return _SEPARATORS_RE.sub("_", name.strip().lower()).strip("_")
 
 
@@ -77,16 +78,16 @@ def classify_header(header: str) -> tuple[str, float] | None:
     unit = None
     if m:
         base, unit = m.group(1), m.group(2)
-        role = _NAME_TO_ROLE.get(_norm(base))
+        role = _NAME_TO_ROLE.get(normalise_name(base))
         if role is None:
             return None
     else:
-        role = _NAME_TO_ROLE.get(_norm(h))
+        role = _NAME_TO_ROLE.get(normalise_name(h))
         if role is None:
             # unit as the last '_'-separated token, case kept (mV vs MV)
             raw = re.split(r"[\s_]+", h)
             if len(raw) >= 2:
-                role = _NAME_TO_ROLE.get(_norm(" ".join(raw[:-1])))
+                role = _NAME_TO_ROLE.get(normalise_name(" ".join(raw[:-1])))
                 if role is not None:
                     unit = raw[-1]
             if role is None:
@@ -164,7 +165,7 @@ def check_column_mapping(mapping: Mapping[str, object], *, what: str) -> dict[st
     non-empty column name, no role twice. Raises ``InputError`` naming ``what``."""
     out: dict[str, str] = {}
     for key, value in mapping.items():
-        role = key if key in _ROLES else _NAME_TO_ROLE.get(_norm(str(key)))
+        role = key if key in _ROLES else _NAME_TO_ROLE.get(normalise_name(str(key)))
         if role is None:
             raise InputError(f"{what}: {key!r} is not a column role; use "
                              f"{', '.join(ROLES)}")
@@ -304,7 +305,7 @@ def _likeness(role: str, header: str) -> int:
     m = _BRACKET_RE.match(header)
     unit = m.group(2) if m else re.split(r"[\s_]+", header)[-1]
     dim = parse_header_unit(unit) if unit else None
-    low = _norm(m.group(1) if m else header)
+    low = normalise_name(m.group(1) if m else header)
     score = 0
     if dim is not None and dim[1] == _DIMENSION[role]:
         score += 4

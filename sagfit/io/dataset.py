@@ -73,9 +73,10 @@ def _meta():
     return pd.DataFrame(cols)
 
 
-def _read_file(item: tuple[int, str]):
+def _read_file(item: tuple[int, str], mapping: Mapping[str, str] | None = None):
     """One file → a frame of dut, SI reading columns, file number and row; every non-numeric
-    cell raises :class:`DatasetError` naming file, row (line, for CSV) and column."""
+    cell raises :class:`DatasetError` naming file, row (line, for CSV) and column.
+    ``mapping``: the column mapping (role → header) where the headers do not say."""
     import pandas as pd
 
     number, path = item
@@ -89,7 +90,17 @@ def _read_file(item: tuple[int, str]):
     except (OSError, ValueError, UnicodeDecodeError) as exc:
         raise DatasetError(path, f"cannot read the file ({exc})") from None
     roles: dict[str, tuple[str, float]] = {}
-    for header in raw.columns:
+    if mapping:
+        from .columns import assign_roles
+
+        try:
+            found, _ = assign_roles([str(h) for h in raw.columns], path, mapping=mapping,
+                                    place="row")
+        except ReadingsFileError as exc:
+            raise DatasetError(exc.path, exc.detail, exc.line, exc.column) from None
+        roles = {r: (c.header, c.scale) for r, c in found.items()
+                 if r == "dut" or r in _VALUE_ROLES}
+    for header in ([] if mapping else raw.columns):
         try:
             got = classify_header(str(header))
         except ValueError as exc:
@@ -149,15 +160,18 @@ def _read_file(item: tuple[int, str]):
 
 
 def _read_csv_text(path: str):
-    """A CSV file without its ``#`` comment and blank lines → (text frame, the file line
-    number of each row), so that errors name the line as an editor shows it."""
+    """A CSV file without its ``#`` comment lines, blank lines and rows of bare separators
+    → (text frame, the file line number of each row), so that errors name the line as an
+    editor shows it."""
     import io
 
     import pandas as pd
 
     with open(path, encoding="utf-8-sig", newline="") as fh:
         all_lines = fh.read().splitlines()
-    keep = [i for i, ln in enumerate(all_lines) if ln.strip() and not ln.lstrip().startswith("#")]
+    # blank lines, comments and rows of bare separators (a spreadsheet's empty rows) go
+    keep = [i for i, ln in enumerate(all_lines) if ln.strip(" \t,;|")
+            and not ln.lstrip().startswith("#")]
     if not keep:
         return pd.DataFrame(), np.zeros(0, dtype=np.int64)
     text = "\n".join(all_lines[i] for i in keep)
@@ -168,13 +182,14 @@ def _read_csv_text(path: str):
     return raw, np.asarray(keep[1:], dtype=np.int64) + 1
 
 
-def read_dataset(path: str):
-    """A data set as a Dask DataFrame of readings, one partition per file (lazy)."""
+def read_dataset(path: str, columns: Mapping[str, str] | None = None):
+    """A data set as a Dask DataFrame of readings, one partition per file (lazy);
+    ``columns``: the column mapping, as for :func:`sagfit.read_readings`."""
     import dask.dataframe as dd
 
     files = dataset_files(path)
     return dd.from_map(_read_file, list(enumerate(files)), meta=_meta(),
-                       enforce_metadata=False)
+                       enforce_metadata=False, mapping=dict(columns or {}) or None)
 
 
 def fit_partition(part, settings: Mapping[str, object] | None = None, files=None):

@@ -16,7 +16,6 @@ and the column.
 from __future__ import annotations
 
 import os
-import re
 import sys
 from pathlib import Path
 from typing import Mapping
@@ -27,7 +26,7 @@ from ..core.errors import ReadingsFileError
 from ..core.readings import Readings
 from ..core.units import Accuracy
 from .columns import assign_roles, classify_header, parse_column_mapping, units_row_names
-from .columns import check_column_mapping, _norm
+from .columns import check_column_mapping
 from .results_csv import (Coded, coded, csv_rows, fits_columns, fits_csv, fits_table,  # noqa: F401
                           neutralise, table_csv, table_csv_chunks)
 
@@ -111,7 +110,7 @@ def read_readings(
     suffix = p.suffix.lower()
     from .dataset import is_dataset
 
-    if is_dataset(name):
+    if is_dataset(name) and not p.is_file():  # 'run[1].csv' may be a file's own name
         from .readings_parquet import read_parquet_set
 
         return read_parquet_set(name, limit=limit, **opts)
@@ -270,6 +269,8 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
 def _head(data: bytes, name: str, meta: dict) -> tuple[str, int, int]:
     """Comment lines (into ``meta``) and blank lines up to the header: (header, its line
     number, the position after it)."""
+    from .readings_table import note_comment
+
     pos = lineno = 0
     while pos < len(data):
         end = data.find(b"\n", pos)
@@ -284,10 +285,7 @@ def _head(data: bytes, name: str, meta: dict) -> tuple[str, int, int]:
         if not s:
             continue
         if s.startswith("#"):
-            m = re.match(r"#\s*([A-Za-z][\w]*)\s*[:=]\s*(.*)$", s)
-            if m:
-                meta[_norm(m.group(1))] = m.group(2).strip()
-            meta.setdefault("comments", []).append(s.lstrip("#").strip())
+            note_comment(meta, s)
             continue
         return raw, lineno, min(pos, len(data))
     raise ReadingsFileError(name, "no header line (only comments or blank lines)")

@@ -13,7 +13,6 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import io
-import re
 from pathlib import Path
 from typing import Mapping
 
@@ -21,7 +20,8 @@ import numpy as np
 
 from ..core.errors import ReadingsFileError
 from ..core.readings import Readings
-from .columns import _norm, units_row_names
+from .columns import units_row_names
+from .readings_table import note_comment
 
 __all__ = ["read_workbook", "sheet_rows"]
 
@@ -98,11 +98,7 @@ def _table(name: str, title: str, rows: list[list], meta: dict):
             continue
         first = row[0] if row else None
         if isinstance(first, str) and first.strip().startswith("#"):
-            text = " ".join(str(c) for c in row if c not in (None, "")).strip()
-            m = re.match(r"#\s*([A-Za-z][\w]*)\s*[:=]\s*(.*)$", text)
-            if m:
-                meta[_norm(m.group(1))] = m.group(2).strip()
-            meta.setdefault("comments", []).append(text.lstrip("#").strip())
+            note_comment(meta, " ".join(str(c) for c in row if c not in (None, "")).strip())
             continue
         header = [_text(c) for c in row]
         break

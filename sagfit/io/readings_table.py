@@ -27,7 +27,7 @@ from ..core.readings import Readings
 from ..core.units import parse_resistance
 from .columns import ColumnRole
 
-__all__ = ["readings_from_columns", "Where", "FilesWhere"]
+__all__ = ["readings_from_columns", "Where", "FilesWhere", "note_comment"]
 
 #: a decimal number as written in a readings cell (after trimming), or a spelling of
 #: infinity or not-a-number (these reach the readings' own checks, which name them)
@@ -86,6 +86,20 @@ class FilesWhere(Where):
         if exc.line is None:
             return exc
         return self.error(exc.detail, int(exc.line) - 1, exc.column)
+
+
+_COMMENT_RE = re.compile(r"#\s*([A-Za-z][\w]*)\s*[:=]\s*(.*)$")
+
+
+def note_comment(meta: dict, text: str) -> None:
+    """A ``#`` comment line of a readings file into ``meta``: its text under
+    ``comments``, and ``# key: value`` (``# date: 2026-11-03``) as ``meta[key]``."""
+    from .columns import normalise_name
+
+    m = _COMMENT_RE.match(text)
+    if m:
+        meta[normalise_name(m.group(1))] = m.group(2).strip()
+    meta.setdefault("comments", []).append(text.lstrip("#").strip())
 
 
 def _pa():
