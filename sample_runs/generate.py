@@ -5,7 +5,7 @@ packs on the depot's standby trolleys, and the 5 V output of our sensor-hub boar
 Not measurements of any real product.
 
     python sample_runs/generate.py        # rewrites pack_a.csv, fleet_packs.csv, reg5v_board.csv,
-                                          # cell_c07_trace.csv, drive_profile.csv
+                                          # traces/cell_c07_trace.csv, traces/drive_profile.csv
 
 Also invented: a logged trace of one lithium-ion cell of our own 3 Ah design (load steps,
 an HPPC-style pulse pair, a two-level DC-resistance step) and a current profile for
@@ -96,12 +96,12 @@ def cell_trace() -> None:
             "# own 3 Ah design on the bench cycler. Not measurements of any real product.\n"
             "# Regenerate with sample_runs/generate.py (seeded).\n")
     rows = "\n".join(f"C-07,{a:.1f},{b:.4f},{c:.5f}" for a, b, c in zip(t, i_meas, v))
-    (HERE / "cell_c07_trace.csv").write_text(
+    (HERE / "traces" / "cell_c07_trace.csv").write_text(
         head + "cell,time_s,current_A,voltage_V\n" + rows + "\n", encoding="utf-8")
     tp = np.arange(0.0, 300.0, 1.0)
     ip = np.select([tp < 30, tp < 90, tp < 120, tp < 200, tp < 230], [0.0, 2.5, -1.5, 4.0,
                                                                        0.0], 1.0)
-    (HERE / "drive_profile.csv").write_text(
+    (HERE / "traces" / "drive_profile.csv").write_text(
         "# INVENTED current profile for `sagfit respond` (each current holds to the next "
         "row)\ntime_s,current_A\n" + "\n".join(f"{a:g},{b:g}" for a, b in zip(tp, ip))
         + "\n", encoding="utf-8")
