@@ -68,8 +68,8 @@ def regulator() -> None:
 
 
 def cell_trace() -> None:
-    """Invented trace: R0 25 mΩ + 12 mΩ‖(τ 2.5 s) + 8 mΩ‖(τ 25 s), OCV 3.65 V, sampled
-    every 0.2 s with 0.3 mV and 3 mA of noise (seeded)."""
+    """Invented trace: R0 25 mΩ + 12 mΩ‖(τ 2.5 s) + 8 mΩ‖(τ 25 s), OCV 3.65 V, with
+    0.3 mV and 3 mA of noise (seeded)."""
     import numpy as np
 
     from sagfit.core.rc_model import RCFit, predict_voltage
@@ -84,8 +84,8 @@ def cell_trace() -> None:
     plan = [(120, 0.0), (200, 0.5), (200, 0.0), (200, 1.0), (200, 0.0), (200, 2.0),
             (200, 0.0), (200, 3.0), (300, 0.0), (10, 6.0), (40, 0.0), (10, -4.5),
             (200, 0.0), (10, 0.6), (1, 3.0), (120, 0.0)]
-    dt = 0.2
-    t = np.arange(0.0, sum(d for d, _ in plan), dt)
+    # logged every 1 s through the load steps, every 0.2 s from the pulses on
+    t = np.r_[np.arange(0.0, 1520.0, 1.0), np.arange(1520.0, sum(d for d, _ in plan), 0.2)]
     ends = np.cumsum([d for d, _ in plan])
     i = np.array([c for _, c in plan])[np.minimum(np.searchsorted(ends, t, side="right"),
                                                    len(plan) - 1)]
