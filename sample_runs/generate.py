@@ -5,7 +5,7 @@ packs on the depot's standby trolleys, and the 5 V output of our sensor-hub boar
 Not measurements of any real product.
 
     python sample_runs/generate.py        # rewrites pack_a.csv, fleet_packs.csv, reg5v_board.csv,
-                                          # cell_c07_trace.csv, drive_profile.csv
+                                          # traces/cell_c07_trace.csv, traces/drive_profile.csv
 
 Also invented: a logged trace of one lithium-ion cell of our own 3 Ah design (load steps,
 an HPPC-style pulse pair, a two-level DC-resistance step) and a current profile for
@@ -68,8 +68,8 @@ def regulator() -> None:
 
 
 def cell_trace() -> None:
-    """Invented trace: R0 25 mΩ + 12 mΩ‖(τ 2.5 s) + 8 mΩ‖(τ 25 s), OCV 3.65 V, sampled
-    every 0.2 s with 0.3 mV and 3 mA of noise (seeded)."""
+    """Invented trace: R0 25 mΩ + 12 mΩ‖(τ 2.5 s) + 8 mΩ‖(τ 25 s), OCV 3.65 V, with
+    0.3 mV and 3 mA of noise (seeded)."""
     import numpy as np
 
     from sagfit.core.rc_model import RCFit, predict_voltage
@@ -84,8 +84,8 @@ def cell_trace() -> None:
     plan = [(120, 0.0), (200, 0.5), (200, 0.0), (200, 1.0), (200, 0.0), (200, 2.0),
             (200, 0.0), (200, 3.0), (300, 0.0), (10, 6.0), (40, 0.0), (10, -4.5),
             (200, 0.0), (10, 0.6), (1, 3.0), (120, 0.0)]
-    dt = 0.2
-    t = np.arange(0.0, sum(d for d, _ in plan), dt)
+    # logged every 1 s through the load steps, every 0.2 s from the pulses on
+    t = np.r_[np.arange(0.0, 1520.0, 1.0), np.arange(1520.0, sum(d for d, _ in plan), 0.2)]
     ends = np.cumsum([d for d, _ in plan])
     i = np.array([c for _, c in plan])[np.minimum(np.searchsorted(ends, t, side="right"),
                                                    len(plan) - 1)]
@@ -96,12 +96,12 @@ def cell_trace() -> None:
             "# own 3 Ah design on the bench cycler. Not measurements of any real product.\n"
             "# Regenerate with sample_runs/generate.py (seeded).\n")
     rows = "\n".join(f"C-07,{a:.1f},{b:.4f},{c:.5f}" for a, b, c in zip(t, i_meas, v))
-    (HERE / "cell_c07_trace.csv").write_text(
+    (HERE / "traces" / "cell_c07_trace.csv").write_text(
         head + "cell,time_s,current_A,voltage_V\n" + rows + "\n", encoding="utf-8")
     tp = np.arange(0.0, 300.0, 1.0)
     ip = np.select([tp < 30, tp < 90, tp < 120, tp < 200, tp < 230], [0.0, 2.5, -1.5, 4.0,
                                                                        0.0], 1.0)
-    (HERE / "drive_profile.csv").write_text(
+    (HERE / "traces" / "drive_profile.csv").write_text(
         "# INVENTED current profile for `sagfit respond` (each current holds to the next "
         "row)\ntime_s,current_A\n" + "\n".join(f"{a:g},{b:g}" for a, b in zip(tp, ip))
         + "\n", encoding="utf-8")

@@ -90,6 +90,17 @@ class TestSteps:
         assert list(steps.settled) == [True, False, True]
         assert steps_to_readings(steps).voltage.size == 2
 
+    def test_slow_drift_in_a_short_window_flagged(self):
+        """A 10 s step on a source with a 25 s branch: the 2.5 s window alone shows no
+        significant slope, but its mean has moved from the samples before it: unsettled."""
+        rng = np.random.default_rng(8)
+        t = sample_times(200, 0.2, rng)
+        v, i = rc_voltage(t, [100.0, 110.0], [0.0, 0.6, 0.0], OCV, R0,
+                          [(0.012, 2.5), (0.008, 25.0)])
+        v = v + rng.normal(0, 3e-4, t.size)
+        steps = find_steps(Trace.from_arrays(time=t, current=i, voltage=v))
+        assert len(steps) == 3 and not steps.settled[1]
+
     def test_autocorrelated_noise_counts_fewer_samples(self):
         """AR(1) noise with φ = 0.8: n_eff ≈ n(1 − φ)/(1 + φ) = n/9 (Bayley and
         Hammersley 1946), and u of the mean covers the truth about as often as stated."""

@@ -25,8 +25,9 @@ branch is kept when it lowers BIC by more than 6 ("strong" evidence on the scale
 R. E. Kass and A. E. Raftery, JASA 90 (1995) 773, from memory) and both branches are
 physical (R_k > 0, τ₁ < τ₂ by at least a factor 2).
 
-A loop over pulses remains (one small least-squares problem each, a few milliseconds);
-the grid and every array operation within a pulse are vectorised.
+The grid start and the iterations run on all pulses at once (:mod:`sagfit.core.rc_batch`);
+:func:`fit_rc` solves one pulse with MINPACK's Levenberg–Marquardt and is the reference
+the batch is tested against.
 """
 
 from __future__ import annotations
@@ -196,8 +197,6 @@ def fit_rc(t, v, i_model, edges, d_i, i_base, *, branches: int, level: float = 0
     """
     from scipy import optimize
 
-    from .systematic import coverage_half_width
-
     x_i = i_model - i_base
     n = t.size
     p = 2 + 2 * branches
@@ -233,15 +232,35 @@ def fit_rc(t, v, i_model, edges, d_i, i_base, *, branches: int, level: float = 0
 
     sol = optimize.least_squares(resid, x0, jac=jac, method="lm", xtol=1e-12, ftol=1e-12,
                                  max_nfev=200 * p)
-    ub, r0, r, tau = split(sol.x)
+    return finish_rc(t, v, i_model, edges, d_i, i_base, sol.x, branches=branches,
+                     level=level, duration=duration, dt=dt, edge_dt=edge_dt,
+                     error=None if sol.success or sol.status > 0 else sol.message)
+
+
+def finish_rc(t, v, i_model, edges, d_i, i_base, x, *, branches: int, level: float,
+              duration: float, dt: float, edge_dt=None, error=None) -> RCFit:
+    """The fitted pulse from its solution ``x`` = (U_b, R0, R_k, log τ_k): estimates in
+    order of τ, uncertainties (the edges' place included), intervals, BIC, warnings."""
+    from .systematic import coverage_half_width
+
+    x_i = i_model - i_base
+    n = t.size
+    p = 2 + 2 * branches
+    names = ("u_base", "r0") + sum(((f"r{k}", f"tau{k}") for k in range(1, branches + 1)), ())
+    ub, r0 = float(x[0]), float(x[1])
+    r, tau = np.asarray(x[2::2], float), np.exp(np.asarray(x[3::2], float))
     order = np.argsort(tau)
     r, tau = r[order], tau[order]
     value = np.r_[ub, r0, np.column_stack([r, tau]).ravel()]
-    res = resid(np.r_[ub, r0, np.column_stack([r, np.log(tau)]).ravel()])
+    resp, dresp = _responses(t, edges, d_i, tau)
+    res = ub - r0 * x_i - r @ resp - v
     ssr_v = float(res @ res)
     dof = n - p
-    j = jac(np.r_[ub, r0, np.column_stack([r, np.log(tau)]).ravel()])
-    j[:, 3::2] /= tau[None, :]  # back to d/dτ
+    j = np.empty((n, p))
+    j[:, 0] = 1.0
+    j[:, 1] = -x_i
+    j[:, 2::2] = -resp.T
+    j[:, 3::2] = -(r[:, None] * dresp).T  # d/dτ
     try:
         jtj_inv = np.linalg.inv(j.T @ j)
     except np.linalg.LinAlgError:
@@ -281,7 +300,7 @@ def fit_rc(t, v, i_model, edges, d_i, i_base, *, branches: int, level: float = 0
                  ci_low=value - k_half, ci_high=value + k_half, level=level, n=n, dof=dof,
                  rms=math.sqrt(ssr_v / n), bic={branches: bic}, i_base=float(i_base),
                  t=t, v=v, fitted=v + res, warnings=tuple(warn),
-                 error=None if sol.success or sol.status > 0 else sol.message)
+                 error=error)
 
 
 def _failed(names, branches, level, i_base, why) -> RCFit:
@@ -328,18 +347,33 @@ def pulse_samples(trace: Trace, steps: Steps, pulses: Pulses, j: int, relax: flo
 
 def fit_pulses(trace: Trace, steps: Steps, pulses: Pulses, *, branches: str | int = "auto",
                level: float = 0.95, relax: float = 120.0) -> list[RCFit]:
-    """Fit every pulse: one branch, two, or ``"auto"`` (the BIC choice, module notes)."""
-    out = []
-    for j in range(len(pulses)):  # one small least-squares problem per pulse
-        t, v, i_m, edges, d_i, i_b, dur, dt, e_dt = pulse_samples(trace, steps, pulses, j,
-                                                                   relax)
-        kw = dict(level=level, duration=dur, dt=dt, edge_dt=e_dt)
-        if branches in (1, 2, "1", "2"):
-            out.append(fit_rc(t, v, i_m, edges, d_i, i_b, branches=int(branches), **kw))
-            continue
-        one = fit_rc(t, v, i_m, edges, d_i, i_b, branches=1, **kw)
-        two = fit_rc(t, v, i_m, edges, d_i, i_b, branches=2, **kw)
-        out.append(choose(one, two))
+    """Fit every pulse: one branch, two, or ``"auto"`` (the BIC choice, module notes).
+
+    The least-squares iterations run on all pulses at once
+    (:func:`sagfit.core.rc_batch.solve_many`); the uncertainties are then taken per pulse
+    (:func:`finish_rc`).
+    """
+    from .rc_batch import solve_many
+
+    data = [pulse_samples(trace, steps, pulses, j, relax) for j in range(len(pulses))]
+    counts = [1, 2] if branches == "auto" else [int(branches)]
+    fits: dict = {}
+    for b in counts:
+        p = 2 + 2 * b
+        ok = [j for j, d in enumerate(data) if d[0].size > p + 2]
+        theta, _ = solve_many([(d[0], d[1], d[2] - d[5], d[3], d[4], d[7])
+                               for d in (data[j] for j in ok)], b) if ok else (None, None)
+        names = ("u_base", "r0") + sum(((f"r{k}", f"tau{k}") for k in range(1, b + 1)), ())
+        row = {j: q for q, j in enumerate(ok)}
+        for j, (t, v, i_m, edges, d_i, i_b, dur, dt, e_dt) in enumerate(data):
+            # the uncertainties of each pulse: a few small matrix products apiece
+            fits[j, b] = (finish_rc(t, v, i_m, edges, d_i, i_b, theta[row[j]], branches=b,
+                                    level=level, duration=dur, dt=dt, edge_dt=e_dt)
+                          if j in row else
+                          _failed(names, b, level, i_b, f"too few samples ({t.size}) for "
+                                                        f"{b} branch(es)"))
+    out = [fits[j, counts[0]] if len(counts) == 1 else choose(fits[j, 1], fits[j, 2])
+           for j in range(len(data))]
     unsettled = ~steps.settled[pulses.step - 1]
     for j in np.flatnonzero(unsettled):
         f = out[j]

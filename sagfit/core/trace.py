@@ -31,7 +31,8 @@ Methods
   J. M. Hammersley, "The 'effective' number of independent observations in an
   autocorrelated time series", J. R. Stat. Soc. Suppl. 8 (1946) 184; N. F. Zhang,
   "Calculation of the uncertainty of the mean of autocorrelated measurements",
-  Metrologia 43 (2006) S276 — both from memory).
+  Metrologia 43 (2006) S276 — both from memory); r₁ of the residuals about the window's
+  straight line, so that a drift is not taken for correlated noise.
 - **Settling check**: a straight line through the window's voltage; the step is flagged
   ``unsettled`` when the drift across the window (slope × window length) exceeds the
   samples' scatter about the line and the slope is significant (|t| > 3); or when the
@@ -217,7 +218,8 @@ class Steps:
     sd_voltage, sd_current : ndarray of float64
         Sample standard deviation in the window (the noise of one sample).
     n_window, n_eff : ndarray
-        Samples in the window and their effective number (autocorrelation counted).
+        Samples in the window and the effective number of the voltage's samples
+        (autocorrelation counted; the current's is counted the same way, separately).
     drift : ndarray of float64
         Voltage change across the window from the straight line (V).
     settled : ndarray of bool
@@ -415,28 +417,38 @@ def _settle(trace, starts, stops, after_gap, thr, noise, min_samples, window,
     sii = np.add.reduceat(di * di, ws)
     stt = np.add.reduceat(dtt * dtt, ws)
     stv = np.add.reduceat(dtt * dv, ws)
-    # lag-1 products within each window (the pair across two windows is dropped)
-    lag_v = np.r_[dv[1:] * dv[:-1], 0.0]
-    lag_i = np.r_[di[1:] * di[:-1], 0.0]
+    sti = np.add.reduceat(dtt * di, ws)
     last = ws + wl - 1
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope = np.where(stt > 0, stv / stt, 0.0)
+        slope_i = np.where(stt > 0, sti / stt, 0.0)
+    # Lag-1 autocorrelation of the residuals about each window's straight line (a drift
+    # is the settling check's business, not noise); the pair across two windows dropped.
+    ev = dv - slope[seg_of] * dtt
+    ei = di - slope_i[seg_of] * dtt
+    lag_v = np.r_[ev[1:] * ev[:-1], 0.0]
+    lag_i = np.r_[ei[1:] * ei[:-1], 0.0]
     lag_v[last] = 0.0
     lag_i[last] = 0.0
     rv = np.add.reduceat(lag_v, ws)
     ri = np.add.reduceat(lag_i, ws)
+    evv = np.add.reduceat(ev * ev, ws)
+    eii = np.add.reduceat(ei * ei, ws)
     with np.errstate(invalid="ignore", divide="ignore"):
         sd_v = np.sqrt(svv / np.maximum(nw - 1, 1))
         sd_i = np.sqrt(sii / np.maximum(nw - 1, 1))
-        r1v = np.where(svv > 0, rv / svv, 0.0)
-        r1i = np.where(sii > 0, ri / sii, 0.0)
-        r1 = np.clip(np.maximum(r1v, r1i), 0.0, 0.99)
-        n_eff = np.clip(nw * (1 - r1) / (1 + r1), 1.0, nw)
+        # scatter at the level of rounding (a noise-free, set current) has no correlation
+        # worth the name
+        r1v = np.where(evv > (1e-12 * np.abs(mv)) ** 2 * nw, rv / evv, 0.0)
+        r1i = np.where(eii > (1e-12 * np.abs(mi)) ** 2 * nw, ri / eii, 0.0)
+        r1v, r1i = np.clip(r1v, 0.0, 0.99), np.clip(r1i, 0.0, 0.99)
+        n_eff = np.clip(nw * (1 - r1v) / (1 + r1v), 1.0, nw)
+        n_eff_i = np.clip(nw * (1 - r1i) / (1 + r1i), 1.0, nw)
         uv = sd_v / np.sqrt(n_eff)
-        ui = sd_i / np.sqrt(n_eff)
-        slope = np.where(stt > 0, stv / stt, 0.0)
+        ui = sd_i / np.sqrt(n_eff_i)
         span = t[stops - 1] - t[w0]
         drift = slope * span
-        resid = np.maximum(svv - slope * stv, 0.0)
-        s_line = np.sqrt(resid / np.maximum(nw - 2, 1))
+        s_line = np.sqrt(evv / np.maximum(nw - 2, 1))
         se_slope = np.where(stt > 0, s_line / np.sqrt(stt), np.inf) * np.sqrt(nw / n_eff)
         tstat = np.where(se_slope > 0, np.abs(slope) / se_slope, np.where(slope != 0, np.inf,
                                                                           0.0))
