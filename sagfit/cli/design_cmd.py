@@ -121,7 +121,8 @@ def design_command(
         doc = _document(net, t, limits)
         cmp = None
         if units is not None:
-            cmp = compare(t, units.duts, units.vth, units.U_vth, units.rth, units.U_rth)
+            cmp = compare(t, units.duts, units.vth, units.U_vth, units.rth, units.U_rth,
+                          circuit=circuit)
             doc["measured"] = _measured_doc(cmp, units)
         from ..core.safety import cautions
 
@@ -438,5 +439,6 @@ def _print_units(m) -> None:
                      if s["skipped"] else ""), markup=False)
     if any(u["explanation"] for u in rows):
         console.print("The part named is the one that, changed alone by the amount shown "
-                      "(first order), best accounts for the difference; a change far beyond "
-                      "its tolerance points to a wrong or damaged part.", markup=False)
+                      "(solved on the network), best accounts for the difference; a change "
+                      "far beyond its tolerance points to a wrong or damaged part.",
+                      markup=False)
