@@ -74,8 +74,9 @@ def design_command(
     u_rth: Annotated[Optional[str], typer.Option(
         "--u-rth", help="Its expanded uncertainty U (k=2), e.g. 5ohm.")] = None,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="CSV: the measured units against the design (with --measured or "
-                      "--measured-vth/-rth), else the per-part sensitivities.")] = None,
+        "--out", help="x.csv: the measured units against the design (with --measured or "
+                      "--measured-vth/-rth), else the per-part sensitivities; x.json: the "
+                      "whole document.")] = None,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write an HTML report (histograms of the expected Vth and Rth, "
                          "measured units marked) into this folder.")] = None,
@@ -93,6 +94,12 @@ def design_command(
         if measured and (vth_meas or rth_meas):
             raise OptionError("--measured", "give a file or one unit's --measured-vth/-rth, "
                                             "not both")
+        fit_options = {"--dut": dut, "--voltage-accuracy": voltage_accuracy,
+                       "--current-accuracy": current_accuracy,
+                       "--load-tolerance": load_tolerance, "--bench": bench}
+        for option, given in fit_options.items():
+            if given and not measured:
+                raise OptionError(option, "applies to the units of --measured FILE; give one")
         inputs = [netlist] + [f for f in (measured, bench, tolerances) if f]
         from ..io.outputs import check_output_path
 
@@ -114,7 +121,8 @@ def design_command(
                                    load_tolerance, bench)
         circuit = Circuit(net)
         show = (not json_out and interactive() and draws * circuit.size >= PROGRESS_WORK)
-        with progress(f"Monte Carlo: {draws:,} draws", show, total=-(-draws // MC_CHUNK)) as step:
+        passes = -(-draws // MC_CHUNK)
+        with progress(f"Monte Carlo: {draws:,} draws", show, total=passes) as step:
             t = analyse(circuit, draws=draws, distribution=distribution, seed=seed,
                         on_progress=lambda done, total: step(
                             f"Monte Carlo: {done:,} of {total:,} draws"))
@@ -136,7 +144,11 @@ def design_command(
             text = spec_text(f"design {os.path.basename(net.path)}", doc["limits"]["vth"],
                              doc["limits"]["rth"], limits, net.path)
             atomic_write(spec_out, text, inputs=inputs, option="--spec-out")
-        if out:
+        if out and out.lower().endswith(".json"):
+            from ..io.outputs import document_text
+
+            atomic_write(out, document_text(doc, rows=_rows(doc)), inputs=inputs)
+        elif out:
             atomic_write(out, _measured_csv(doc) if cmp is not None else _sensitivity_csv(doc),
                          inputs=inputs)
         if report:
