@@ -134,3 +134,16 @@ def test_tolerance_table_option(tmp_path, capsys):
     assert code == 0
     assert json.loads(out)["worst_case"]["vth_V"][1] == pytest.approx(12.12 * 2.02 / 4.0,
                                                                      rel=1e-9)
+
+
+def test_out_json_and_fit_options_need_measured(tmp_path, capsys):
+    """--out x.json writes the --json document; meter options without --measured are an
+    option error rather than silently unused."""
+    net = tmp_path / "d.cir"
+    net.write_text(DIVIDER + ".port tap 0\n")
+    doc_path = tmp_path / "design.json"
+    code, out, _ = _run(capsys, "design", str(net), "--draws", "500", "--json", "--out",
+                        str(doc_path))
+    assert code == 0 and json.loads(doc_path.read_text()) == json.loads(out)
+    code, out, err = _run(capsys, "design", str(net), "--bench", "b.toml")
+    assert code == 2 and out == "" and err.startswith("error: option --bench")

@@ -67,6 +67,23 @@ class TestExplain:
         assert best.part == "R2" and best.relative_change == pytest.approx(0.1, rel=0.1)
         assert not best.within_tolerance and best.value == pytest.approx(2200, rel=0.01)
 
+    @pytest.mark.parametrize("fitted, rel", [("20k", 9.0), ("200", -0.9), ("2.2k", 0.1)])
+    def test_wrong_part_found_at_its_value_on_the_network(self, fitted, rel):
+        """A wrong resistor (20 kΩ or 200 Ω where 2 kΩ belongs): the first order names R2
+        but misjudges the value (+164 %; below zero for 200 Ω); solved on the network the
+        change is the true one and nothing is left unexplained (divider by hand)."""
+        c = Circuit(parse_netlist(DIVIDER))
+        t = analyse(c, draws=0)
+        v2, r2 = equivalent(parse_netlist(DIVIDER.replace("R2 tap 0 2k", f"R2 tap 0 {fitted}")))
+        first = compare(t, ["U1"], [v2], [2e-3], [r2], [2.0]).explanations[0][0]
+        exact = compare(t, ["U1"], [v2], [2e-3], [r2], [2.0], circuit=c).explanations[0][0]
+        assert first.part == exact.part == "R2"
+        assert exact.relative_change == pytest.approx(rel, rel=1e-6)
+        assert exact.value == pytest.approx(2000 * (1 + rel), rel=1e-6)
+        assert exact.misfit == pytest.approx(0, abs=1e-6)
+        if fitted != "2.2k":
+            assert abs(first.relative_change - rel) > 0.5 * abs(rel)
+
     def test_only_vth_measured_prefers_the_smallest_change_against_tolerance(self):
         """With Vth alone every part can explain a shift; the one needing the smallest
         change relative to its tolerance comes first (here the supply: 0.5 V/V against

@@ -74,9 +74,9 @@ def design_command(
     u_rth: Annotated[Optional[str], typer.Option(
         "--u-rth", help="Its expanded uncertainty U (k=2), e.g. 5ohm.")] = None,
     out: Annotated[Optional[str], typer.Option(
-        "--out", help="Also write the results: a .csv file gets the measured units against "
-                      "the design (with --measured or --measured-vth/-rth), else the per-part "
-                      "sensitivities; a .json file the document of --json.")] = None,
+        "--out", help="x.csv: the measured units against the design (with --measured or "
+                      "--measured-vth/-rth), else the per-part sensitivities; x.json: the "
+                      "whole document.")] = None,
     report: Annotated[Optional[str], typer.Option(
         "--report", help="Write an HTML report (histograms of the expected Vth and Rth, "
                          "measured units marked) into this folder.")] = None,
@@ -94,6 +94,12 @@ def design_command(
         if measured and (vth_meas or rth_meas):
             raise OptionError("--measured", "give a file or one unit's --measured-vth/-rth, "
                                             "not both")
+        fit_options = {"--dut": dut, "--voltage-accuracy": voltage_accuracy,
+                       "--current-accuracy": current_accuracy,
+                       "--load-tolerance": load_tolerance, "--bench": bench}
+        for option, given in fit_options.items():
+            if given and not measured:
+                raise OptionError(option, "applies to the units of --measured FILE; give one")
         inputs = [netlist] + [f for f in (measured, bench, tolerances) if f]
         from ..io.outputs import check_output_path
 
@@ -117,14 +123,16 @@ def design_command(
                                    load_tolerance, bench)
         circuit = Circuit(net)
         show = (not json_out and interactive() and draws * circuit.size >= PROGRESS_WORK)
-        with progress(f"Monte Carlo: {draws:,} draws", show, total=-(-draws // MC_CHUNK)) as step:
+        passes = -(-draws // MC_CHUNK)
+        with progress(f"Monte Carlo: {draws:,} draws", show, total=passes) as step:
             t = analyse(circuit, draws=draws, distribution=distribution, seed=seed,
                         on_progress=lambda done, total: step(
                             f"Monte Carlo: {done:,} of {total:,} draws"))
         doc = _document(net, t, limits)
         cmp = None
         if units is not None:
-            cmp = compare(t, units.duts, units.vth, units.U_vth, units.rth, units.U_rth)
+            cmp = compare(t, units.duts, units.vth, units.U_vth, units.rth, units.U_rth,
+                          circuit=circuit)
             doc["measured"] = _measured_doc(cmp, units)
         from ..core.safety import cautions
 
@@ -445,5 +453,6 @@ def _print_units(m) -> None:
                      if s["skipped"] else ""), markup=False)
     if any(u["explanation"] for u in rows):
         console.print("The part named is the one that, changed alone by the amount shown "
-                      "(first order), best accounts for the difference; a change far beyond "
-                      "its tolerance points to a wrong or damaged part.", markup=False)
+                      "(solved on the network), best accounts for the difference; a change "
+                      "far beyond its tolerance points to a wrong or damaged part.",
+                      markup=False)

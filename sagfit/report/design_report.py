@@ -254,6 +254,6 @@ def _units_table(m) -> str:
             f"{s['dut']} ({s['reason']})" for s in m["skipped"][:20])) + "</p>")
     rows.append("<p class='note'>E_n = (measured − expected)/√(U_meas² + U_design²), "
                 "expanded uncertainties (ISO 13528:2022, 9.7; ISO/IEC 17043:2023); |E_n| ≤ 1 "
-                "is consistent. The part named is the one that, changed alone (first order), "
-                "best accounts for the difference.</p>")
+                "is consistent. The part named is the one that, changed alone (solved on the "
+                "network), best accounts for the difference.</p>")
     return "".join(rows)
