@@ -228,8 +228,10 @@ def _print_flags(console, fits, verbose):
                 counts[f.code] += int(uses[key])
     if len(fits) > 1 and counts:
         summary = ", ".join(f"{code} {n}" for code, n in counts.most_common())
-        console.print(f"[bold]checks[/bold]: warnings across {len(fits)} DUTs: {summary}",
-                      markup=True)
+        level = float(fits.settings.get("level", 0.01))
+        console.print(f"[bold]checks[/bold]: warnings across {len(fits)} DUTs: {summary} "
+                      f"(each test flags up to {100 * level:g} % of linear DUTs by chance, "
+                      "--level)", markup=True)
 
     def shows(f):
         if f.code == "type-a":  # said once for the run (the note above the flags)

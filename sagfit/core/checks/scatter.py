@@ -58,6 +58,7 @@ def check_slope(R: Rows, fits: Fits, level: float):
 
 
 def check_lack_of_fit(R: Rows):
+    """Lack-of-fit F test where loads are repeated (pure error from the replicates)."""
     m = R.m
     out = {k: np.full(m, NAN) for k in ("F", "p_value", "levels", "df_lof", "df_pe")}
     if not (np.isfinite(R.load) | np.isinf(R.load)).all() or R.g.size == 0:

@@ -101,6 +101,8 @@ def runs_min_p(n):
 
 
 def check_pattern(R: Rows, level):
+    """Runs test on the signs of the residuals ordered by current, per DUT (the caller
+    skips DUTs whose smallest attainable p-value is above the level)."""
     m = R.m
     out = {k: np.full(m, NAN) for k in ("runs", "n_positive", "n_negative", "expected",
                                           "z", "p_value")}
@@ -123,6 +125,8 @@ def check_pattern(R: Rows, level):
 
 
 def check_drift(R: Rows, level, has_time):
+    """Spearman's ρ of the residuals with time (or reading order), two-sided; run only
+    where the exact test can reach the level."""
     m = R.m
     out = {k: np.full(m, NAN) for k in ("rho", "p_value")}
     basis = np.full(m, None, dtype=object)

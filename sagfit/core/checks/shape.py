@@ -103,6 +103,8 @@ def quadratic_fit(x, y, w=None, *, group=None, m=None):
 
 
 def check_curvature(R: Rows, level):
+    """Quadratic term of the residuals: χ²-difference test where the stated uncertainties
+    agree with the scatter, F test otherwise (n ≥ 4 stated, n ≥ 5 Type A)."""
     m, g = R.m, R.g
     q = quadratic_fit(R.x, R.res, R.w, group=g, m=m) if g.size else None
     out = {k: np.full(m, NAN) for k in ("c", "u_c", "statistic", "p_value")}
