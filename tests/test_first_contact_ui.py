@@ -97,6 +97,7 @@ class TestCautionsFollowTheSource:
         run = cli("record", *files, "--db", tmp_path / "h.sqlite")
         assert run.code == 0, run.err
         assert run.out.count("recorded 1 DUT(s)") == 3
+        assert "(1 record in all)" in run.out and "(3 records in all)" in run.out
         assert run.out.count("High prospective short-circuit current") == 1
         assert run.out.count("Hot load resistors") == 1
         assert run.out.count("not a safety assessment") == 1
