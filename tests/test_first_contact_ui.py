@@ -97,6 +97,7 @@ class TestCautionsFollowTheSource:
         run = cli("record", *files, "--db", tmp_path / "h.sqlite")
         assert run.code == 0, run.err
         assert run.out.count("recorded 1 DUT(s)") == 3
+        assert "(1 record in all)" in run.out and "(3 records in all)" in run.out
         assert run.out.count("High prospective short-circuit current") == 1
         assert run.out.count("Hot load resistors") == 1
         assert run.out.count("not a safety assessment") == 1
@@ -549,3 +550,27 @@ class TestReportCautionsFollowTheData:
         assert cli("fit", SAMPLES / "pack_a.csv", "--report", tmp_path / "r", "-q").code == 0
         page = (tmp_path / "r" / "report.html").read_text(encoding="utf-8")
         assert "Load resistors get hot" in page
+
+
+class TestDistributionOption:
+    def test_simulate_and_design_share_the_name(self, cli, tmp_path):
+        """simulate --distribution as design's; --errors kept working, hidden."""
+        base = ["simulate", "--vth", "12", "--rth", "50m", "--loads", "open,10,4.7",
+                "--voltage-accuracy", "0.05%+2mV", "--out", "-"]
+        new = cli(*base, "--distribution", "normal")
+        old = cli(*base, "--errors", "normal")
+        assert new.code == old.code == 0
+        body = [ln for ln in new.out.splitlines() if not ln.startswith("# INVENTED")]
+        assert body == [ln for ln in old.out.splitlines() if not ln.startswith("# INVENTED")]
+        assert "--distribution normal" in new.out.splitlines()[0]
+        same = cli(*base, "--distribution", "uniform").out.splitlines()[1:]
+        assert same == cli(*base).out.splitlines()[1:]
+        help_text = cli("simulate", "--help").out
+        assert "--distribution" in help_text and "--errors" not in help_text
+        net = tmp_path / "d.cir"  # invented divider
+        net.write_text("V1 in 0 DC 12 tol=1%\nR1 in tap 2k tol=1%\nR2 tap 0 2k tol=1%\n"
+                       ".port tap 0\n")
+        a = json.loads(cli("design", net, "--draws", "200", "--distribution", "rectangular",
+                           "--json").out)
+        b = json.loads(cli("design", net, "--draws", "200", "--json").out)
+        assert a == b

@@ -48,7 +48,8 @@ def design_command(
                              "(R* 1%, RC? 15%); overrides tol= in the netlist.")] = None,
     draws: Annotated[int, typer.Option("--draws", help="Monte Carlo draws (0: none).")] = 10_000,
     distribution: Annotated[str, typer.Option(
-        "--distribution", help="Per-part spread: uniform (±tol) or normal (tol = 3σ).")
+        "--distribution", help="Per-part spread: uniform (±tol; also 'rectangular') or "
+                               "normal (tol = 3σ).")
     ] = "uniform",
     seed: Annotated[int, typer.Option("--seed", help="Random seed of the draws.")] = 1,
     limits: Annotated[str, typer.Option(
@@ -87,6 +88,7 @@ def design_command(
     with guarded(netlist):
         if limits not in _METHODS:
             raise OptionError("--limits", f"choose one of {', '.join(_METHODS)}, not {limits!r}")
+        distribution = {"rectangular": "uniform"}.get(distribution, distribution)
         if distribution not in ("uniform", "normal"):
             raise OptionError("--distribution", f"uniform or normal, not {distribution!r}")
         if draws < 0 or (limits == "monte-carlo" and draws < 100):

@@ -144,6 +144,11 @@ def _record_one(file: str, run: dict, db: str, date, force: bool) -> dict:
             "traceability": trace, "warnings": trace["warnings"]}
 
 
+def _count(n: int, noun: str) -> str:
+    """'1 record', '16 records'."""
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
+
+
 def _print_record(docs, cautions=()) -> None:
     lines = []
     seen_warnings = set()
@@ -155,7 +160,7 @@ def _print_record(docs, cautions=()) -> None:
             rep = f" ({len(doc['replaced'])} replaced)" if doc["replaced"] else ""
             lines.append(f"recorded {n_new} DUT(s){rep} from {doc['input']['file']}, tested "
                          f"{when} ({doc['input']['date_source']}), into {doc['database']} "
-                         f"({doc['records_in_database']} records in all)")
+                         f"({_count(doc['records_in_database'], 'record')} in all)")
         if doc["already_recorded"]:
             lines.append(f"{len(doc['already_recorded'])} DUT(s) of {doc['input']['file']} "
                          "were already recorded and were left as they are (--force replaces "

@@ -175,8 +175,11 @@ def simulate_command(
     per_dut_loads: Annotated[bool, typer.Option(
         "--per-dut-loads", help="Draw the resistor errors per DUT instead of once per "
                                 "resistor.")] = False,
-    errors: Annotated[str, typer.Option(
-        "--errors", help="Meter error distribution: rectangular or normal.")] = "rectangular",
+    distribution: Annotated[str, typer.Option(
+        "--distribution", help="Distribution of the meter errors: rectangular (uniform) or "
+                               "normal, as design's --distribution.")] = "rectangular",
+    # the name before --distribution, kept working but not shown
+    errors_old: Annotated[Optional[str], typer.Option("--errors", hidden=True)] = None,
     truth: Annotated[Optional[str], typer.Option(
         "--truth", help="Also write the true Vth and Rth of each DUT to this CSV.")] = None,
 ) -> None:
@@ -197,8 +200,11 @@ def simulate_command(
                                          "alone gives no current")
         if duts < 1:
             raise OptionError("--duts", f"must be at least 1 (got {duts})")
+        d_name = "--errors" if errors_old is not None else "--distribution"
+        errors = errors_old if errors_old is not None else distribution
+        errors = {"uniform": "rectangular"}.get(errors, errors)
         if errors not in ("rectangular", "normal"):
-            raise OptionError("--errors", f"use rectangular or normal (got {errors!r})")
+            raise OptionError(d_name, f"use rectangular (uniform) or normal (got {errors!r})")
         spread_v = (_percent(vth_spread, "--vth-spread") or 0.0) / 100.0
         spread_r = (_percent(rth_spread, "--rth-spread") or 0.0) / 100.0
         interval_s = _time(interval, "--interval")
@@ -233,7 +239,8 @@ def simulate_command(
                 voltage_accuracy=voltage_accuracy, current_accuracy=current_accuracy,
                 load_tolerance=load_tolerance, measure_current=measure_current, knee=knee,
                 curvature=curvature, drift=drift, vth_spread=vth_spread, rth_spread=rth_spread,
-                interval=interval, prefix=prefix, per_dut_loads=per_dut_loads, errors=errors,
+                interval=interval, prefix=prefix, per_dut_loads=per_dut_loads,
+                distribution=errors,
                 out=out), run)
             if to_stdout:
                 write_stdout(run_csv_text(run, comments))
@@ -253,7 +260,7 @@ def simulate_command(
 
 _SIM_OPTIONS = {"vth_spread": "--vth-spread", "rth_spread": "--rth-spread",
                 "knee_current": "--knee", "dut_prefix": "--prefix", "interval_s": "--interval",
-                "error_distribution": "--errors", "load_tolerance": "--load-tolerance"}
+                "error_distribution": "--distribution", "load_tolerance": "--load-tolerance"}
 
 
 def _reproducing_argv(**opts) -> list[str]:
@@ -266,7 +273,7 @@ def _reproducing_argv(**opts) -> list[str]:
         if value is True:
             parts.append(flag)
         elif key == "interval" and value == "10s" or key == "prefix" and value == "SIM-" \
-                or key == "errors" and value == "rectangular":
+                or key == "distribution" and value == "rectangular":
             continue
         else:
             parts += [flag, " ".join(str(value).split())]
