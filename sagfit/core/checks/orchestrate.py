@@ -124,7 +124,7 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     for k in np.flatnonzero(f_exc):
         flags[k].append(Flag("excess-scatter", sev,
                              f"the scatter is far larger than the stated uncertainties "
-                             f"(χ² = {fits.chi2[k]:.3g} on {fits.dof[k]} degrees of freedom, "
+                             f"(χ² = {fits.chi2[k]:.3g} on {_dof_text(fits.dof[k])}, "
                              f"p {_p(p_fit[k])}): the meter accuracy or resistor tolerance is "
                              "understated, or the source was unstable (temperature, state of "
                              "charge, a loose contact); the uncertainty was enlarged by the "
@@ -134,9 +134,9 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
     for k in np.flatnonzero(f_good):
         flags[k].append(Flag("too-good", "info",
                              f"the readings agree with the line far better than the stated "
-                             f"uncertainties suggest (χ² = {fits.chi2[k]:.3g} on {fits.dof[k]} "
-                             f"degrees of freedom, p {_p(p_fit[k])}): the stated uncertainties "
-                             "are probably overstated (a spec used for a meter that does much "
+                             f"uncertainties suggest (χ² = {fits.chi2[k]:.3g} on "
+                             f"{_dof_text(fits.dof[k])}, p {_p(p_fit[k])}): the stated "
+                             "uncertainties are probably overstated (a spec used for a meter that does much "
                              "better, or correlated errors); the intervals are then wider than "
                              "they need to be"))
     if f_out.any():
@@ -219,3 +219,9 @@ def _p(p):
 def _where(line, row, start):
     ln = int(line[row])
     return f"line {ln}" if ln else f"reading {row - start + 1}"
+
+
+def _dof_text(dof) -> str:
+    """'1 degree of freedom', '4 degrees of freedom'."""
+    d = int(dof)
+    return f"{d} degree of freedom" if d == 1 else f"{d} degrees of freedom"
