@@ -136,9 +136,9 @@ def diagnose(readings: Readings, fits: Fits, *, level: float = 0.01) -> Fits:
                              f"the readings agree with the line far better than the stated "
                              f"uncertainties suggest (χ² = {fits.chi2[k]:.3g} on "
                              f"{_dof_text(fits.dof[k])}, p {_p(p_fit[k])}): the stated "
-                             "uncertainties are probably overstated (a spec used for a meter that does much "
-                             "better, or correlated errors); the intervals are then wider than "
-                             "they need to be"))
+                             "uncertainties are probably overstated (a spec used for a meter "
+                             "that does much better, or correlated errors); the intervals are "
+                             "then wider than they need to be"))
     if f_out.any():
         g = R.g
         row_limit = outl["limit"][g]
