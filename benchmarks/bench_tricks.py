@@ -29,10 +29,6 @@ from bench_fit import make, timed  # noqa: E402
 
 TRICKS = {
     "none": "the program as shipped",
-    "gc-thresholds": "the console program's raised garbage-collector thresholds",
-    "switch-interval": "the 0.5 ms thread switch interval",
-    "gc-freeze": "gc.freeze of the long-lived objects after start-up and reading",
-    "gc-pause-read": "the collector held off while the readings are read",
     "mallopt": "glibc keeping freed memory (mallopt)",
     "threads": "two fit threads over slices of the batch (one pass instead)",
 }

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from sagfit import Readings, fit
-from sagfit.core._parallel import Background, gc_paused, map_parallel
+from sagfit.core._parallel import map_parallel
 
 
 @pytest.fixture
@@ -16,29 +16,6 @@ def gc_on():
     gc.enable()
     yield
     (gc.enable if was else gc.disable)()  # as it was before the test
-
-
-def test_gc_paused_holds_off_the_collector_and_restores_it(gc_on):
-    with gc_paused():
-        assert not gc.isenabled()
-        with gc_paused():  # nested: still off, and the outer block turns it back on
-            assert not gc.isenabled()
-        assert not gc.isenabled()
-    assert gc.isenabled()
-
-
-def test_gc_paused_restores_after_an_error(gc_on):
-    with pytest.raises(ZeroDivisionError):
-        with gc_paused():
-            1 / 0
-    assert gc.isenabled()
-
-
-def test_gc_paused_leaves_a_disabled_collector_disabled(gc_on):
-    gc.disable()
-    with gc_paused():
-        pass
-    assert not gc.isenabled()
 
 
 def test_fit_leaves_the_host_process_as_it_found_it(gc_on):
@@ -121,49 +98,3 @@ def test_malloc_setting_is_the_console_program_s_only(monkeypatch):
     cli._keep_freed_memory()
     assert calls == [(cli._M_MMAP_THRESHOLD, cli._MMAP_THRESHOLD),
                      (cli._M_TRIM_THRESHOLD, cli._TRIM_THRESHOLD)]
-
-
-def test_long_lived_objects_are_frozen_only_in_the_console_program(monkeypatch):
-    import sagfit.cli as cli
-
-    gc.unfreeze()
-    cli.settle_long_lived()  # in-process (tests, a host application): nothing happens
-    assert gc.get_freeze_count() == 0
-    monkeypatch.setattr(cli, "_AS_PROGRAM", True)
-    try:
-        cli.settle_long_lived()
-        assert gc.get_freeze_count() > 0
-    finally:
-        gc.unfreeze()
-
-
-@pytest.mark.parametrize("inline", [False, True])
-def test_background_returns_the_value(inline):
-    job = Background(lambda a, b: a + b, 2, 3, inline=inline)
-    assert job.result() == 5
-    assert job.result() == 5  # asked again: the same value
-
-
-@pytest.mark.parametrize("inline", [False, True])
-def test_background_raises_the_error_in_the_caller(inline):
-    job = Background(lambda: 1 / 0, inline=inline)
-    with pytest.raises(ZeroDivisionError):
-        job.result()
-
-
-def test_background_runs_beside_the_caller():
-    import threading
-
-    started, release = threading.Event(), threading.Event()
-
-    def work():
-        started.set()
-        assert release.wait(5)
-        return threading.get_ident()
-
-    job = Background(work)
-    if job._thread is None:  # one-core machine: run in the caller, nothing to test
-        pytest.skip("one worker")
-    assert started.wait(5)  # it started while the caller goes on
-    release.set()
-    assert job.result() != threading.get_ident()

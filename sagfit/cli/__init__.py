@@ -131,37 +131,7 @@ def run_program() -> None:
     global _AS_PROGRAM
     _AS_PROGRAM = True
     _keep_freed_memory()
-    _tune_interpreter()
-    settle_long_lived()
     main()
-
-
-def _tune_interpreter() -> None:
-    """Process-wide settings the console program (never the library) makes for its own
-    short run: the cyclic garbage collector runs far less often (a batch makes millions of
-    small objects and no cycles; on 100,000 DUTs the default thresholds spent about 0.1 s
-    in collections), and the thread switch interval is 0.5 ms so the two fit threads hand
-    the GIL over quickly (see ``sagfit.core._parallel.SWITCH_INTERVAL``). The process ends
-    with the command, so nothing is restored."""
-    import gc
-
-    from ..core._parallel import SWITCH_INTERVAL
-
-    gc.set_threshold(200_000, 50, 1_000)
-    sys.setswitchinterval(SWITCH_INTERVAL)
-
-
-def settle_long_lived() -> None:
-    """In the console program, take every object made so far (the imported modules, the
-    readings) out of the garbage collector's view (``gc.freeze``): they live until the
-    process exits, and each full collection walked all of them again (pandas, scipy and
-    rich alone are a few hundred thousand objects; about 50 ms of a one-DUT run went to
-    collections). New objects are collected as usual. In-process callers (tests, a host
-    application) are left alone."""
-    if _AS_PROGRAM:
-        import gc
-
-        gc.freeze()
 
 
 #: glibc's mallopt parameters (malloc.h) and the values sagfit's own process uses.
@@ -175,9 +145,11 @@ def _keep_freed_memory() -> None:
 
     By default glibc returns every freed block above 128 kB–32 MB to the kernel at once,
     and the next such block is fresh memory that the kernel must map and zero page by
-    page. Parsing a large file in pieces frees and allocates the tokenizer's buffers once
-    per piece: on 100,000 DUTs that was about 18,000 page faults and 0.1 s of kernel time
-    more than with the buffers kept (measured). Blocks up to 32 MB now come from the heap,
+    page. A large batch frees and allocates such arrays between its stages (the read, the
+    two fit threads' slices, the checks, the writer): on 100,000 DUTs the whole
+    ``sagfit fit`` was 1.07× slower without this (benchmarks/bench_tricks.py, 2026-12-05,
+    a loaded machine; the only process-wide setting left). Blocks up to 32 MB now come
+    from the heap,
     and up to 256 MB of freed heap stays mapped until the process ends (it runs one
     command and exits). Only the console program does this; importing sagfit as a library
     leaves the host's malloc alone. Elsewhere (macOS, Windows, musl) nothing happens.

@@ -199,28 +199,21 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
     some DUTs.
 
     ``settings["instruments"]`` is narrowed to the instruments the readings used."""
-    from ..core._parallel import gc_paused
+    from ..core.traceability import instruments_used
     from ..io.readings_csv import read_readings
-    from . import settle_long_lived
 
-    with gc_paused():
-        readings = read_readings(file, voltage_accuracy=settings["voltage_accuracy"],
-                                 current_accuracy=settings["current_accuracy"],
-                                 load_tolerance=settings["load_tolerance"],
-                                 columns=settings.get("columns") or None,
-                                 sheet=settings.get("sheet"))
-        if dut:
-            names = [d.strip() for d in dut.split(",") if d.strip()]
-            readings = readings.only_duts(names)
-        # only the instruments that entered the result are listed (and checked for their
-        # calibration date): no ammeter where I = V/R
-        from ..core.traceability import instruments_used
-
-        settings["instruments"] = instruments_used(settings.get("instruments", ()),
-                                                   readings.current_from, readings.voltage_from)
-        # pandas is imported now and the readings live to the end: out of the collector's
-        # view before it runs again
-        settle_long_lived()
+    readings = read_readings(file, voltage_accuracy=settings["voltage_accuracy"],
+                             current_accuracy=settings["current_accuracy"],
+                             load_tolerance=settings["load_tolerance"],
+                             columns=settings.get("columns") or None,
+                             sheet=settings.get("sheet"))
+    if dut:
+        names = [d.strip() for d in dut.split(",") if d.strip()]
+        readings = readings.only_duts(names)
+    # only the instruments that entered the result are listed (and checked for their
+    # calibration date): no ammeter where I = V/R
+    settings["instruments"] = instruments_used(settings.get("instruments", ()),
+                                               readings.current_from, readings.voltage_from)
     return readings
 
 
