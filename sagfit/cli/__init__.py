@@ -126,10 +126,33 @@ def _finish(code: int) -> None:
 _AS_PROGRAM = False
 
 
+#: Set once the console program has received Ctrl-C (SIGINT).
+_INTERRUPTED = False
+
+
+def interrupted() -> bool:
+    """Whether the console program has been interrupted: a failure after Ctrl-C (a
+    library half-imported when the signal landed, say) is reported as the interruption
+    it is, exit status 130, not as an internal error."""
+    return _INTERRUPTED
+
+
+def _on_sigint(signum, frame):
+    global _INTERRUPTED
+    _INTERRUPTED = True
+    raise KeyboardInterrupt
+
+
 def run_program() -> None:
     """Entry point of the console script and of ``python -m sagfit``."""
     global _AS_PROGRAM
     _AS_PROGRAM = True
+    import signal
+
+    try:
+        signal.signal(signal.SIGINT, _on_sigint)
+    except ValueError:  # not the main thread: keep Python's own handler
+        pass
     _keep_freed_memory()
     main()
 

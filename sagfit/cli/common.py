@@ -81,6 +81,11 @@ def guarded(source: str = "") -> Iterator[None]:
         error_line(f"{source}: {exc.strerror or exc}".lstrip(": "))
         raise typer.Exit(2) from None
     except Exception as exc:  # never a traceback for users; say what broke
+        from . import interrupted
+
+        if interrupted():  # the failure followed a Ctrl-C: it is the interruption
+            error_line("interrupted; no partial output file was left")
+            raise typer.Exit(130) from None
         error_line(f"{source}: internal error ({type(exc).__name__}: {exc}); please report it "
                    "with the input file".lstrip(": "))
         raise typer.Exit(2) from None
