@@ -1,12 +1,13 @@
 """Acceptance decisions on fitted DUTs, with the measurement uncertainty taken into account.
 
+Why this module stays whole at about 740 lines (over the ~500 of the house rule): the
+decision rules, the frozen ``Spec``/``Acceptance`` types and their JSON form change
+together (a rule's limits, its decision and how it is reported are one subject).
+
 Pure core: a :class:`Spec` (tolerance limits and a decision rule) and a
 :class:`~sagfit.results.Fits` in, a frozen :class:`Acceptance` out. Everything is
 vectorised over the DUTs; the only per-DUT Python work is building JSON dicts on request
 (:meth:`Acceptance.to_dicts`) and reading the flags of the DUTs that carry any.
-
-Length: the decision rules, the frozen ``Spec``/``Acceptance`` types and their JSON form
-belong together (a rule's limits, its decision and how it is reported change as one).
 
 Every rule is expressed as an *acceptance interval* [A_L, A_U] (measured values that
 pass) and a *rejection limit* on each side (measured values beyond it fail); measured

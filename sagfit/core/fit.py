@@ -1,5 +1,10 @@
 """Straight-line fits of V = Vth − Rth·I for many DUTs at once.
 
+Why this module stays whole at about 700 lines (over the ~500 of the house rule): the
+York kernel, its state for the error propagation, the assembly of ``Fits`` and the fit's
+own flags are one path through the same per-DUT sums (the shared-error propagation is in
+:mod:`sagfit.core.systematic`, the checks in :mod:`sagfit.core.checks`).
+
 One kernel serves all three methods. With per-reading variances u²(I), u²(V) and
 covariance u(I, V), it is the York et al. (2004) iteration; with u(I) = 0 the same
 iteration reduces to weighted least squares after one step; with no uncertainty stated,
@@ -7,11 +12,6 @@ unit weights give ordinary least squares and the scatter sets the covariance (Ty
 
 All sums run over DUTs as segment sums (``_groupsum``); the York iteration updates every DUT
 together and stops updating each DUT once its slope has converged.
-
-Length: the York kernel, its state for the error propagation, the assembly of ``Fits``
-and the fit's own flags are one path through the same per-DUT sums; the shared-error
-propagation itself lives in :mod:`sagfit.core.systematic`, the checks in
-:mod:`sagfit.core.checks`.
 
 References
 ----------

@@ -1,5 +1,9 @@
 """Aging trends of internal resistance across a history of fits, for many DUTs at once.
 
+Why this module stays whole at about 670 lines (over the ~500 of the house rule): the
+steps share the sorted record arrays and per-DUT indexes built at the top of
+:func:`analyse_trends`; split, each part would rebuild or pass a dozen of them.
+
 Pure core: arrays of recorded fits in (one row per DUT per test), a frozen columnar
 ``Trends`` out. Nothing here opens a file or knows about the database.
 
@@ -39,10 +43,6 @@ significantly above zero and the projected crossing is within the horizon),
 group median, groups of three or more), ``insufficient-history`` (info; fewer than
 ``min_records`` records on two or more dates, so no rate), ``baseline-fallback`` (info;
 no record on the baseline date).
-
-Length: one module because the steps share the sorted record arrays and per-DUT
-indexes built at the top of :func:`analyse_trends`; split, each part would rebuild or
-pass a dozen of them.
 """
 
 from __future__ import annotations
