@@ -1,7 +1,9 @@
 """Column mapping: telling sagfit which column is which (``--columns``, the bench
 profile's ``[columns]`` table, ``read_readings(columns=...)``), and the error that lists
-the columns and shows the mapping to write. Plumbing of file formats; the readings are
-invented (an electronic-load export of one invented cell)."""
+the columns and shows the mapping to write. Plumbing of file formats, no numerical
+method: the expected values are the numbers written into the invented files themselves
+(an electronic-load export of one invented cell), unit prefixes by SI (BIPM, *The
+International System of Units*, 9th ed. 2019, Table 7)."""
 
 import json
 

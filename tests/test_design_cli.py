@@ -1,4 +1,10 @@
-"""``sagfit design`` as users run it: table, JSON, spec written and read back, errors."""
+"""``sagfit design`` as users run it: table, JSON, spec written and read back, errors.
+
+Outside reference for the numbers: the textbook voltage divider (common practice; e.g.
+C. K. Alexander, M. N. O. Sadiku, *Fundamentals of Electric Circuits*, Thevenin's
+theorem): 12 V over two 2 kΩ resistors is 6 V behind 1 kΩ at the tap, and its worst
+case with 1 % parts and a 1 % source is 12.12 V·2.02 kΩ/4.00 kΩ by hand. The rest is
+plumbing (the spec written is read back by sagfit's own spec reader)."""
 
 from __future__ import annotations
 

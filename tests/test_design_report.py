@@ -1,5 +1,8 @@
 """The report of ``sagfit design`` (sagfit.report.design_report): expected histograms of
-Vth and Rth with the measured units and their intervals marked; the page itself."""
+Vth and Rth with the measured units and their intervals marked; the page itself.
+Plumbing: the figures must show the values the analysis computed (read back from the
+drawn artists); the values themselves are checked against ngspice, lcapy and the textbook
+divider in test_design_references.py and test_design_mna.py."""
 
 from __future__ import annotations
 

@@ -1,5 +1,7 @@
 """The trace report: figures of the trace and of each pulse, the HTML page and its files
-(plumbing; the numbers are checked in test_trace_steps, test_trace_pulse, test_trace_rc)."""
+(plumbing, no numerical check of its own: the numbers are checked against the
+closed-form RC step response and the hand-computed IEC 61960-3 and HPPC examples in
+test_trace_steps, test_trace_pulse and test_trace_rc)."""
 
 import json
 
