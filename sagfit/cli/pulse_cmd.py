@@ -9,9 +9,10 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, JsonOpt, QuietOpt, VoltageAccOpt,
-                     check_out_option, fit_settings, guarded, progress, write_document)
+                     check_out_option, fit_settings, guarded, progress, show_progress,
+                     write_document)
 from .trace_cmd import (DischargeNegOpt, MinSamplesOpt, ThresholdOpt, WindowOpt,
-                        _records, read_and_split, trace_progress)
+                        _records, read_and_split)
 
 METHODS = ("hppc", "iec")
 
@@ -97,7 +98,7 @@ def pulses_command(
         settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence)
         inputs = [file] + ([bench] if bench else [])
         check_out_option(out, inputs)
-        with progress("reading " + file, trace_progress(file, json_out), total=3) as step:
+        with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             trace, steps = read_and_split(file, threshold, window, min_samples,
                                           discharge_negative, step)
             step("pulse resistances")

@@ -9,7 +9,7 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, JsonOpt, QuietOpt, VoltageAccOpt,
-                     check_out_option, fit_settings, guarded, interactive, progress,
+                     check_out_option, fit_settings, guarded, progress, show_progress,
                      require_some_fit, write_document)
 
 MAX_TABLE_ROWS = 40
@@ -25,18 +25,6 @@ MinSamplesOpt = Annotated[int, typer.Option(
 DischargeNegOpt = Annotated[bool, typer.Option(
     "--discharge-negative", help="The file writes discharge current as negative (as many "
                                  "cyclers do).")]
-
-
-def trace_progress(file: str, json_out: bool) -> bool:
-    """A progress bar for a trace file of more than a few megabytes on a terminal."""
-    import os
-
-    if json_out or not interactive():
-        return False
-    try:
-        return os.path.getsize(file) > 2_000_000
-    except OSError:
-        return False
 
 
 def read_and_split(file, threshold, window, min_samples, discharge_negative, step):
@@ -108,7 +96,7 @@ def steps_command(
             check_out_option(readings_out, inputs)
             if not readings_out.lower().endswith(".csv"):
                 raise OptionError("--readings-out", f"{readings_out}: use a .csv file name")
-        with progress("reading " + file, trace_progress(file, json_out), total=4) as step:
+        with progress("reading " + file, show_progress(file, json_out), total=4) as step:
             trace, steps = read_and_split(file, threshold, window, min_samples,
                                           discharge_negative, step)
             step("settled readings")

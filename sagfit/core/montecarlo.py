@@ -36,6 +36,7 @@ import numpy as np
 from ._frozen import freeze_arrays
 from .errors import InputError
 from .fit import _groupsum, _line, _spread
+from .systematic import _pair_codes
 
 __all__ = ["MonteCarlo", "monte_carlo", "DEFAULT_DRAWS", "MAX_VALUES_PER_PASS"]
 
@@ -181,7 +182,7 @@ def monte_carlo(readings, fits, *, draws: int = DEFAULT_DRAWS, seed: int | None 
     uv = np.sqrt(uy2)
     with np.errstate(divide="ignore", invalid="ignore"):
         rho = np.where((ui > 0) & (uv > 0), np.clip(cxy / (ui * uv), -1.0, 1.0), 0.0)
-    resistor = _resistor_codes(g, readings.load[keep]) if err is not None else None
+    resistor = _pair_codes(g, readings.load[keep])[0] if err is not None else None
 
     rng = np.random.default_rng(seed)
     res_v = np.full((m, draws), np.nan)
@@ -235,18 +236,6 @@ def _type_a_dominates(fits, m):
     if col is not None and hasattr(col, "columns"):
         return np.asarray(col.columns["use_a"], bool) & np.asarray(col.columns["sel"], bool)
     return np.zeros(m, bool)
-
-
-def _resistor_codes(g, load):
-    """One code per (DUT, load value): readings at one load share a resistor."""
-    key = np.where(np.isfinite(load), load, -1.0)
-    order = np.lexsort((key, g))
-    gs, ks = g[order], key[order]
-    new = np.ones(g.size, bool)
-    new[1:] = (gs[1:] != gs[:-1]) | (ks[1:] != ks[:-1])
-    codes = np.empty(g.size, np.int64)
-    codes[order] = np.cumsum(new) - 1
-    return codes
 
 
 def _one_pass(rng, rows, g, block, x, y, sxx, syy, sxy, uv, ui, rho, typea_row, dof, err,
