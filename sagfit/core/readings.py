@@ -319,14 +319,15 @@ class Readings:
                                ("load", _MAX_LOAD, "Ω")):
             if k not in arrays:
                 continue
-            a = np.abs(arrays[k])
-            bad = np.flatnonzero(np.isfinite(a) & (a >= _OVERLOAD))
+            a = arrays[k]
+            bad = np.flatnonzero(np.abs(a) > limit)  # the overload codes are among these
+            bad = bad[np.isfinite(a[bad])]  # an open circuit is an infinite load
             if bad.size:
-                fail(f"{arrays[k][bad[0]]:g} is an instrument's overload/not-a-number code "
-                     f"(SCPI 9.9E+37), not a reading: remove or re-measure this row",
-                     int(bad[0]), k)
-            bad = np.flatnonzero(np.isfinite(a) & (a > limit))
-            if bad.size:
+                over = bad[np.abs(a[bad]) >= _OVERLOAD]
+                if over.size:
+                    fail(f"{a[over[0]]:g} is an instrument's overload/not-a-number code "
+                         f"(SCPI 9.9E+37), not a reading: remove or re-measure this row",
+                         int(over[0]), k)
                 fail(f"{arrays[k][bad[0]]:g} {unit} is implausible for a bench {k} "
                      f"(above {limit:g} {unit}): check the column's unit or the reading",
                      int(bad[0]), k)
@@ -397,6 +398,8 @@ class Readings:
             return np.where(np.isnan(col), base, col)
 
         def load_u(r: np.ndarray) -> np.ndarray:
+            if tol_col is None and load_tolerance is None and ur_col is None:
+                return np.zeros(n)  # no resistor uncertainty stated
             finite = np.isfinite(r)
             u = np.where(finite, r, 0.0)
             if tol_col is not None:  # per-reading tolerance (%), else the global one
@@ -415,8 +418,13 @@ class Readings:
         if r is None:
             r = np.full(n, np.nan)
         zeros = np.zeros(n)
-        dv = np.zeros((4, n))
-        di = np.zeros((4, n))
+        # The model of shared errors (ErrorModel) is made only where a meter's or a
+        # resistor's error is shared by several readings, and its parts are computed for
+        # it alone: ``random_parts`` gives the random parts (u(V), u(I), cov), ``dv``/``di``
+        # the meters' gain and offset (made here where a meter's spec has a shared part).
+        meters_share = _has_shared(voltage_accuracy) or _has_shared(current_accuracy)
+        dv = np.zeros((4, n)) if meters_share else None
+        di = np.zeros((4, n)) if meters_share else None
         res_dv, res_di = zeros, zeros
         if "voltage" in arrays and "current" in arrays:
             v, i = arrays["voltage"], arrays["current"]
@@ -424,49 +432,59 @@ class Readings:
             ui = override(acc_u(current_accuracy, i), ui_col)
             cov = np.zeros(n)
             current_from = voltage_from = "measured"
-            uv_r, ui_r, cov_r = (rand_u(voltage_accuracy, v, uv_col),
-                                 rand_u(current_accuracy, i, ui_col), zeros)
-            dv[0], dv[1] = shared_parts(voltage_accuracy, v, uv_col)
-            di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
+
+            def random_parts():
+                return (rand_u(voltage_accuracy, v, uv_col),
+                        rand_u(current_accuracy, i, ui_col), zeros)
+
+            if meters_share:
+                dv[0], dv[1] = shared_parts(voltage_accuracy, v, uv_col)
+                di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
             if "load" in arrays:
                 notes += _cross_check(g, v, i, r, uv, ui, load_u(r), load_tolerance, tol_col,
                                       line_arr)
         elif "voltage" in arrays:  # (R, V): I = V / R
             v = arrays["voltage"]
-            bad = np.flatnonzero((r == 0) & (v != 0))
-            if bad.size:
-                fail(f"zero load resistance with a non-zero voltage {v[bad[0]]:g} V: the current "
-                     "cannot be computed (add a current column for a short-circuit reading)",
-                     int(bad[0]), "load")
-            bad = np.flatnonzero((r == 0) & (v == 0))
-            if bad.size:
+            short = np.flatnonzero(r == 0)
+            if short.size:
+                bad = short[v[short] != 0]
+                if bad.size:
+                    fail(f"zero load resistance with a non-zero voltage {v[bad[0]]:g} V: the "
+                         "current cannot be computed (add a current column for a "
+                         "short-circuit reading)", int(bad[0]), "load")
                 fail("a short with no current column carries no information; add a current "
-                     "column or drop the reading", int(bad[0]), "load")
+                     "column or drop the reading", int(short[0]), "load")
             uv = override(acc_u(voltage_accuracy, v), uv_col)
             ur = load_u(r)
-            # in place where possible: on 800,000 readings every temporary is 6 MB of
-            # fresh memory
+            with_ur = bool(ur.any())
+            # An open circuit (R = ∞; every other R > 0 here) gives I = V/R = 0 exactly,
+            # with no uncertainty, covariance or resistor part (u(R) = 0 there). In place
+            # where possible: on 800,000 readings every temporary is 6 MB of fresh memory.
             with np.errstate(divide="ignore", invalid="ignore"):
-                is_open = np.isinf(r)
-                rr = np.where(is_open, 1.0, r)  # open circuit: I = 0 exactly
-                i = v / rr
-                a = uv / rr
-                cov = uv * a  # u(V)²/R: I = V/R shares the voltmeter's error
-                a *= a
-                b = v * ur
-                b /= rr
-                b /= rr  # V·u(R)/R²
-                b *= b
-                a += b
-                ui = np.sqrt(a, out=a)
-                i[is_open] = 0.0
-                ui[is_open] = 0.0
-                cov[is_open] = 0.0
-                inv_r = np.where(is_open, 0.0, 1.0 / rr)
-                uv_r = rand_u(voltage_accuracy, v, uv_col)
+                i = v / r
+                i += 0.0  # −0.0 (a negative V over R = ∞) reads 0.0
+                if with_ur or uv.any():
+                    a = uv / r
+                    cov = uv * a  # u(V)²/R: I = V/R shares the voltmeter's error
+                    a *= a
+                    if with_ur:
+                        b = v * ur
+                        b /= r
+                        b /= r  # V·u(R)/R²
+                        b *= b
+                        a += b
+                    ui = np.sqrt(a, out=a)
+                else:  # nothing stated: a Type A fit weighs the readings by their scatter
+                    ui, cov = np.zeros(n), np.zeros(n)
+                inv_r = 1.0 / r if with_ur or meters_share else None
+            if with_ur:
                 res_di = i * ur * inv_r  # one u(R) of the resistor: δI = −I·u(R)/R
-                ui_r = np.hypot(uv_r * inv_r, res_di)
-                cov_r = uv_r * uv_r * inv_r
+
+            def random_parts():
+                uv_r = rand_u(voltage_accuracy, v, uv_col)
+                return uv_r, np.hypot(uv_r * inv_r, res_di), uv_r * uv_r * inv_r
+
+            if meters_share:
                 dv[0], dv[1] = shared_parts(voltage_accuracy, v, uv_col)
                 di[0], di[1] = dv[0] * inv_r, dv[1] * inv_r
             current_from, voltage_from = "load", "measured"
@@ -482,25 +500,32 @@ class Readings:
             uv = np.sqrt((r * ui) ** 2 + (i * ur) ** 2)
             cov = r * ui ** 2
             current_from, voltage_from = "measured", "load"
-            ui_r = rand_u(current_accuracy, i, ui_col)
-            res_dv = i * ur
-            uv_r = np.hypot(r * ui_r, res_dv)
-            cov_r = r * ui_r ** 2
-            di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
-            dv[2], dv[3] = di[2] * r, di[3] * r
-        rect = np.array([_is_rect(voltage_accuracy)] * 2 + [_is_rect(current_accuracy)] * 2)
-        shares = bool(dv.any() or di.any()) or (
-            bool(np.any(res_dv) or np.any(res_di)) and _repeats_a_load(g, r))
-        errors = ErrorModel(uv_r, ui_r, cov_r, dv, di, rect, res_dv, res_di) if shares else None
+            if ur.any():
+                res_dv = i * ur
 
-        with np.errstate(over="ignore", invalid="ignore"):
+            def random_parts():
+                ui_r = rand_u(current_accuracy, i, ui_col)
+                return np.hypot(r * ui_r, res_dv), ui_r, r * ui_r ** 2
+
+            if meters_share:
+                di[2], di[3] = shared_parts(current_accuracy, i, ui_col)
+                dv[2], dv[3] = di[2] * r, di[3] * r
+        rect = np.array([_is_rect(voltage_accuracy)] * 2 + [_is_rect(current_accuracy)] * 2)
+        shares = (meters_share and bool(dv.any() or di.any())) or (
+            bool(np.any(res_dv) or np.any(res_di)) and _repeats_a_load(g, r))
+        errors = None
+        if shares:
+            if dv is None:
+                dv, di = np.zeros((4, n)), np.zeros((4, n))
+            errors = ErrorModel(*random_parts(), dv, di, rect, res_dv, res_di)
+
+        if not all(np.isfinite(a).all() for a in (i, v, ui, uv, cov)):
             overflow = ~(np.isfinite(i) & np.isfinite(v) & np.isfinite(ui) & np.isfinite(uv)
                          & np.isfinite(cov))
-        if overflow.any():
             row = int(np.flatnonzero(overflow)[0])
             fail("value out of range (overflow when computing current or voltage)", row, "load")
 
-        t = np.full(n, np.nan) if time is None else np.array(time, dtype=np.float64).ravel()
+        t = np.full(n, np.nan) if time is None else _as_array(time, np.float64, copy).ravel()
         if t.size != n:
             raise InputError(f"{source}: 'time' has {t.size} values, expected {n}")
         ln = line_arr if line_arr is not None else np.zeros(n, dtype=np.int64)
@@ -548,6 +573,11 @@ def _repeats_a_load(g: np.ndarray, r: np.ndarray) -> bool:
     order = np.lexsort((rf, gf))
     gs, rs = gf[order], rf[order]
     return bool(np.any((gs[1:] == gs[:-1]) & (rs[1:] == rs[:-1])))
+
+
+def _has_shared(acc: Accuracy | None) -> bool:
+    """Whether a meter's spec has a part shared by its readings (a gain or offset)."""
+    return acc is not None and acc.shared and (acc.percent != 0 or acc.offset != 0)
 
 
 def _is_rect(acc: Accuracy | None) -> bool:

@@ -215,19 +215,42 @@ _TIME_UNITS = frozenset({"s", "sec", "ms", "min", "h", "hr"})
 
 
 # ------------------------------------------------------------------------------ CSV
+def sha256_beside(data: bytes):
+    """The SHA-256 of ``data`` worked out on a thread while the caller goes on (hashlib
+    lets go of the GIL while it hashes): returns a function that waits for the hex
+    digest. A readings file is hashed while Arrow parses it and the readings are checked,
+    which takes the hash (17 ms of a 27 MB file) off the read; the same digest as
+    ``hashlib.sha256(data).hexdigest()`` (tested). Small data is hashed at once."""
+    import hashlib
+    import threading
+
+    h = hashlib.sha256()
+    if len(data) < (1 << 20):
+        h.update(data)
+        digest = h.hexdigest()
+        return lambda: digest
+    worker = threading.Thread(target=h.update, args=(data,), name="sagfit-sha256",
+                              daemon=True)
+    worker.start()
+
+    def digest() -> str:
+        worker.join()
+        return h.hexdigest()
+
+    return digest
+
+
 def parse_table(data: bytes, name: str, *, stem: str | None = None,
                 voltage_accuracy: Accuracy | None = None,
                 current_accuracy: Accuracy | None = None,
                 load_tolerance: float | None = None,
                 columns: Mapping[str, str] | None = None) -> Readings:
     """Parse the bytes of a readings CSV (see :func:`read_readings`)."""
-    import hashlib
-
     from .readings_table import Where, readings_from_columns
 
     if not data or data.isspace():
         raise ReadingsFileError(name, "the file is empty")
-    sha256 = hashlib.sha256(data).hexdigest()
+    original = data
     enc, text = _decode_head(data, name)
     if enc != "utf-8":
         data = text.encode("utf-8")  # one encoding from here on; BOM already dropped
@@ -252,18 +275,16 @@ def parse_table(data: bytes, name: str, *, stem: str | None = None,
         names, pos, header_line = with_units, after, header_line + 1
     roles, ignored = assign_roles(names, name, mapping=columns, line=header_line)
     meta.update(ignored_columns=ignored, delimiter=delim, encoding=enc)
-    lines, body = _body(data, pos, header_line, name, delim)
-    if lines.size == 0:
-        raise ReadingsFileError(name, "no readings (the table has a header but no rows)",
-                                line=header_line)
     decimal = "," if delim == ";" else "."
-    table = _arrow_read(body, lines, name, delim, len(names), roles, decimal)
+    lines, table = _rows(data, pos, header_line, name, delim, len(names), roles, decimal)
+    sha256 = sha256_beside(original)  # while the columns are converted and checked
     cols = {role: table.column(f"f{c.index}") for role, c in roles.items()}
-    meta["sha256"] = sha256
-    return readings_from_columns(
+    readings = readings_from_columns(
         cols, roles, Where(name, lines), meta=meta, stem=stem, decimal=decimal,
         ids_in_order=True, voltage_accuracy=voltage_accuracy,
         current_accuracy=current_accuracy, load_tolerance=load_tolerance)
+    readings.meta["sha256"] = sha256()  # of the file's bytes as they were read
+    return readings
 
 
 def _head(data: bytes, name: str, meta: dict) -> tuple[str, int, int]:
@@ -352,11 +373,74 @@ def _line_spans(arr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return starts, ends
 
 
-def _arrow_read(body, lines: np.ndarray, name: str, delim: str, ncols: int, roles,
-                decimal: str):
+def _rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols: int,
+          roles, decimal: str):
+    """The data rows after byte ``pos`` as an Arrow table, and the line number of each.
+
+    The usual file, every line after the header a row, is handed to Arrow whole and its
+    rows numbered in order; a file with blank, comment or bare-separator lines among the
+    rows (Arrow reads those as rows of empty cells, or fails on them) is read again with
+    those lines taken out first (:func:`_body`). Both give the same table: the first is
+    only the cheaper way when there is nothing to take out.
+    """
+    import pyarrow as pa
+
+    first = data[pos:pos + 1]
+    if _first_read(roles) and first not in (b"#", b"\n", b" ", b"\t", delim.encode()):
+        try:
+            table = _arrow_read(pa.py_buffer(data).slice(pos), delim, ncols, roles, decimal)
+        except pa.ArrowInvalid:
+            table = None  # read again below, where the line of the problem can be named
+        if table is not None and table.num_rows and _only_rows(table):
+            start = header_line + 1
+            return np.arange(start, start + table.num_rows, dtype=np.int64), table
+    lines, body = _body(data, pos, header_line, name, delim)
+    if lines.size == 0:
+        raise ReadingsFileError(name, "no readings (the table has a header but no rows)",
+                                line=header_line)
+    try:
+        table = _arrow_read(body, delim, ncols, roles, decimal)
+    except pa.ArrowInvalid as exc:
+        raise _located(body, lines, name, delim, ncols, exc) from None
+    if table.num_rows != lines.size:
+        raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
+                                      "quote character?)")
+    return lines, table
+
+
+def _first_read(roles) -> bool:
+    """Whether the first column is one of those read (it shows a comment or blank line
+    Arrow took for a row; see :func:`_only_rows`)."""
+    return any(c.index == 0 for c in roles.values())
+
+
+def _only_rows(table) -> bool:
+    """True when no row of ``table`` came from a line :func:`_body` would take out: a
+    blank line, a comment, a line of blanks and separators. Such a row starts with an
+    empty cell, a blank one or one starting with ``#``; where the first column holds none
+    of these (a column read as numbers holds text of neither kind; a label column shows
+    its few distinct texts), every row is a line of readings."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    first = table.column("f0")
+    if first.null_count:
+        return False
+    for chunk in first.chunks:
+        texts = chunk.dictionary if pa.types.is_dictionary(chunk.type) else chunk
+        if not (pa.types.is_string(texts.type) or pa.types.is_large_string(texts.type)):
+            return True
+        if len(texts) and pc.any(pc.or_(pc.starts_with(texts, "#"), pc.equal(
+                pc.utf8_trim_whitespace(texts), ""))).as_py():
+            return False
+    return True
+
+
+def _arrow_read(body, delim: str, ncols: int, roles, decimal: str):
     """The columns of the roles, read by Arrow: numbers as float64 (text where a cell is
     not a plain number, for :mod:`readings_table` to read or report), DUT ids, loads and
-    groups dictionary-encoded, times as text."""
+    groups dictionary-encoded, times as text. Raises ``pyarrow.ArrowInvalid`` where Arrow
+    cannot read the rows (the caller names the line)."""
     import pyarrow as pa
     import pyarrow.csv as pa_csv
 
@@ -379,21 +463,13 @@ def _arrow_read(body, lines: np.ndarray, name: str, delim: str, ncols: int, role
                 decimal_point=decimal))
 
     try:
-        try:
-            table = read(wanted)
-        except pa.ArrowInvalid as exc:
-            if "conversion error" not in str(exc):
-                raise
-            # a cell that is not a plain number: the numbers as text, read (thousands
-            # separators, ISO 8601 times) or reported with their line by readings_table
-            table = read({k: (pa.string() if t == pa.float64() else t)
-                          for k, t in wanted.items()})
+        return read(wanted)
     except pa.ArrowInvalid as exc:
-        raise _located(body, lines, name, delim, ncols, exc) from None
-    if table.num_rows != lines.size:
-        raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
-                                      "quote character?)")
-    return table
+        if "conversion error" not in str(exc):
+            raise
+    # a cell that is not a plain number: the numbers as text, read (thousands separators,
+    # ISO 8601 times) or reported with their line by readings_table
+    return read({k: (pa.string() if t == pa.float64() else t) for k, t in wanted.items()})
 
 
 def _located(body, lines, name, delim, ncols, exc) -> ReadingsFileError:

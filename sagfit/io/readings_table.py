@@ -186,7 +186,8 @@ def codes_and_texts(col, in_order: bool = False, as_arrow: bool = False):
               or pa.types.is_large_string(col.type.value_type)):
         col = pc.dictionary_encode(_as_text(col))
         in_order = True
-    codes = pc.fill_null(col.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+    indices = pc.fill_null(col.indices, -1) if col.null_count else col.indices
+    codes = indices.to_numpy(zero_copy_only=False).astype(np.int64)
     if in_order and as_arrow:
         return codes, col.dictionary
     texts = col.dictionary.to_pylist()
@@ -226,7 +227,7 @@ def _strip_merge(codes: np.ndarray, texts) -> tuple[np.ndarray, list[str]]:
 
 def loads(col, scale: float, where: Where, header: str, decimal: str = ".") -> np.ndarray:
     """Load cells → ohms: each distinct spelling parsed once (``4.7``, ``4k7``, ``open``)."""
-    pa, _ = _pa()
+    pa, pc = _pa()
     col = _one_chunk(col)
     if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
         a = numbers(col, scale, where, header)
@@ -234,20 +235,30 @@ def loads(col, scale: float, where: Where, header: str, decimal: str = ".") -> n
             raise where.error("empty load cell (write a resistance such as 4.7k, or 'open')",
                               _first(np.isnan(a)), header)
         return a
-    codes, texts = codes_and_texts(col)
-    if (codes < 0).any():
+    if col.null_count:
         raise where.error("empty load cell (write a resistance such as 4.7k, or 'open')",
-                          _first(codes < 0), header)
-    values = np.empty(len(texts))
+                          _first(pc.is_null(col)), header)
+    if pa.types.is_dictionary(col.type) and pa.types.is_string(col.type.value_type):
+        texts = col.dictionary.to_pylist()  # the codes as Arrow has them
+        codes = col.indices.to_numpy(zero_copy_only=False)
+    else:
+        codes, texts = codes_and_texts(col, in_order=True)  # any numbering will do here
+    values = np.full(len(texts), np.nan)
+    problems: dict[int, str] = {}
     for j, text in enumerate(texts):
         spelled = text.replace(",", ".") if decimal == "," else text
         try:
             values[j] = parse_resistance(spelled, scale)
         except ValueError as exc:
-            raise where.error(str(exc), _first(codes == j), header) from None
+            problems[j] = str(exc)
+            continue
         if math.isnan(values[j]) or values[j] == -math.inf:
-            raise where.error(f"{text[:40]!r} is not a load resistance", _first(codes == j),
-                              header)
+            problems[j] = f"{text[:40]!r} is not a load resistance"
+    if problems:  # the first row with a bad load (a dictionary may hold unused texts)
+        bad = np.isin(codes, list(problems))
+        if bad.any():
+            k = _first(bad)
+            raise where.error(problems[int(codes[k])], k, header)
     return values[codes]
 
 
