@@ -40,7 +40,7 @@ def old_reader():
                              cwd=ROOT, capture_output=True, text=True, check=True).stdout
     except (OSError, subprocess.CalledProcessError):
         return None
-    import sagfit.io
+    import sagfit.io  # noqa: F401  (the package the old module is loaded into)
 
     tmp = pathlib.Path(tempfile.mkdtemp()) / "reader_old.py"
     tmp.write_text(src)

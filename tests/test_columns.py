@@ -7,7 +7,6 @@ International System of Units*, 9th ed. 2019, Table 7)."""
 
 import json
 
-import numpy as np
 import pytest
 
 import sagfit

@@ -47,9 +47,9 @@ def _network(rng, k):
         elif c == 1:
             lines += [f"G1 {out} 0 n1x 0 {rng.uniform(-1e-4, 1e-4):.6g}"]
         elif c == 2:
-            lines += [f"VS n1x s 0", f"RS s 0 {r()}", f"F1 0 {out} VS {rng.uniform(-2, 2):.6g}"]
+            lines += ["VS n1x s 0", f"RS s 0 {r()}", f"F1 0 {out} VS {rng.uniform(-2, 2):.6g}"]
         else:
-            lines += [f"VS n1x s 0", f"RS s 0 {r()}", f"H1 h 0 VS {r()}", f"RH h {out} {r()}"]
+            lines += ["VS n1x s 0", f"RS s 0 {r()}", f"H1 h 0 VS {r()}", f"RH h {out} {r()}"]
     return "\n".join(lines), out
 
 

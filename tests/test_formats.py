@@ -224,6 +224,43 @@ class TestParquetSet:
         doc = json.loads(run.out)
         assert doc["recorded"] == ["A1"] and doc["not_fitted"][0]["dut"] == "B2"
 
+    def test_fit_without_dask_reads_the_set_in_one_process(self, tmp_path, cli, monkeypatch):
+        """Without Dask, ``sagfit fit FOLDER`` of Parquet files fits the set as one
+        table, as ``read_readings`` reads it; ``--out`` goes beside the set, not into it."""
+        from sagfit.cli import dataset_run
+
+        monkeypatch.setattr(dataset_run, "dask_installed", lambda: False)
+        folder = self.write_set(tmp_path / "set")
+        run = cli("fit", folder, "--voltage-accuracy", "0.05%+2mV", "--json")
+        assert run.code in (0, 1), run.err
+        doc = json.loads(run.out)
+        assert [d["dut"] for d in doc["results"]] == ["A1", "B2"]
+        assert doc["results"][0]["n"] == 4
+        inside = cli("fit", folder, "--voltage-accuracy", "0.05%+2mV", "--out", folder / "r.parquet")
+        assert inside.code == 2 and "inside the data set" in inside.err
+        out = tmp_path / "r.csv"
+        assert cli("fit", folder, "--voltage-accuracy", "0.05%+2mV", "--out", out).code in (0, 1)
+        assert out.read_text().count("\n") == 3  # header and two DUTs
+
+    def test_which_inputs_go_to_dask(self, tmp_path, monkeypatch):
+        """A CSV set still needs Dask; a Parquet set goes to Dask when it is installed or
+        workers are asked for; a single file never does."""
+        from sagfit.cli import dataset_run
+
+        folder = self.write_set(tmp_path / "set")
+        (tmp_path / "csvset").mkdir()
+        (tmp_path / "csvset" / "a.csv").write_text(TEXT_CSV)
+        monkeypatch.setattr(dataset_run, "dask_installed", lambda: False)
+        assert not dataset_run.runs_on_dask(str(folder), None, None)
+        assert dataset_run.runs_on_dask(str(folder), None, 2)
+        assert dataset_run.runs_on_dask(str(tmp_path / "csvset"), None, None)
+        assert not dataset_run.runs_on_dask(str(folder / "part-1.parquet"), None, None)
+        monkeypatch.setattr(dataset_run, "dask_installed", lambda: True)
+        assert dataset_run.runs_on_dask(str(folder), None, None)
+
+
+TEXT_CSV = "dut,load_ohm,voltage_V\nP1,open,12.70\nP1,10,12.60\nP1,2.2,12.31\n"
+
 
 def test_date_cells_of_a_sheet_are_times(tmp_path):
     """Date-time cells (an OpenDocument date column) become times, 30 s apart here."""

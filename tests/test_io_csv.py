@@ -3,7 +3,6 @@
 Plumbing of file formats; the numerical checks cite their sources where they appear.
 """
 
-import io
 import json
 import math
 

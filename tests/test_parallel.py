@@ -6,7 +6,7 @@ import sys
 import numpy as np
 import pytest
 
-from sagfit import Readings, fit
+from sagfit import fit
 from sagfit.core._parallel import map_parallel
 
 

@@ -27,7 +27,8 @@ def accept_command(
                                             "OpenDocument; '-' for standard input), one "
                                             "load sweep per DUT; or a "
                                             "folder or glob of Parquet/CSV files (a data set, "
-                                            "on Dask: docs/cluster.md).")],
+                                            "on Dask: docs/cluster.md; a Parquet set "
+                                            "without Dask: read in one process).")],
     spec: Annotated[str, typer.Option("--spec", help="Acceptance spec (TOML, see "
                                                      "docs/accept.md).")],
     rule: Annotated[Optional[str], typer.Option(
@@ -80,16 +81,17 @@ def accept_command(
                                 independent_errors=independent_errors,
                                 columns=columns, sheet=sheet, bench_source=bench_source)
         announce_bench(settings, json_out)
-        from ..io.dataset import is_dataset
+        from .dataset_run import refuse_out_inside, runs_on_dask, set_inputs
 
-        if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
+        if runs_on_dask(file, scheduler, workers):  # a folder or glob, partitioned
             from .dataset_run import refuse_single_file_options, run_dataset_fit
 
             refuse_single_file_options({"--dut": dut, "--report": report, "--verbose": verbose,
                                         "--sheet": sheet})
             raise typer.Exit(run_dataset_fit(file, settings, 0.01, out, json_out, scheduler,
                                              workers, spec=the_spec, rule=rule))
-        check_out_option(out, inputs)
+        refuse_out_inside(out, file)
+        check_out_option(out, set_inputs(file) + inputs[1:])
         with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             readings = load_readings(file, settings, dut)
             step(f"fitting {readings.n_duts} DUT(s)")

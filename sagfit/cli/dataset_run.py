@@ -45,6 +45,51 @@ def _cluster(scheduler: str | None, workers: int | None):
     return cluster, Client(cluster)
 
 
+def dask_installed() -> bool:
+    """Whether Dask's distributed scheduler can be imported (without importing it)."""
+    import importlib.util
+
+    return importlib.util.find_spec("distributed") is not None
+
+
+def runs_on_dask(file: str, scheduler: str | None, workers: int | None) -> bool:
+    """Whether ``fit`` / ``accept`` hand ``file`` to Dask: a scheduler given, or a data set
+    (a folder or glob) with local workers asked for or Dask installed. Without Dask a set
+    of Parquet files is read in this one process as one table, in name order, and goes
+    the way of a single file (a set of CSV files still needs Dask)."""
+    from pathlib import Path
+
+    from ..io.dataset import dataset_files, is_dataset
+
+    if scheduler:
+        return True
+    if not is_dataset(file) or (Path(file).is_file()):
+        return False
+    if workers is not None or dask_installed():
+        return True
+    return not all(Path(f).suffix.lower() in (".parquet", ".pq") for f in dataset_files(file))
+
+
+def set_inputs(file: str) -> list[str]:
+    """The inputs an ``--out`` file must not be for a readings file or a Parquet set read
+    in one process; refuses an ``--out`` inside the set's folder (it would join the set
+    on the next read)."""
+    from ..io.dataset import dataset_files, is_dataset
+
+    if not is_dataset(file) or os.path.isfile(file):
+        return [file]
+    return [file] + dataset_files(file)
+
+
+def refuse_out_inside(out: str | None, file: str) -> None:
+    """``--out`` inside the folder of a Parquet set read in one process: refused."""
+    if out and os.path.isdir(file):
+        root = os.path.abspath(file)
+        if os.path.abspath(out).startswith(root + os.sep):
+            raise OptionError("--out", "the results file must not lie inside the data set's "
+                                       "folder (it would be read with the set next time)")
+
+
 def refuse_single_file_options(given: dict) -> None:
     """Options of a single readings file that a data set run does not honour: refused,
     never silently dropped."""

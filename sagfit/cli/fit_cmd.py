@@ -23,7 +23,8 @@ def fit_command(
                                             "OpenDocument (see docs/input-format.md); '-' "
                                             "for standard input; or a folder or glob of "
                                             "Parquet/CSV files: a data set fitted on Dask "
-                                            "(docs/cluster.md).")],
+                                            "(docs/cluster.md; a Parquet set without Dask: "
+                                            "read in one process).")],
     dut: DutOpt = None,
     confidence: ConfidenceOpt = None,
     voltage_accuracy: VoltageAccOpt = None,
@@ -83,9 +84,9 @@ def fit_command(
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
-        from ..io.dataset import is_dataset
+        from .dataset_run import refuse_out_inside, runs_on_dask, set_inputs
 
-        if is_dataset(file) or scheduler:  # a directory or glob: partitioned, on Dask
+        if runs_on_dask(file, scheduler, workers):  # a folder or glob, partitioned
             from .dataset_run import refuse_single_file_options, run_dataset_fit
 
             refuse_single_file_options({"--dut": dut, "--current-range": current_range,
@@ -101,7 +102,8 @@ def fit_command(
             if figures not in FIGURE_CHOICES:
                 raise OptionError("--figures", f"{figures!r}: choose one of "
                                                f"{', '.join(FIGURE_CHOICES)}")
-        check_out_option(out, [file] + ([bench] if bench else []))
+        refuse_out_inside(out, file)
+        check_out_option(out, set_inputs(file) + ([bench] if bench else []))
         if monte_carlo is not None and robust:
             raise OptionError("--monte-carlo", "not with --robust (a Huber fit's weights "
                                                "depend on its residuals)")

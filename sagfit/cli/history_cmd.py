@@ -53,7 +53,7 @@ def record_command(
 
     Every file is read and fitted before anything is recorded (a bad file records
     nothing); the safety cautions are given once for the whole run."""
-    from ..core.safety import caution_inputs, merged_cautions
+    from ..core.safety import merged_cautions
 
     with guarded(files[0]):
         bench, bench_source = resolve_bench(bench)

@@ -86,7 +86,6 @@ def pulses_command(
         from ..core.errors import OptionError
         from ..core.pulse import find_pulses
         from ..core.safety import pulse_cautions
-        from ..core.units import parse_quantity
 
         if method not in METHODS:
             raise OptionError("--method", f"{method!r}: choose one of {', '.join(METHODS)}")

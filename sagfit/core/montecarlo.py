@@ -35,7 +35,7 @@ from dataclasses import dataclass
 import numpy as np
 from ._frozen import freeze_arrays
 from .errors import InputError
-from .fit import _groupsum, _line, _spread
+from .fit import _line, _spread
 from .systematic import _pair_codes
 
 __all__ = ["MonteCarlo", "monte_carlo", "DEFAULT_DRAWS", "MAX_VALUES_PER_PASS"]

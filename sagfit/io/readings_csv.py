@@ -122,22 +122,17 @@ def read_readings(
         from .readings_excel import read_workbook
 
         return read_workbook(name, sheet=sheet, limit=limit, **opts)
-    from .files import read_input
+    from .readings_table import file_bytes
 
-    data = read_input(name, ReadingsFileError, what="readings file", limit=limit,
-                      too_large=lambda size: _too_large(size, limit))
-    return _from_bytes(data, name, p.stem, limit, sheet, opts)
-
-
-def _too_large(size: int, limit: int) -> str:
-    return (f"the file is {size / 1e6:.1f} MB, above the limit of {limit / 1e6:.1f} MB "
-            "(set SAGFIT_MAX_BYTES to raise it)")
+    return _from_bytes(file_bytes(name, limit), name, p.stem, limit, sheet, opts)
 
 
 def _from_bytes(data: bytes, name: str, stem, limit: int, sheet, opts) -> Readings:
     """Bytes of any readings format, told apart by their first bytes."""
     if len(data) > limit:
-        raise ReadingsFileError(name, _too_large(len(data), limit))
+        from .readings_table import too_large
+
+        raise ReadingsFileError(name, too_large(len(data), limit))
     if data.startswith(b"PAR1"):
         from .readings_parquet import read_parquet
 

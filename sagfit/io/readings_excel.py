@@ -33,13 +33,9 @@ def read_workbook(name: str, *, data: bytes | None = None, sheet: str | None = N
     from .readings_parquet import arrow_readings
 
     if data is None:
-        from .files import read_input
+        from .readings_table import file_bytes
 
-        data = read_input(name, ReadingsFileError, what="readings file",
-                          limit=limit if limit is not None else 1 << 62,
-                          too_large=lambda size: f"the file is {size / 1e6:.1f} MB, above the "
-                                                 f"limit of {(limit or 0) / 1e6:.1f} MB (set "
-                                                 "SAGFIT_MAX_BYTES to raise it)")
+        data = file_bytes(name, limit)
     title, rows = sheet_rows(name, data, sheet)
     meta: dict[str, object] = {"sha256": hashlib.sha256(data).hexdigest(), "sheet": title}
     table, names, lines, header_row = _table(name, title, rows, meta)

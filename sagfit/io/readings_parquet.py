@@ -29,13 +29,9 @@ def read_parquet(name: str, *, data: bytes | None = None, limit: int | None = No
     import pyarrow.parquet as pq
 
     if data is None:
-        from .files import read_input
+        from .readings_table import file_bytes
 
-        data = read_input(name, ReadingsFileError, what="readings file",
-                          limit=limit if limit is not None else 1 << 62,
-                          too_large=lambda size: f"the file is {size / 1e6:.1f} MB, above the "
-                                                 f"limit of {(limit or 0) / 1e6:.1f} MB (set "
-                                                 "SAGFIT_MAX_BYTES to raise it)")
+        data = file_bytes(name, limit)
     try:
         table = pq.read_table(pa.BufferReader(data))
     except (pa.ArrowException, OSError, ValueError) as exc:

@@ -27,7 +27,8 @@ from ..core.readings import Readings
 from ..core.units import parse_resistance
 from .columns import ColumnRole
 
-__all__ = ["readings_from_columns", "Where", "FilesWhere", "note_comment"]
+__all__ = ["readings_from_columns", "Where", "FilesWhere", "note_comment", "file_bytes",
+           "too_large"]
 
 #: a decimal number as written in a readings cell (after trimming), or a spelling of
 #: infinity or not-a-number (these reach the readings' own checks, which name them)
@@ -86,6 +87,21 @@ class FilesWhere(Where):
         if exc.line is None:
             return exc
         return self.error(exc.detail, int(exc.line) - 1, exc.column)
+
+
+def file_bytes(name: str, limit: int | None) -> bytes:
+    """The bytes of a readings file of any format, refused above ``limit`` bytes."""
+    from .files import read_input
+
+    limit = 1 << 62 if limit is None else int(limit)
+    return read_input(name, ReadingsFileError, what="readings file", limit=limit,
+                      too_large=lambda size: too_large(size, limit))
+
+
+def too_large(size: int, limit: int) -> str:
+    """The message for a readings file above the size limit."""
+    return (f"the file is {size / 1e6:.1f} MB, above the limit of {limit / 1e6:.1f} MB "
+            "(set SAGFIT_MAX_BYTES to raise it)")
 
 
 _COMMENT_RE = re.compile(r"#\s*([A-Za-z][\w]*)\s*[:=]\s*(.*)$")
