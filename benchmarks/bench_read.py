@@ -10,7 +10,16 @@
             (what sagfit does) against pandas' calamine engine (``pd.read_excel``) doing
             the same sheet → columns step.
 
+Beside the bare read, three parts of the reader's work are timed alone, to show where its
+time goes: Arrow's read with the reader's column types (ids and loads dictionary-encoded,
+numbers as float64), the SHA-256 of the file (every output names its input by it), and
+``Readings.from_arrays`` (validation and the uncertainty model, shared by every reader).
+
 Usage: python benchmarks/bench_read.py [--repeat N] [--duts N] [--no-old] [--no-workbook]
+                                       [--console-malloc]
+``--console-malloc``: glibc keeps freed memory in the process, as the ``sagfit`` console
+program sets it (``sagfit.cli._keep_freed_memory``); without it, as a library in a host
+program that leaves malloc alone.
 Reported: minimum and median of each reader's runs, and ratios of both. Rounds alternate
 the readers so that a slow spell of the machine falls on all of them.
 """
@@ -18,7 +27,6 @@ the readers so that a slow spell of the machine falls on all of them.
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import pathlib
 import statistics
 import subprocess
@@ -34,21 +42,21 @@ sys.path.insert(0, str(ROOT / "tests"))
 
 
 def old_reader():
-    """The byte-level reader of OLD_COMMIT, imported from the git history."""
+    """The byte-level reader of OLD_COMMIT: that commit's package, taken from the git
+    history into a temporary folder and imported as ``sagfit_old`` (its imports are
+    relative, so it runs beside today's ``sagfit`` with its own modules)."""
+    tmp = pathlib.Path(tempfile.mkdtemp())
     try:
-        src = subprocess.run(["git", "show", f"{OLD_COMMIT}:sagfit/io/readings_csv.py"],
-                             cwd=ROOT, capture_output=True, text=True, check=True).stdout
+        archive = subprocess.run(["git", "archive", OLD_COMMIT, "sagfit"], cwd=ROOT,
+                                 capture_output=True, check=True).stdout
+        subprocess.run(["tar", "-x", "-C", str(tmp)], input=archive, check=True)
     except (OSError, subprocess.CalledProcessError):
         return None
-    import sagfit.io  # noqa: F401  (the package the old module is loaded into)
+    (tmp / "sagfit").rename(tmp / "sagfit_old")
+    sys.path.insert(0, str(tmp))
+    from sagfit_old.io.readings_csv import read_readings
 
-    tmp = pathlib.Path(tempfile.mkdtemp()) / "reader_old.py"
-    tmp.write_text(src)
-    spec = importlib.util.spec_from_file_location("sagfit.io._reader_old", tmp)
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = mod
-    spec.loader.exec_module(mod)
-    return mod.read_readings
+    return read_readings
 
 
 def rounds(fns: dict, repeat: int) -> dict:
@@ -78,7 +86,12 @@ def main() -> None:
     ap.add_argument("--duts", type=int, default=100_000)
     ap.add_argument("--no-old", action="store_true")
     ap.add_argument("--no-workbook", action="store_true")
+    ap.add_argument("--console-malloc", action="store_true")
     args = ap.parse_args()
+    if args.console_malloc:
+        from sagfit.cli import _keep_freed_memory
+
+        _keep_freed_memory()
 
     import pyarrow.csv as pa_csv
     import pyarrow.parquet as pq
@@ -102,6 +115,17 @@ def main() -> None:
     if old is not None:
         fns[f"byte-level reader ({OLD_COMMIT})"] = lambda: old(csv)
     fns["sagfit.read_readings (Parquet)"] = lambda: sagfit.read_readings(parquet)
+    import hashlib
+
+    import pyarrow as pa
+
+    label = pa.dictionary(pa.int32(), pa.string())
+    typed = pa_csv.ConvertOptions(column_types={"dut": label, "load_ohm": label,
+                                                "voltage_V": pa.float64(),
+                                                "time_s": pa.float64()})
+    fns["Arrow read, the reader's types"] = lambda: pa_csv.read_csv(
+        csv, read_options=pa_csv.ReadOptions(skip_rows=1), convert_options=typed)
+    fns["read and SHA-256 of the file"] = lambda: hashlib.sha256(csv.read_bytes()).hexdigest()
     # the part every reader shares and no peer does: validation and the uncertainty model
     # of each reading (core), on the arrays the reader hands over
     r = sagfit.read_readings(csv)
@@ -116,6 +140,12 @@ def main() -> None:
     print(f"  the reader's own part (read_readings − from_arrays, round by round): min "
           f"{min(own) * 1e3:.1f} ms, {min(own) / min(bare):.2f}× the bare read (median "
           f"{statistics.median(own) / statistics.median(bare):.2f}×)")
+    rest = [a - b - c for a, b, c in zip(times["sagfit.read_readings (CSV)"],
+                                         times["Readings.from_arrays alone"],
+                                         times["Arrow read, the reader's types"])]
+    print(f"  the rest (read_readings − from_arrays − typed Arrow read; the file's hash, ids "
+          f"and loads into codes and names, line numbers): min {min(rest) * 1e3:.1f} ms, "
+          f"median {statistics.median(rest) * 1e3:.1f} ms")
     report("Parquet against CSV:", {k: times[k] for k in times if "read_readings (" in k},
            "sagfit.read_readings (CSV)")
 
