@@ -31,6 +31,8 @@ TRICKS = {
     "none": "the program as shipped",
     "mallopt": "glibc keeping freed memory (mallopt)",
     "threads": "two fit threads over slices of the batch (one pass instead)",
+    "hash-beside": "the file's SHA-256 on a thread beside the column checks (inline)",
+    "whole-file-rows": "rows numbered without a line scan when every line is a row",
 }
 
 
