@@ -202,3 +202,40 @@ def test_data_set_files_skip_separator_rows(tmp_path):
     p = write(tmp_path, TEXT + ",,\n,,\n", "part-1.csv")
     frame = _read_file((0, str(p)))
     assert len(frame) == 4 and frame["_row"].tolist() == [2, 3, 4, 5]
+
+
+class TestIsoTimes:
+    """ISO 8601 time cells (ISO 8601-1:2019 extended format, common practice in logger
+    exports) read by Arrow's parser, checked against pandas' ISO 8601 reading as an
+    independent reference; spellings Arrow does not read (basic format) still read."""
+
+    CASES = {
+        "naive": ["2026-11-03T10:00:00", "2026-11-03T10:00:30.25", "2026-11-03 10:01:00"],
+        "zoned": ["2026-11-03T10:00:00Z", "2026-11-03T11:00:30+01:00", "2026-11-03T10:01:00Z"],
+        "basic format": ["20261103T100000", "20261103T100030", "20261103T100100"],
+    }
+
+    @pytest.mark.parametrize("case", sorted(CASES))
+    def test_against_pandas(self, tmp_path, case):
+        import pandas as pd
+
+        cells = self.CASES[case]
+        text = "time,load_ohm,voltage_V\n" + "".join(
+            f"{c},{load},{v}\n" for c, load, v in zip(cells, ["open", "10", "4.7"],
+                                                      [12.7, 12.6, 12.5]))
+        r = sagfit.read_readings(write(tmp_path, text))
+        ref = pd.to_datetime(pd.Series(cells), format="ISO8601", utc=True)
+        expected = (ref - pd.Timestamp("1970-01-01", tz="UTC")).dt.total_seconds()
+        np.testing.assert_allclose(r.time, expected.to_numpy(), rtol=0, atol=1e-6)
+
+    def test_an_empty_time_cell_is_no_time(self, tmp_path):
+        text = ("time,load_ohm,voltage_V\n2026-11-03T10:00:00,open,12.7\n,10,12.6\n"
+                "2026-11-03T10:01:00,4.7,12.5\n")
+        r = sagfit.read_readings(write(tmp_path, text))
+        assert np.isnan(r.time[1]) and r.time[2] - r.time[0] == 60.0
+
+    def test_a_bad_time_is_named(self, tmp_path):
+        text = ("time,load_ohm,voltage_V\n2026-11-03T10:00:00,open,12.7\n"
+                "yesterday,10,12.6\n2026-11-03T10:01:00,4.7,12.5\n")
+        with pytest.raises(ReadingsFileError, match="line 3, column time: 'yesterday'"):
+            sagfit.read_readings(write(tmp_path, text))

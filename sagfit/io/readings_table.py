@@ -305,9 +305,13 @@ def times(col, scale: float, where: Where, header: str) -> np.ndarray:
         if np.isinf(a).any():
             raise where.error("infinite time", _first(np.isinf(a)), header)
         return a
-    import pandas as pd
+    text = pc.if_else(pc.equal(text, ""), pa.scalar(None, pa.string()), text)
+    seconds = _iso_seconds(text)
+    if seconds is not None:
+        return seconds
+    import pandas as pd  # other ISO 8601 spellings (basic format, mixed zones)
 
-    s = pd.Series(text.to_pylist(), dtype=object).replace("", None)
+    s = pd.Series(text.to_pylist(), dtype=object)
     try:
         stamps = pd.to_datetime(s, errors="coerce", format="ISO8601", utc=True)
     except (ValueError, TypeError):
@@ -319,6 +323,23 @@ def times(col, scale: float, where: Where, header: str) -> np.ndarray:
                           "date-time (e.g. 2026-11-03T14:05:00)", k, header)
     return (stamps - pd.Timestamp("1970-01-01", tz="UTC")).dt.total_seconds().to_numpy(
         dtype=np.float64)
+
+
+def _iso_seconds(text):
+    """ISO 8601 date-times (``2026-11-03T14:05:00``, a space for the ``T``, fractions of a
+    second; all without a zone, read as UTC, or all with one, ``Z`` or ``+01:00``) →
+    epoch seconds, by Arrow's own parser; ``None`` where it cannot read them all (the
+    caller tries pandas' wider ISO 8601 reading)."""
+    pa, pc = _pa()
+    for tz in (None, "UTC"):
+        try:
+            stamps = pc.cast(text, pa.timestamp("us", tz=tz))
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            continue
+        us = pc.cast(stamps, pa.int64()).to_numpy(zero_copy_only=False)
+        valid = pc.is_valid(stamps).to_numpy(zero_copy_only=False)
+        return np.where(valid, np.asarray(us, dtype=np.float64) / 1e6, np.nan)
+    return None
 
 
 def readings_from_columns(
