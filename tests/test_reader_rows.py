@@ -52,6 +52,14 @@ CASES = {
     "bad load": HEADER + "\n".join(ROWS[:2] + ["", "A,4k7k,10.0,9"]) + "\n",
     "thousands separators": 'dut,load_ohm,voltage_mV\nA,open,"12,000.5"\nA,10,"11,000.1"\n'
                             'A,4.7,"10,200.0"\n',
+    "quoted ids with separators": 'dut,load_ohm,voltage_V\n"A,1",open,12\n"A,1",10,11\n'
+                                  '"A,1",4.7,10.1\n',
+    "unbalanced quote": 'dut,load_ohm,voltage_V\nA,open,12\n"A,10,11\nA,4.7,10.1\n',
+    "CRLF with a blank line": HEADER.replace("\n", "\r\n") + "\r\n".join(
+        ROWS[:2] + [""] + ROWS[2:]) + "\r\n",
+    "decimal commas": "dut;load_ohm;voltage_V\nA;open;12,0\nA;10;11,5\n\nA;4,7;10,2\n",
+    "units row": "dut,load,voltage\n,ohm,V\nA,open,12\nA,10,11\nA,4.7,10.1\n",
+    "a line over 1 MiB": HEADER + ROWS[0] + "\n" + "A,10," + "1" * (1 << 20) + ",1\n",
 }
 
 
@@ -137,3 +145,19 @@ def test_in_order_on_run_heads_is_the_whole_check():
         if k % 3 == 0:
             codes = np.sort(codes)
         assert _in_order(codes, m) == plain(codes, m), (codes, m)
+
+
+def test_no_long_line_never_misses_one(monkeypatch):
+    """``_no_long_line`` (windows of MAX_LINE/2 bytes, each must hold a line end) says
+    True only where the plain measure finds no line longer than MAX_LINE; checked with
+    MAX_LINE = 16 on 2,000 seeded random byte strings of short and long lines."""
+    monkeypatch.setattr(readings_csv, "MAX_LINE", 16)
+    rng = np.random.default_rng(3)
+    for _ in range(2000):
+        lines = [b"x" * int(rng.choice([0, 3, 9, 15, 16, 17, 30])) for _ in range(
+            int(rng.integers(1, 8)))]
+        data = b"\n".join(lines) + (b"\n" if rng.random() < 0.5 else b"")
+        pos = int(rng.integers(0, 3))
+        longest = max(len(x) for x in data[pos:].split(b"\n"))
+        if readings_csv._no_long_line(data, pos):
+            assert longest <= 16, (data, pos)

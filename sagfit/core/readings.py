@@ -320,7 +320,7 @@ class Readings:
             if k not in arrays:
                 continue
             a = arrays[k]
-            bad = np.flatnonzero(np.abs(a) > limit)  # the overload codes are among these
+            bad = np.flatnonzero((a > limit) | (a < -limit))  # overload codes among these
             bad = bad[np.isfinite(a[bad])]  # an open circuit is an infinite load
             if bad.size:
                 over = bad[np.abs(a[bad]) >= _OVERLOAD]

@@ -381,7 +381,8 @@ def _rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols:
     import pyarrow as pa
 
     first = data[pos:pos + 1]
-    if _first_read(roles) and first not in (b"#", b"\n", b" ", b"\t", delim.encode()):
+    if (_first_read(roles) and first not in (b"#", b"\n", b" ", b"\t", delim.encode())
+            and _no_long_line(data, pos)):
         try:
             table = _arrow_read(pa.py_buffer(data).slice(pos), delim, ncols, roles, decimal)
         except pa.ArrowInvalid:
@@ -401,6 +402,15 @@ def _rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols:
         raise ReadingsFileError(name, "rows could not be matched to lines (an unbalanced "
                                       "quote character?)")
     return lines, table
+
+
+def _no_long_line(data: bytes, pos: int) -> bool:
+    """True when no line after byte ``pos`` can be longer than ``MAX_LINE``: every stretch
+    of ``MAX_LINE // 2`` bytes, taken end to end, holds a line end (a longer line would
+    hold one such stretch whole). False only says "maybe": :func:`_body` measures."""
+    half = MAX_LINE // 2
+    return all(data.find(b"\n", k, k + half) >= 0
+               for k in range(pos, len(data) - half + 1, half))
 
 
 def _first_read(roles) -> bool:
