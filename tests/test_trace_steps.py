@@ -239,6 +239,27 @@ class TestReader:
         steps = find_steps(tr)
         assert len(steps) == 2 * len(LEVELS)
 
+    @pytest.mark.parametrize("zone", ["", "Z", "+02:00"])
+    def test_iso_text_times_csv(self, tmp_path, zone):
+        """ISO 8601 text stamps to the microsecond in a CSV trace (read by Arrow's
+        parser) give the times pandas' ISO 8601 reading gives, as seconds from the first
+        row; the basic format (read through pandas) the same."""
+        import pandas as pd
+
+        t, i, v = synth(1, jitter=0.0)
+        base = np.datetime64("2026-03-01T08:00:00", "us")
+        stamps = [str(base + np.timedelta64(int(round(x * 1e6)), "us")) + zone for x in t]
+        if zone == "+02:00":  # the basic format, which Arrow does not read
+            stamps = [s.replace("-", "").replace(":", "").replace("+0200", "+02:00")
+                      for s in stamps]
+        p = tmp_path / "iso.csv"
+        p.write_text("time,current_A,voltage_V\n" + "".join(
+            f"{s},{a:.6f},{b:.6f}\n" for s, a, b in zip(stamps, i, v)))
+        tr = read_trace(p)
+        ref = pd.to_datetime(pd.Series(stamps), format="ISO8601", utc=True)
+        expected = (ref - ref.iloc[0]).dt.total_seconds().to_numpy()
+        np.testing.assert_allclose(tr.time, expected, rtol=0, atol=1e-9)
+
     def test_discharge_negative(self, tmp_path):
         t, i, v = synth(1)
         p = write_csv(tmp_path / "n.csv", t, -i, v)

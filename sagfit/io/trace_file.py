@@ -279,7 +279,13 @@ def _to_trace(path, table, roles, first_line, comments, discharge_negative) -> T
     k, theader, tscale = roles["time"]
     tcol = table.column(k)
     if pa.types.is_timestamp(tcol.type) or pa.types.is_string(tcol.type):
-        if pa.types.is_string(tcol.type):
+        from .readings_table import iso_epoch_ns
+
+        read = iso_epoch_ns(tcol) if pa.types.is_string(tcol.type) else None
+        if read is not None:  # Arrow's parser read them all
+            ns, valid = read
+            nulls = ~valid
+        elif pa.types.is_string(tcol.type):  # other ISO 8601 spellings: pandas
             import pandas as pd
 
             s = pd.Series(tcol.to_numpy(zero_copy_only=False))
