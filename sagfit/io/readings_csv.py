@@ -382,7 +382,7 @@ def _rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols:
 
     first = data[pos:pos + 1]
     if (_first_read(roles) and first not in (b"#", b"\n", b" ", b"\t", delim.encode())
-            and _no_long_line(data, pos)):
+            and _no_long_line(data, pos) and _plain_tail(data, pos, delim)):
         try:
             table = _arrow_read(pa.py_buffer(data).slice(pos), delim, ncols, roles, decimal)
         except pa.ArrowInvalid:
@@ -411,6 +411,21 @@ def _no_long_line(data: bytes, pos: int) -> bool:
     half = MAX_LINE // 2
     return all(data.find(b"\n", k, k + half) >= 0
                for k in range(pos, len(data) - half + 1, half))
+
+
+def _plain_tail(data: bytes, pos: int, delim: str) -> bool:
+    """False when one of the last lines (the last 4 kB) is blank, a comment or starts with
+    a blank or a separator: spreadsheets leave rows of bare separators and blank lines at
+    the end of an export, and such a file goes straight to :func:`_body` rather than
+    being read whole first and found out by :func:`_only_rows`."""
+    start = max(pos, len(data) - 4096)
+    lines = data[start:].split(b"\n")
+    if start > pos:
+        lines = lines[1:]  # the first may be the end of a longer line
+    if lines and lines[-1] == b"":
+        lines = lines[:-1]  # after the last line end
+    odd = (b"#", b" ", b"\t", delim.encode())
+    return not any(not line or line[:1] in odd for line in lines)
 
 
 def _first_read(roles) -> bool:
