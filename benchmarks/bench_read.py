@@ -44,7 +44,7 @@ sys.path.insert(0, str(ROOT / "tests"))
 def old_reader():
     """The byte-level reader of OLD_COMMIT: that commit's package, taken from the git
     history into a temporary folder and imported as ``sagfit_old`` (its imports are
-    relative, so it runs beside today's ``sagfit`` with its own modules)."""
+    relative, so it runs beside the current ``sagfit`` with its own modules)."""
     tmp = pathlib.Path(tempfile.mkdtemp())
     try:
         archive = subprocess.run(["git", "archive", OLD_COMMIT, "sagfit"], cwd=ROOT,
