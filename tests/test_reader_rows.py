@@ -161,3 +161,18 @@ def test_no_long_line_never_misses_one(monkeypatch):
         longest = max(len(x) for x in data[pos:].split(b"\n"))
         if readings_csv._no_long_line(data, pos):
             assert longest <= 16, (data, pos)
+
+
+def test_only_rows_on_its_own():
+    """``_only_rows`` finds comment, blank and empty first cells by itself (the caller
+    also sends every file with a ``#`` after the header to the line scan)."""
+    import pyarrow as pa
+
+    label = pa.dictionary(pa.int32(), pa.string())
+    for first, plain in ((["A", "B"], True), (["A", "#B"], False), (["A", "  "], False),
+                         (["A", None], False)):
+        table = pa.table({"f0": pa.array(first, pa.string()).cast(label),
+                          "f1": pa.array([1.0, 2.0])})
+        assert readings_csv._only_rows(table) is plain, first
+    numbers = pa.table({"f0": pa.array([1.0, 2.0]), "f1": pa.array([1.0, 2.0])})
+    assert readings_csv._only_rows(numbers) is True

@@ -374,14 +374,17 @@ def _rows(data: bytes, pos: int, header_line: int, name: str, delim: str, ncols:
 
     The usual file, every line after the header a row, is handed to Arrow whole and its
     rows numbered in order; a file with blank, comment or bare-separator lines among the
-    rows (Arrow reads those as rows of empty cells, or fails on them) is read again with
-    those lines taken out first (:func:`_body`). Both give the same table: the first is
-    only the cheaper way when there is nothing to take out.
+    rows (Arrow reads those as rows of empty cells, or fails on them) is read with those
+    lines taken out first (:func:`_body`): at once where a ``#`` after the header, a long
+    line or odd last lines show it might be such a file, else after the whole read finds
+    it out (:func:`_only_rows`). Both give the same table: the first is only the cheaper
+    way when there is nothing to take out.
     """
     import pyarrow as pa
 
     first = data[pos:pos + 1]
     if (_first_read(roles) and first not in (b"#", b"\n", b" ", b"\t", delim.encode())
+            and data.find(b"#", pos) < 0  # no comment line can be among the rows
             and _no_long_line(data, pos) and _plain_tail(data, pos, delim)):
         try:
             table = _arrow_read(pa.py_buffer(data).slice(pos), delim, ncols, roles, decimal)
