@@ -70,6 +70,23 @@ def test_no_shared_model_gives_no_same_meter_interval():
     assert "pi_same_meter" not in p.to_dict()["voltage_V"]
 
 
+def test_a_shared_ammeter_error_gives_no_same_meter_interval():
+    """With a measured current whose meter error is shared too, the ammeter's gain and
+    offset moved the fitted line but not a new voltmeter reading (JCGM 100:2008 5.2:
+    only inputs common to both cancel), so no same-meter interval is offered."""
+    i = CURRENTS
+    acc_v = parse_accuracy(SPEC, "V").with_noise(parse_accuracy("0.3mV", "V"))
+    acc_i = parse_accuracy("0.1%+2mA", "A")
+    f = sagfit.fit(Readings.from_arrays(current=i, voltage=VTH - RTH * i,
+                                        voltage_accuracy=acc_v, current_accuracy=acc_i))
+    (p,) = predict(models_from_document(_document(f)), currents=[1.5])
+    assert p.voltage.pi is not None and p.voltage.pi_same is None
+    f = sagfit.fit(Readings.from_arrays(current=i, voltage=VTH - RTH * i,
+                                        voltage_accuracy=acc_v))
+    (p,) = predict(models_from_document(_document(f)), currents=[1.5])
+    assert p.voltage.pi_same is not None
+
+
 @pytest.mark.slow
 def test_same_meter_interval_covers_a_reading_with_the_same_meter():
     m = 1500

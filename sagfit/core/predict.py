@@ -147,6 +147,13 @@ def prediction_fields(readings, fits) -> "PredictionColumn":
         with np.errstate(invalid="ignore"):
             s2 = np.where(n > 2, _groupsum(g, np.nan_to_num(resid) ** 2, m) / dof, 0.0)
         u_same = np.sqrt(np.fmax(noise2, s2))
+        # a shared ammeter error (rows 2, 3 of the error model) moved the fitted line
+        # but not a new voltmeter reading: nothing of it cancels, so such a sweep gets
+        # no same-meter interval (its share is not kept apart from the voltmeter's)
+        e = readings.errors
+        ammeter = _groupsum(g, np.abs(e.dv[2]) + np.abs(e.dv[3]) + np.abs(e.di[2])
+                            + np.abs(e.di[3]), m) > 0
+        u_same = np.where(ammeter, np.nan, u_same)
     starts = np.concatenate(([0], np.cumsum(n.astype(np.int64))[:-1]))
     lo = np.full(m, np.nan)
     hi = np.full(m, np.nan)
@@ -190,7 +197,8 @@ class PredictionColumn(Sequence):
                                     "per_volt": float(self._slope[i])}
             d["reading_scale"] = float(max(1.0, f.scale[i]))
             sv, sr = float(f.var_vth_shared[i]), float(f.var_rth_shared[i])
-            if self._u_same is not None and (sv > 0 or sr > 0):
+            if (self._u_same is not None and np.isfinite(self._u_same[i])
+                    and (sv > 0 or sr > 0)):
                 svr = float(f.cov_vr_shared[i])
                 d["shared_cov_vth_rth"] = [[sv, svr], [svr, sr]]
                 d["u_reading_same_meter_V"] = float(self._u_same[i])
