@@ -361,14 +361,16 @@ def fit_pulses(trace: Trace, steps: Steps, pulses: Pulses, *, branches: str | in
     for b in counts:
         p = 2 + 2 * b
         ok = [j for j, d in enumerate(data) if d[0].size > p + 2]
-        theta, _ = solve_many([(d[0], d[1], d[2] - d[5], d[3], d[4], d[7])
-                               for d in (data[j] for j in ok)], b) if ok else (None, None)
+        theta, done = solve_many([(d[0], d[1], d[2] - d[5], d[3], d[4], d[7])
+                                  for d in (data[j] for j in ok)], b) if ok else (None, None)
         names = ("u_base", "r0") + sum(((f"r{k}", f"tau{k}") for k in range(1, b + 1)), ())
         row = {j: q for q, j in enumerate(ok)}
         for j, (t, v, i_m, edges, d_i, i_b, dur, dt, e_dt) in enumerate(data):
             # the uncertainties of each pulse: a few small matrix products apiece
             fits[j, b] = (finish_rc(t, v, i_m, edges, d_i, i_b, theta[row[j]], branches=b,
-                                    level=level, duration=dur, dt=dt, edge_dt=e_dt)
+                                    level=level, duration=dur, dt=dt, edge_dt=e_dt,
+                                    error=None if done[row[j]] else
+                                    "the model fit did not converge")
                           if j in row else
                           _failed(names, b, level, i_b, f"too few samples ({t.size}) for "
                                                         f"{b} branch(es)"))
