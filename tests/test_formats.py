@@ -114,6 +114,38 @@ class TestParquetOut:
         t = pq.read_table(tmp_path / "d.parquet")
         assert "decision" in t.column_names and t.num_rows > 0
 
+    def test_predict_out_parquet_has_the_csv_columns(self, tmp_path, cli):
+        res = tmp_path / "fit.json"
+        assert cli("fit", SAMPLES / "pack_a.csv", "--out", res).code in (0, 3)
+        for out in ("p.parquet", "p.csv"):
+            run = cli("predict", res, "--load", "1,2.2,open", "--out", tmp_path / out)
+            assert run.code == 0, run.err
+        import pyarrow.csv as pa_csv
+
+        t, c = pq.read_table(tmp_path / "p.parquet"), pa_csv.read_csv(tmp_path / "p.csv")
+        assert t.column_names == c.column_names and t.num_rows == c.num_rows == 3
+        for name in c.column_names:
+            if pa.types.is_floating(c.schema.field(name).type):
+                a = t.column(name).to_numpy(zero_copy_only=False)  # open stays inf here;
+                a = np.where(np.isfinite(a), a, np.nan)  # the CSV leaves it empty
+                np.testing.assert_allclose(a, c.column(name).to_numpy(zero_copy_only=False))
+
+    @pytest.mark.parametrize("args,bad,words", [
+        (["trend", "--db", "{db}"], "t.parquet", ".csv or .json"),
+        (["steps", "{trace}"], "s.parquet", ".csv or .json"),
+        (["steps", "{trace}", "--readings-out"], "r.json", "--readings-out"),
+    ])
+    def test_commands_refuse_a_format_they_do_not_write(self, tmp_path, cli, args, bad, words):
+        (tmp_path / "h.sqlite").write_bytes(b"")
+        trace = tmp_path / "t.csv"
+        trace.write_text("time_s,current_A,voltage_V\n0,0,12\n1,1,11.9\n")
+        args = [a.format(db=tmp_path / "h.sqlite", trace=trace) for a in args]
+        if args[-1] != "--readings-out":
+            args.append("--out")
+        run = cli(*args, tmp_path / bad)
+        assert run.code == 2 and words in run.err and run.err.count("\n") == 1, run.err
+        assert not (tmp_path / bad).exists()
+
     def test_other_suffix_refused(self, tmp_path, cli):
         run = cli("fit", SAMPLES / "pack_a.csv", "--out", tmp_path / "r.xlsx")
         assert run.code == 2 and ".parquet" in run.err

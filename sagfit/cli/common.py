@@ -222,26 +222,42 @@ def load_readings(file: str, settings: dict, dut: str | None = None):
     return readings
 
 
-def check_out_option(out: str | None, inputs) -> None:
-    """``--out``: a .csv, .parquet or .json file name in an existing folder, never an
-    input file."""
+def check_out_option(out: str | None, inputs, formats=(".csv", ".parquet", ".json"),
+                     option: str = "--out") -> None:
+    """``--out``: a file name in an existing folder, never an input file, of one of the
+    ``formats`` the command writes."""
     if not out:
         return
     from ..io.outputs import check_output_path
 
-    check_output_path(out, inputs)
-    if not out.lower().endswith((".csv", ".json", ".parquet")):
-        raise OptionError("--out", f"{out}: use a .csv, .parquet or .json file name")
+    check_output_path(out, inputs, option=option)
+    if not out.lower().endswith(tuple(formats)):
+        what = (", ".join(formats[:-1]) + " or " if len(formats) > 1 else "") + formats[-1]
+        raise OptionError(option, f"{out}: use a {what} file name")
 
 
 def write_out(out: str, doc: dict, csv_columns, inputs=()) -> None:
     """``--out``: ``.json`` → the document ``--json`` prints; ``.csv`` → one row per item
     (``csv_columns``: name → array or list; SI units, full precision, non-finite numbers
-    as empty cells). Written atomically, never over an input."""
+    as empty cells); ``.parquet`` → the same columns as Parquet. Written atomically, never
+    over an input."""
     from ..io.outputs import atomic_write, document_text
 
     if out.lower().endswith(".json"):
         atomic_write(out, document_text(doc), inputs=inputs)
+    elif out.lower().endswith(".parquet"):
+        import numpy as np
+
+        from ..io.results_csv import Coded, table_parquet
+
+        def typed(col):  # a list of numbers is a numeric column, not text
+            if isinstance(col, (np.ndarray, Coded)):
+                return col
+            a = np.asarray(col)
+            return a if a.dtype.kind in "fiub" else col
+
+        atomic_write(out, table_parquet({k: typed(c) for k, c in csv_columns.items()}),
+                     inputs=inputs)
     else:
         from ..io.results_csv import table_csv_chunks
 

@@ -308,7 +308,7 @@ def trend_command(
                 raise OptionError("--as-of", str(exc)) from None
         names = list(dict.fromkeys(d.strip() for d in dut.split(",") if d.strip())) \
             if dut else None
-        check_out_option(out, [db])
+        check_out_option(out, [db], formats=(".csv", ".json"))
         show = interactive() and not json_out
         with progress("reading " + db, show), History(db, create=False) as hist:
             recs = hist.records()  # all DUTs: --dut narrows the output, not the fleet view

@@ -96,7 +96,7 @@ def pulses_command(
         relax_s = _seconds(relax, "--relax")
         settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence)
         inputs = [file] + ([bench] if bench else [])
-        check_out_option(out, inputs)
+        check_out_option(out, inputs, formats=(".csv", ".json"))
         with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             trace, steps = read_and_split(file, threshold, window, min_samples,
                                           discharge_negative, step)
@@ -295,7 +295,7 @@ def respond_command(
         from ..core.rc_model import RCFit, predict_voltage
         from ..io.trace_file import columns_csv, read_profile
 
-        check_out_option(out, [model, profile])
+        check_out_option(out, [model, profile], formats=(".csv",))
         try:
             with open(model, encoding="utf-8") as fh:
                 doc = json.load(fh)

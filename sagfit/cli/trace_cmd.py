@@ -91,9 +91,9 @@ def steps_command(
 
         settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence)
         inputs = [file] + ([bench] if bench else [])
-        check_out_option(out, inputs)
+        check_out_option(out, inputs, formats=(".csv", ".json"))
         if readings_out:
-            check_out_option(readings_out, inputs)
+            check_out_option(readings_out, inputs, formats=(".csv",), option="--readings-out")
             if not readings_out.lower().endswith(".csv"):
                 raise OptionError("--readings-out", f"{readings_out}: use a .csv file name")
         with progress("reading " + file, show_progress(file, json_out), total=4) as step:
