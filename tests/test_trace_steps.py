@@ -297,3 +297,16 @@ class TestCommand:
         before = p.read_bytes()
         run = cli("steps", p, "--readings-out", p)
         assert run.code == 2 and p.read_bytes() == before
+
+
+def test_steps_and_pulses_take_the_bench_profile_as_fit_does(tmp_path, cli, monkeypatch):
+    """`--bench none` means no profile and $SAGFIT_BENCH is the default, for the trace
+    commands as for `fit` (plumbing of options)."""
+    t, i, v = synth(1)
+    p = write_csv(tmp_path / "t.csv", t, i, v)
+    for command in ("steps", "pulses"):
+        run = cli(command, p, "--bench", "none", "-q")
+        assert run.code in (0, 1, 3), (command, run.err)  # 3: no pulse in this trace
+    monkeypatch.setenv("SAGFIT_BENCH", str(tmp_path / "missing.toml"))
+    run = cli("steps", p, "-q")
+    assert run.code == 2 and "SAGFIT_BENCH" in run.err

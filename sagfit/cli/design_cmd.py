@@ -96,6 +96,8 @@ def design_command(
         if measured and (vth_meas or rth_meas):
             raise OptionError("--measured", "give a file or one unit's --measured-vth/-rth, "
                                             "not both")
+        if bench and bench.strip().lower() == "none":  # as for every command: no profile
+            bench = None
         fit_options = {"--dut": dut, "--voltage-accuracy": voltage_accuracy,
                        "--current-accuracy": current_accuracy,
                        "--load-tolerance": load_tolerance, "--bench": bench}

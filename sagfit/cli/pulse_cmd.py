@@ -9,8 +9,8 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, JsonOpt, QuietOpt, VoltageAccOpt,
-                     check_out_option, fit_settings, guarded, progress, show_progress,
-                     write_document)
+                     announce_bench, check_out_option, fit_settings, guarded, progress,
+                     resolve_bench, show_progress, write_document)
 from .trace_cmd import (DischargeNegOpt, MinSamplesOpt, ThresholdOpt, WindowOpt,
                         _records, read_and_split)
 
@@ -94,7 +94,10 @@ def pulses_command(
         times = parse_times(at, method)
         longest = _seconds(max_pulse, "--max-pulse")
         relax_s = _seconds(relax, "--relax")
-        settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence)
+        bench, bench_source = resolve_bench(bench)  # --bench none, $SAGFIT_BENCH, default
+        settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
         inputs = [file] + ([bench] if bench else [])
         check_out_option(out, inputs, formats=(".csv", ".json"))
         with progress("reading " + file, show_progress(file, json_out), total=3) as step:

@@ -9,8 +9,8 @@ import typer
 
 from . import app
 from .common import (BenchOpt, ConfidenceOpt, CurrentAccOpt, JsonOpt, QuietOpt, VoltageAccOpt,
-                     check_out_option, fit_settings, guarded, progress, show_progress,
-                     require_some_fit, write_document)
+                     announce_bench, check_out_option, fit_settings, guarded, progress,
+                     resolve_bench, show_progress, require_some_fit, write_document)
 
 MAX_TABLE_ROWS = 40
 
@@ -86,16 +86,16 @@ def steps_command(
     """Split a logged trace into constant-current steps and take the settled voltage and
     current of each, with Type A uncertainties; optionally fit them."""
     with guarded(file):
-        from ..core.errors import OptionError
         from ..core.trace import settled_readings_arrays, step_warnings, steps_columns
 
-        settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence)
+        bench, bench_source = resolve_bench(bench)  # --bench none, $SAGFIT_BENCH, default
+        settings = fit_settings(voltage_accuracy, current_accuracy, None, bench, confidence,
+                                bench_source=bench_source)
+        announce_bench(settings, json_out)
         inputs = [file] + ([bench] if bench else [])
         check_out_option(out, inputs, formats=(".csv", ".json"))
         if readings_out:
             check_out_option(readings_out, inputs, formats=(".csv",), option="--readings-out")
-            if not readings_out.lower().endswith(".csv"):
-                raise OptionError("--readings-out", f"{readings_out}: use a .csv file name")
         with progress("reading " + file, show_progress(file, json_out), total=4) as step:
             trace, steps = read_and_split(file, threshold, window, min_samples,
                                           discharge_negative, step)
