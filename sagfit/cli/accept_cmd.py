@@ -81,7 +81,7 @@ def accept_command(
                                 independent_errors=independent_errors,
                                 columns=columns, sheet=sheet, bench_source=bench_source)
         announce_bench(settings, json_out)
-        from .dataset_run import refuse_out_inside, runs_on_dask, set_inputs
+        from .dataset_run import runs_on_dask, set_inputs
 
         if runs_on_dask(file, scheduler, workers):  # a folder or glob, partitioned
             from .dataset_run import refuse_single_file_options, run_dataset_fit
@@ -90,8 +90,7 @@ def accept_command(
                                         "--sheet": sheet})
             raise typer.Exit(run_dataset_fit(file, settings, 0.01, out, json_out, scheduler,
                                              workers, spec=the_spec, rule=rule))
-        refuse_out_inside(out, file)
-        check_out_option(out, set_inputs(file) + inputs[1:])
+        check_out_option(out, set_inputs(file, out) + inputs[1:])
         with progress("reading " + file, show_progress(file, json_out), total=3) as step:
             readings = load_readings(file, settings, dut)
             step(f"fitting {readings.n_duts} DUT(s)")

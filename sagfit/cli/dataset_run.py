@@ -70,24 +70,19 @@ def runs_on_dask(file: str, scheduler: str | None, workers: int | None) -> bool:
     return not all(Path(f).suffix.lower() in (".parquet", ".pq") for f in dataset_files(file))
 
 
-def set_inputs(file: str) -> list[str]:
-    """The inputs an ``--out`` file must not be for a readings file or a Parquet set read
-    in one process; refuses an ``--out`` inside the set's folder (it would join the set
-    on the next read)."""
+def set_inputs(file: str, out: str | None) -> list[str]:
+    """The inputs an ``--out`` file must not be, for a readings file or a Parquet set read
+    in one process (the set's files too); an ``--out`` inside the set's folder is refused
+    (it would be read with the set next time)."""
     from ..io.dataset import dataset_files, is_dataset
 
     if not is_dataset(file) or os.path.isfile(file):
         return [file]
-    return [file] + dataset_files(file)
-
-
-def refuse_out_inside(out: str | None, file: str) -> None:
-    """``--out`` inside the folder of a Parquet set read in one process: refused."""
     if out and os.path.isdir(file):
-        root = os.path.abspath(file)
-        if os.path.abspath(out).startswith(root + os.sep):
+        if os.path.abspath(out).startswith(os.path.abspath(file) + os.sep):
             raise OptionError("--out", "the results file must not lie inside the data set's "
                                        "folder (it would be read with the set next time)")
+    return [file] + dataset_files(file)
 
 
 def refuse_single_file_options(given: dict) -> None:

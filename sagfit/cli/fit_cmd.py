@@ -84,7 +84,7 @@ def fit_command(
         if not 0.0 < level < 0.5:
             raise OptionError("--level", f"must be between 0 and 0.5 (got {level:g}); "
                                          "0.01 is the default, 0.05 is more sensitive")
-        from .dataset_run import refuse_out_inside, runs_on_dask, set_inputs
+        from .dataset_run import runs_on_dask, set_inputs
 
         if runs_on_dask(file, scheduler, workers):  # a folder or glob, partitioned
             from .dataset_run import refuse_single_file_options, run_dataset_fit
@@ -102,8 +102,7 @@ def fit_command(
             if figures not in FIGURE_CHOICES:
                 raise OptionError("--figures", f"{figures!r}: choose one of "
                                                f"{', '.join(FIGURE_CHOICES)}")
-        refuse_out_inside(out, file)
-        check_out_option(out, set_inputs(file) + ([bench] if bench else []))
+        check_out_option(out, set_inputs(file, out) + ([bench] if bench else []))
         if monte_carlo is not None and robust:
             raise OptionError("--monte-carlo", "not with --robust (a Huber fit's weights "
                                                "depend on its residuals)")

@@ -145,7 +145,6 @@ def _from_bytes(data: bytes, name: str, stem, limit: int, sheet, opts) -> Readin
 
 
 # ------------------------------------------------------------------------- decoding
-# ------------------------------------------------------------------------- decoding
 def _decode_head(data: bytes, path: str) -> tuple[str, str]:
     """Pick the text encoding; return (encoding, text)."""
     if data.startswith(b"\xef\xbb\xbf"):
@@ -204,7 +203,6 @@ def _count_outside_quotes(s: str, d: str) -> int:
     return n
 
 
-_TIME_UNITS = frozenset({"s", "sec", "ms", "min", "h", "hr"})
 
 
 

@@ -58,7 +58,7 @@ def _split_header(text: str) -> tuple[str, str]:
     if low in sum(ROLE_NAMES.values(), ()):
         return low, ""
     if "_" in s:
-        base, unit = s.rsplit("_", 1) if "_" in s else (s, "")
+        base, unit = s.rsplit("_", 1)
         return base.strip().lower().replace(" ", "_"), unit.strip()
     return low, ""
 
