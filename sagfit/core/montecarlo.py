@@ -185,9 +185,12 @@ def monte_carlo(readings, fits, *, draws: int = DEFAULT_DRAWS, seed: int | None 
     resistor = _pair_codes(g, readings.load[keep])[0] if err is not None else None
 
     rng = np.random.default_rng(seed)
-    res_v = np.full((m, draws), np.nan)
-    res_r = np.full((m, draws), np.nan)
-    # passes over blocks of DUTs and of draws, so that readings × draws stays bounded
+    lo_q, hi_q = 0.5 * (1.0 - p), 0.5 * (1.0 + p)
+    qv, qr = np.full((2, m), np.nan), np.full((2, m), np.nan)
+    u_v, u_r = np.full(m, np.nan), np.full(m, np.nan)
+    # passes over blocks of DUTs and of draws, so that readings × draws stays bounded; the
+    # draws of one block are summed up (quantiles, standard deviation) before the next, so
+    # memory does not grow with DUTs × draws
     dut_ids = np.flatnonzero(ok)
     n_max = int(n.max()) if n.size else 1
     d_step = int(min(draws, max(1, MAX_VALUES_PER_PASS // max(n_max, 1))))
@@ -199,21 +202,20 @@ def monte_carlo(readings, fits, *, draws: int = DEFAULT_DRAWS, seed: int | None 
         inblock = np.zeros(m, bool)
         inblock[block] = True
         rows = np.flatnonzero(inblock[g])
+        res_v = np.full((block.size, draws), np.nan)
+        res_r = np.full((block.size, draws), np.nan)
         for d0 in range(0, draws, d_step):
             dn = min(d_step, draws - d0)
             a, b = _one_pass(rng, rows, g, block, x, y, sxx, syy, sxy, uv, ui, rho,
                              typea_row, dof, err, resistor, dn, m)
-            res_v[block, d0:d0 + dn] = a
-            res_r[block, d0:d0 + dn] = -b
+            res_v[:, d0:d0 + dn] = a
+            res_r[:, d0:d0 + dn] = -b
+        with np.errstate(all="ignore"):
+            qv[:, block] = np.nanquantile(res_v, [lo_q, hi_q], axis=1)
+            qr[:, block] = np.nanquantile(res_r, [lo_q, hi_q], axis=1)
+            u_v[block] = np.nanstd(res_v, axis=1, ddof=1)
+            u_r[block] = np.nanstd(res_r, axis=1, ddof=1)
 
-    lo_q, hi_q = 0.5 * (1.0 - p), 0.5 * (1.0 + p)
-    with np.errstate(all="ignore"):
-        qv = np.nanquantile(res_v, [lo_q, hi_q], axis=1) if dut_ids.size else \
-            np.full((2, m), np.nan)
-        qr = np.nanquantile(res_r, [lo_q, hi_q], axis=1) if dut_ids.size else \
-            np.full((2, m), np.nan)
-        u_v = np.nanstd(res_v, axis=1, ddof=1)
-        u_r = np.nanstd(res_r, axis=1, ddof=1)
     nan = np.where(ok, 1.0, np.nan)
     dv, dr = _two_digit_delta(fits.u_vth), _two_digit_delta(fits.u_rth)
     gv_lo, gv_hi = fits.vth - fits.k * fits.u_vth, fits.vth + fits.k * fits.u_vth
