@@ -275,9 +275,9 @@ def finish_rc(t, v, i_model, edges, d_i, i_base, x, *, branches: int, level: flo
         on = (t > te)[None, :]
         dfdte = np.sum(np.where(on, r[:, None] * di * np.exp(-s_t / tau[:, None])
                                 / tau[:, None], 0.0), axis=0)
-        sens.append(np.abs(jtj_inv @ (j.T @ dfdte)) * a)  # rectangular half-widths
-    rect = np.array(sens)                                    # (edges, p)
-    cov = cov_a + sum(np.outer(x, x) / 3.0 for x in sens)    # fully known sign pattern
+        sens.append(jtj_inv @ (j.T @ dfdte) * a)  # signed: one shift moves all estimates
+    rect = np.abs(np.array(sens))                            # half-widths (edges, p)
+    cov = cov_a + sum(np.outer(x, x) / 3.0 for x in sens)    # signs kept in the covariance
     u = np.sqrt(np.maximum(np.diag(cov), 0.0))
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(u, u)
